@@ -1,0 +1,262 @@
+"""Configuration: defaults from ``dashboard/data/default_config.toml``, user overrides, checks.
+
+A user's TOML file may override any entry of the defaults. Unknown keys, wrong types and
+impossible values are all collected into one :class:`~dashboard.errors.ConfigError` that
+lists every problem with what to do. The absorption coefficients (``physics/data/absorption.toml``)
+can be overridden in an ``[absorption]`` table of the same layout.
+"""
+import copy
+import json
+import tomllib
+from importlib import resources
+from pathlib import Path
+
+from .errors import ConfigError
+
+SURFACES = ("sea", "land", "ice")
+SURFACE_CODES = {"sea": 0, "land": 1, "ice": 2}
+TOP_METHODS = ("fixed", "opaque", "grey")
+
+#: Tables whose keys are open (new channel names may be added)
+_OPEN_TABLES = {("channels",), ("surface", "emissivity", "sea"), ("surface", "emissivity", "land"),
+                ("surface", "emissivity", "ice"), ("absorption",)}
+
+
+def _read_toml_resource(package, name):
+    return tomllib.loads(resources.files(package).joinpath(name).read_text(encoding="utf-8"))
+
+
+def default_config():
+    """The default configuration as a nested dict (a fresh copy)."""
+    return _read_toml_resource("dashboard", "data/default_config.toml")
+
+
+def default_absorption():
+    """The default absorption coefficient table (``physics/data/absorption.toml``) as a dict."""
+    return _read_toml_resource("physics", "data/absorption.toml")
+
+
+def _type_name(v):
+    return {bool: "true/false", int: "a number", float: "a number", str: "text", dict: "a table",
+            list: "a list"}.get(type(v), type(v).__name__)
+
+
+def _merge(base, override, path, problems):
+    for key, value in override.items():
+        here = path + (key,)
+        dotted = ".".join(here)
+        if key not in base:
+            if path in _OPEN_TABLES or (path[:1] == ("absorption",)):
+                base[key] = value
+                continue
+            close = [k for k in base if k.lower() == key.lower() or k.replace("_", "") == key.replace("_", "")]
+            hint = f" Did you mean '{'.'.join(path + (close[0],))}'?" if close else ""
+            problems.append(f"unknown key '{dotted}'.{hint} Remove it or check the spelling against the defaults "
+                            "(`cloudsieve config --show` prints them).")
+            continue
+        default = base[key]
+        if isinstance(default, dict):
+            if isinstance(value, dict):
+                _merge(default, value, here, problems)
+            elif set(default) == set(SURFACES) and isinstance(value, (int, float)) and not isinstance(value, bool):
+                base[key] = {s: value for s in SURFACES}  # one number for every surface
+            else:
+                problems.append(f"'{dotted}' must be {_type_name(default)}; got {value!r}.")
+            continue
+        numeric = isinstance(default, (int, float)) and not isinstance(default, bool)
+        if numeric and isinstance(value, (int, float)) and not isinstance(value, bool):
+            base[key] = float(value) if isinstance(default, float) else value
+            if isinstance(default, int) and not isinstance(value, int):
+                problems.append(f"'{dotted}' must be a whole number; got {value!r}.")
+        elif type(value) is type(default):
+            base[key] = value
+        else:
+            problems.append(f"'{dotted}' must be {_type_name(default)}; got {value!r} ({_type_name(value)}).")
+
+
+def _check_values(cfg, problems):
+    def need(cond, msg):
+        if not cond:
+            problems.append(msg)
+
+    sim = cfg["simulation"]
+    need(3 <= sim["levels"] <= 201, "'simulation.levels' must lie within 3–201.")
+    need(0.1 <= sim["top_pressure"] <= 300, "'simulation.top_pressure' must lie within 0.1–300 hPa.")
+    need(64 <= sim["chunk_pixels"] <= 1_000_000, "'simulation.chunk_pixels' must lie within 64–1000000.")
+    need(1 <= sim["threads"] <= 64, "'simulation.threads' must lie within 1–64.")
+    for surf, table in cfg["surface"]["emissivity"].items():
+        for ch, e in table.items():
+            need(isinstance(e, (int, float)) and 0.5 <= e <= 1.0,
+                 f"'surface.emissivity.{surf}.{ch}' must be a number within 0.5–1.0; got {e!r}.")
+    for name, spec in cfg["channels"].items():
+        ok = isinstance(spec, dict) and set(spec) == {"centre", "width"} and all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in spec.values())
+        need(ok, f"'channels.{name}' must be a table {{ centre = <cm-1>, width = <cm-1> }}; got {spec!r}.")
+    need(cfg["screening"]["marginal_band"] >= 0, "'screening.marginal_band' must be ≥ 0 K.")
+    need(0 <= cfg["screening"]["night_sun_zenith"] <= 120, "'screening.night_sun_zenith' must lie within 0–120°.")
+    for test, table in cfg["tests"].items():
+        for key, val in table.items():
+            if isinstance(val, dict):
+                for surf, v in val.items():
+                    need(surf in SURFACES, f"'tests.{test}.{key}.{surf}': surface must be one of sea, land, ice.")
+                    need(isinstance(v, (int, float)) and v >= 0,
+                         f"'tests.{test}.{key}.{surf}' must be a number ≥ 0; got {v!r}.")
+    need(cfg["tests"]["texture"]["window"] in (3, 5, 7, 9), "'tests.texture.window' must be 3, 5, 7 or 9 pixels.")
+    cl = cfg["cloud"]
+    need(cl["top"] in TOP_METHODS, f"'cloud.top' must be one of {', '.join(TOP_METHODS)}; got {cl['top']!r}.")
+    need(10 <= cl["top_pressure"] <= 1100, "'cloud.top_pressure' must lie within 10–1100 hPa.")
+    if "top_height" in cl:
+        need(isinstance(cl["top_height"], (int, float)) and 0 <= cl["top_height"] <= 20,
+             "'cloud.top_height' must be a number within 0–20 km.")
+    need(0 < cl["nedt"] <= 5, "'cloud.nedt' must lie within 0–5 K.")
+    need(0.5 < cl["eps_max"] < 1, "'cloud.eps_max' must lie strictly between 0.5 and 1.")
+    need(cl["ice_below"] <= cl["water_above"], "'cloud.ice_below' must not exceed 'cloud.water_above'.")
+    need(isinstance(cl["pair"], list) and len(cl["pair"]) == 2, "'cloud.pair' must list two channel names.")
+    for phase in ("ice", "water"):
+        o = cl["optics"][phase]
+        need(0 <= o["single_scattering_albedo"] < 1, f"'cloud.optics.{phase}.single_scattering_albedo' must lie in [0, 1).")
+        need(-1 < o["asymmetry"] < 1, f"'cloud.optics.{phase}.asymmetry' must lie in (-1, 1).")
+    need(cfg["bias"]["min_pixels"] >= 3, "'bias.min_pixels' must be ≥ 3.")
+
+
+def _allow_top_height(cfg, override):
+    height = override.get("cloud", {}).get("top_height") if isinstance(override.get("cloud"), dict) else None
+    if height is not None:
+        cfg["cloud"]["top_height"] = 0.0  # typed slot so the merge accepts it
+    return cfg
+
+
+def merge_config(override, base=None):
+    """Merge a parsed override into the defaults (or ``base``) and check the result.
+
+    Parameters
+    ----------
+    override : mapping
+        Parsed TOML (or an equivalent dict).
+    base : mapping, optional
+        Configuration to start from (defaults when omitted).
+
+    Returns
+    -------
+    dict
+
+    Raises
+    ------
+    ConfigError
+        Listing every unknown key, wrong type and out-of-range value.
+    """
+    cfg = copy.deepcopy(base) if base is not None else default_config()
+    cfg.setdefault("absorption", {})
+    if not isinstance(override, dict):
+        raise ConfigError("the configuration must be a TOML table of settings")
+    _allow_top_height(cfg, override)
+    problems = []
+    _merge(cfg, override, (), problems)
+    if not problems:
+        _check_values(cfg, problems)
+    if problems:
+        raise ConfigError("the configuration has problems; fix each and run again:", problems)
+    return cfg
+
+
+def load_config(path=None):
+    """Read a user TOML file over the defaults; ``None`` gives the defaults.
+
+    Raises
+    ------
+    ConfigError
+        For a missing or unreadable file, TOML syntax errors, unknown keys, wrong types and
+        impossible values (all listed).
+    """
+    if path is None:
+        cfg = default_config()
+        cfg.setdefault("absorption", {})
+        return cfg
+    p = Path(path)
+    if not p.is_file():
+        raise ConfigError(f"configuration file '{p}' does not exist; give the path of a TOML file "
+                          "(`cloudsieve config --show > my.toml` writes a starting point)")
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"cannot read configuration file '{p}': {exc}. It must be a UTF-8 text file.") from None
+    try:
+        override = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"configuration file '{p}' is not valid TOML: {exc}. "
+                          "Check quotes around text values and '=' between key and value.") from None
+    return merge_config(override)
+
+
+def absorption_table(cfg):
+    """Absorption coefficients: the packaged defaults with the config's ``[absorption]`` overrides."""
+    table = default_absorption()
+
+    def deep(dst, src):
+        for k, v in src.items():
+            if isinstance(v, dict) and isinstance(dst.get(k), dict) and "value" not in v:
+                deep(dst[k], v)
+            else:
+                dst[k] = v
+
+    deep(table, cfg.get("absorption", {}))
+    return table
+
+
+def per_surface(value, surface_code):
+    """Map a {sea, land, ice} table (or a number) onto an array of surface codes.
+
+    Parameters
+    ----------
+    value : float or mapping
+        One number, or a table with keys sea/land/ice.
+    surface_code : ndarray of int
+        0 sea, 1 land, 2 ice.
+
+    Returns
+    -------
+    ndarray of float
+    """
+    import numpy as np
+
+    if not isinstance(value, dict):
+        return np.full(np.shape(surface_code), float(value))
+    lut = np.array([float(value.get(s, value.get("sea", 0.0))) for s in SURFACES])
+    return lut[np.clip(np.asarray(surface_code), 0, 2)]
+
+
+def config_json(cfg):
+    """The configuration as compact JSON (stored in output global attributes)."""
+    return json.dumps(cfg, sort_keys=True, separators=(",", ":"))
+
+
+def to_toml(cfg, _prefix=()):
+    """Write a configuration dict as TOML text (for `cloudsieve config --show` and downloads)."""
+
+    def fmt(v):
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return json.dumps(v)
+        if isinstance(v, list):
+            return "[" + ", ".join(fmt(x) for x in v) + "]"
+        if isinstance(v, dict):
+            return "{ " + ", ".join(f"{_key(k)} = {fmt(x)}" for k, x in v.items()) + " }"
+        return repr(v)
+
+    def _key(k):
+        return k if k.replace("_", "").isalnum() and not k[0].isdigit() else json.dumps(k)
+
+    lines = []
+    inline = {k: v for k, v in cfg.items()
+              if _prefix and not (isinstance(v, dict) and (not v or any(isinstance(x, dict) for x in v.values())))}
+    sections = {k: v for k, v in cfg.items() if k not in inline}
+    if _prefix and (inline or not sections):
+        lines.append(f"[{'.'.join(_key(p) for p in _prefix)}]")
+    for k, v in inline.items():
+        lines.append(f"{_key(k)} = {fmt(v)}")
+    if inline or (_prefix and not sections):
+        lines.append("")
+    for k, v in sections.items():
+        lines.append(to_toml(v, _prefix + (k,)))
+    return "\n".join(lines)
