@@ -594,6 +594,8 @@ def screen(scene, sim, config, edits=None, cloud=None):
     for b in bias.values():
         b["applied"] = applied
     counts = {name: float(np.mean(mask == code)) for code, name in enumerate(CLASS_NAMES)}
+    if type(cloud).__name__ == "_Pending":  # the caller (the model) supplies its cached cloud layer
+        return Screening(departure, margins, mask, bits, counts, bias, notes, thresholds, sigma, None, skipped)
     if cloud is None and sim.level_pressure is not None:
         cloud = invert_all(scene, sim, config, {c: (b["a"], b["b"]) for c, b in bias.items()} if applied else None)
     if cloud is not None:

@@ -408,7 +408,7 @@ def invert_grey_cloud(
     keep = (status == STATUS_INVERTED) | (status == STATUS_OPAQUE)
     tau = np.where(keep, tau, np.nan)
     s_tau = np.where(keep, s_tau, np.nan)
-    show_eps = cloudy[..., None] & np.isfinite(eps)
+    show_eps = cloudy[..., None] & np.isfinite(eps) & conditioned
     return CloudRetrieval(
         np.where(show_eps, eps, np.nan),
         np.where(show_eps, s_eps, np.nan),

@@ -1,0 +1,305 @@
+"""The ``cloudsieve`` command line.
+
+Exit codes (documented in the README and in ``cloudsieve --help``):
+
+  0  success
+  1  unexpected internal error (please report it; rerun with --debug for details)
+  2  bad input: unreadable or invalid scene, bad configuration, bad arguments
+  3  an output could not be written (missing folder, no permission, disk full)
+  4  batch: some scenes failed (reported), the others were written
+  130 interrupted (Ctrl-C); no partial output is left under a final name
+"""
+import argparse
+import glob
+import json
+import os
+import sys
+import time
+from pathlib import Path
+
+from . import CAUTION, __version__
+from .errors import CloudsieveError, SceneError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_OUTPUT, EXIT_PARTIAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 4, 130
+
+DESCRIPTION = """\
+cloudsieve — screen infrared window-channel imagery (3.9, 8.6, 11, 12 µm) for cloud.
+
+For every pixel of a scene table it simulates the clear-sky brightness temperature from
+the background state (skin and air temperature, water vapour, view angle, emissivity) by
+solving the infrared radiative transfer equation, maps observed − clear departures, runs
+physically based screening tests, classes each pixel clear / marginal / cloud / no_data,
+and inverts the optical depth of a single grey cloud layer where the pixel is not clear.
+
+Typical use:
+  cloudsieve check  scene.csv                      validate a scene, list every problem
+  cloudsieve screen scene.nc --out mask.nc         mask + cloud layer (CSV or CF-NetCDF)
+  cloudsieve simulate scene.csv --out clear.nc     clear-sky brightness temperatures only
+  cloudsieve serve                                 open the dashboard on a sample scene
+  cloudsieve config --show > my.toml               start a configuration of your own
+"""
+
+EPILOG = """\
+exit codes: 0 ok · 1 internal error · 2 bad input (scene, config, arguments) ·
+3 output not writable · 4 some scenes of a batch failed · 130 interrupted
+
+""" + CAUTION
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # usage errors: exit 2 with a hint, as argparse does, but friendlier
+        self.print_usage(sys.stderr)
+        print(f"cloudsieve: error: {message}\nRun 'cloudsieve {self.prog.split()[-1] if ' ' in self.prog else ''} --help'"
+              " for the options.".replace("  ", " "), file=sys.stderr)
+        sys.exit(EXIT_INPUT)
+
+
+def build_parser():
+    p = _Parser(prog="cloudsieve", description=DESCRIPTION, epilog=EPILOG,
+                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--version", action="version", version=f"cloudsieve {__version__}")
+    p.add_argument("--debug", action="store_true", help="show full tracebacks of internal errors")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    c = sub.add_parser("check", help="validate scene files and print every problem found",
+                       description="Read each scene and print one report listing every problem with what to do.")
+    c.add_argument("scenes", nargs="+", metavar="SCENE", help="scene file(s): .csv, .parquet or .nc")
+    c.add_argument("--config", metavar="FILE", help="TOML configuration (adds channels)")
+
+    s = sub.add_parser("screen", help="screen scenes: mask, test margins, departures, cloud layer",
+                       description="Screen scene(s) and write the mask, test bits and margins, departures, "
+                                   "clear-sky brightness temperatures and the grey-cloud layer.",
+                       formatter_class=argparse.RawDescriptionHelpFormatter,
+                       epilog="With several scenes (or a quoted pattern such as 'DIR/*.nc') --out is a folder; "
+                              "each scene gives <name>_mask.<ext> there.\nQA edits recorded in the dashboard "
+                              "(<scene>.qa.jsonl beside the scene) are applied unless --no-edits.")
+    s.add_argument("scenes", nargs="+", metavar="SCENE", help="scene file(s) or quoted glob pattern(s)")
+    s.add_argument("--out", required=True, metavar="PATH", help="output file (one scene) or folder (several)")
+    s.add_argument("--config", metavar="FILE", help="TOML configuration overriding the defaults")
+    s.add_argument("--format", choices=("csv", "netcdf"), help="output format (default: from the --out extension, "
+                                                                "else netcdf for folders)")
+    s.add_argument("--no-edits", action="store_true", help="ignore the scene's QA-edit journal")
+    s.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+
+    m = sub.add_parser("simulate", help="write clear-sky brightness temperatures and departures only",
+                       description="Simulate the clear-sky brightness temperature of every pixel and channel.")
+    m.add_argument("scene", metavar="SCENE")
+    m.add_argument("--out", required=True, metavar="PATH", help="output file (.nc or .csv)")
+    m.add_argument("--config", metavar="FILE")
+    m.add_argument("--format", choices=("csv", "netcdf"))
+
+    v = sub.add_parser("serve", help="start the dashboard in your browser (127.0.0.1)",
+                       description="Serve the dashboard. With no scene it opens the bundled sample scene.")
+    v.add_argument("scenes", nargs="*", metavar="SCENE", help="scene file(s) to open")
+    v.add_argument("--data-dir", metavar="DIR", help="folder whose scene files the scene picker lists "
+                                                      "(default: the bundled sample scenes)")
+    v.add_argument("--port", type=int, default=5006, help="port (default 5006; 0 picks a free one)")
+    v.add_argument("--address", default="127.0.0.1", help="address to bind (default 127.0.0.1, this machine only)")
+    v.add_argument("--allow-websocket-origin", action="append", default=[], metavar="HOST:PORT",
+                   help="origins allowed to connect; required when --address is not 127.0.0.1/localhost")
+    v.add_argument("--config", metavar="FILE")
+    v.add_argument("--show", action="store_true", help="open a browser tab")
+    v.add_argument("--max-upload-mb", type=float, default=200.0, help="largest scene upload accepted (MB)")
+
+    g = sub.add_parser("config", help="print the default configuration (TOML)")
+    g.add_argument("--show", action="store_true", help="print the defaults (the default action)")
+    g.add_argument("--check", metavar="FILE", help="validate a configuration file")
+    return p
+
+
+def _expand(patterns):
+    files = []
+    for pat in patterns:
+        if any(ch in pat for ch in "*?["):
+            hits = sorted(glob.glob(pat))
+            if not hits:
+                raise SceneError(f"no files match '{pat}'; check the folder and the pattern")
+            files += hits
+        else:
+            files.append(pat)
+    return files
+
+
+def _progress(enabled, total, desc):
+    if not enabled:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, desc=desc, unit="px", unit_scale=True, file=sys.stderr, leave=False,
+                disable=not sys.stderr.isatty() and not os.environ.get("CLOUDSIEVE_PROGRESS"))
+
+
+def cmd_check(args):
+    from .config import load_config
+    from .scene import check_scene
+
+    cfg = load_config(args.config)
+    worst = EXIT_OK
+    for path in args.scenes:
+        try:
+            scene = check_scene(path, config=cfg)
+            print(scene.report.text())
+            if not scene.report.ok:
+                worst = EXIT_INPUT
+        except SceneError as exc:
+            print(f"Scene {path}: NOT usable.\n  ERROR: {exc}")
+            worst = EXIT_INPUT
+    return worst
+
+
+def cmd_config(args):
+    from .config import default_config, load_config, to_toml
+
+    if args.check:
+        load_config(args.check)
+        print(f"{args.check}: configuration is valid")
+        return EXIT_OK
+    print("# cloudsieve default configuration (see dashboard/data/default_config.toml for the reasoning)")
+    print(to_toml(default_config()))
+    return EXIT_OK
+
+
+def _screen_one(path, out_path, cfg, fmt, use_edits, show_progress):
+    from . import pipeline as pl
+    from .model import ScreeningModel
+    from .scene import load_scene
+
+    t0 = time.perf_counter()
+    scene = load_scene(path, config=cfg)
+    n = int(scene.data["valid"].values.sum())
+    bar = _progress(show_progress, n, Path(path).name)
+    orig = pl.simulate
+
+    def simulate_with_bar(sc, c, progress=None, levels=True):
+        last = [0]
+
+        def tick(done, total):
+            if bar is not None:
+                bar.update(done - last[0])
+                last[0] = done
+
+        return orig(sc, c, progress=tick, levels=levels)
+
+    pl.simulate = simulate_with_bar
+    try:
+        from .model import _NoJournal
+
+        model = ScreeningModel(scene, cfg, journal=None if use_edits else _NoJournal())
+    finally:
+        pl.simulate = orig
+        if bar is not None:
+            bar.close()
+    model.write(out_path, fmt)
+    summ = model.summary()
+    summ["seconds"] = round(time.perf_counter() - t0, 2)
+    summ["output"] = str(out_path)
+    summ["qa_edits"] = len(model.edit_listing())
+    return summ
+
+
+def cmd_screen(args):
+    from .config import load_config
+
+    cfg = load_config(args.config)
+    files = _expand(args.scenes)
+    out = Path(args.out)
+    many = len(files) > 1 or out.is_dir()
+    if many:
+        if out.exists() and not out.is_dir():
+            raise SceneError(f"several scenes need --out to be a folder; '{out}' is a file")
+        if not out.exists():
+            if not out.parent.is_dir():
+                from .errors import OutputError
+                raise OutputError(f"folder '{out.parent}' does not exist; create it or choose another --out")
+            out.mkdir()
+    fmt = args.format or (None if not many else "netcdf")
+    ext = {"netcdf": ".nc", "csv": ".csv", None: ".nc"}[fmt]
+    rows, failed = [], []
+    stems = [Path(f).stem for f in files]
+    for path in files:
+        stem = Path(path).stem
+        if stems.count(stem) > 1:  # same name, different formats or folders: keep them apart
+            stem = f"{stem}_{Path(path).suffix.lstrip('.')}"
+            if [f"{Path(f).stem}_{Path(f).suffix.lstrip('.')}" for f in files].count(stem) > 1:
+                stem = f"{Path(path).parent.name}_{stem}"
+        target = out / f"{stem}_mask{ext}" if many else out
+        try:
+            rows.append(_screen_one(path, target, cfg, fmt, not args.no_edits, not args.quiet))
+        except CloudsieveError as exc:
+            if not many:
+                raise
+            failed.append((path, str(exc)))
+            print(f"cloudsieve: skipped {path}:\n{exc}", file=sys.stderr)
+    if not args.quiet:
+        _print_summary(rows, failed)
+    if failed:
+        return EXIT_PARTIAL if rows else EXIT_INPUT
+    return EXIT_OK
+
+
+def _print_summary(rows, failed):
+    if rows:
+        print(f"{'scene':<28} {'pixels':>9} {'clear':>7} {'marg.':>7} {'cloud':>7} {'no_data':>7} "
+              f"{'bias11 a/b':>14} {'time s':>7}")
+        for r in rows:
+            b = r["bias"].get("11um") or next(iter(r["bias"].values()), {})
+            bias = f"{b.get('a', float('nan')):+.2f}/{b.get('b', float('nan')):+.3f}" if b else "-"
+            print(f"{r['scene'][:28]:<28} {r['pixels']:>9} {r['clear']:>7.3f} {r['marginal']:>7.3f} "
+                  f"{r['cloud']:>7.3f} {r['no_data']:>7.3f} {bias:>14} {r['seconds']:>7.1f}")
+            for note in r["notes"]:
+                print(f"    note: {note}")
+            print(f"    written: {r['output']}" + (f" (with {r['qa_edits']} QA edit(s))" if r["qa_edits"] else ""))
+    for path, _ in failed:
+        print(f"{Path(path).name[:28]:<28} FAILED (see message above)")
+
+
+def cmd_simulate(args):
+    from . import pipeline as pl
+    from .config import load_config
+    from .export import write_simulation
+    from .scene import load_scene
+
+    cfg = load_config(args.config)
+    scene = load_scene(args.scene, config=cfg)
+    sim = pl.simulate(scene, cfg, levels=False)
+    write_simulation(scene, sim, args.out, args.format)
+    print(f"clear-sky simulation of {scene.name} ({len(sim.channels)} channel(s), "
+          f"{sim.valid_index.size} pixels, {sim.seconds:.1f} s) written to {args.out}")
+    return EXIT_OK
+
+
+def cmd_serve(args):
+    from .app import serve
+
+    return serve(args)
+
+
+def main(argv=None):
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return EXIT_OK
+    handler = {"check": cmd_check, "screen": cmd_screen, "simulate": cmd_simulate, "serve": cmd_serve,
+               "config": cmd_config}[args.command]
+    try:
+        return handler(args)
+    except CloudsieveError as exc:
+        print(f"cloudsieve: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("cloudsieve: interrupted; no partial output was left under a final name", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except MemoryError:
+        print("cloudsieve: out of memory; screen a smaller scene or lower [simulation] chunk_pixels", file=sys.stderr)
+        return EXIT_INTERNAL
+    except Exception as exc:  # noqa: BLE001 — last line of defence: no tracebacks for users
+        if args.debug:
+            raise
+        print(f"cloudsieve: internal error ({type(exc).__name__}: {exc}). This is a bug; please report it with "
+              "the command you ran. Rerun with --debug for the full traceback.", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,233 @@
+"""Benchmark of the clear-sky physics hot path (a script, not a test).
+
+Simulates clear-sky brightness temperatures for N pixels × 40 layers (41 levels) × 4 default
+channels from surface numbers, in float32 and in chunks of pixels, the way a scene is
+processed: ``physics.atmosphere.profile_levels_first`` → ``physics.clearsky.simulate_channel_major``
+with ``levels=False``. It runs once on one thread and once with a 2-thread
+``concurrent.futures.ThreadPoolExecutor`` over the chunks (numpy releases the GIL in its
+loops), and compares both with a floor: one ``np.exp`` over a float32 array of N×40×4 elements,
+about the number of exponentials the transfer step alone needs.
+
+Usage::
+
+    python tests/benchmarks/bench_physics.py [--pixels N] [--chunk C] [--seed S]
+
+Human-readable lines first; the last line is one JSON object with the figures.
+
+The exp floor runs in a child process so that its 2 × N×160×4 bytes (1.3 GB at N = 1e6) do
+not count in ``peak_rss_mb``, the simulation's own peak resident set;
+``peak_rss_mb_with_floor`` is the machine-wide peak of the run (the simulation's peak, or
+its resident set while the floor runs plus the floor's peak, whichever is larger).
+BLAS is pinned to one thread (unless the environment already says otherwise) so that
+"single-threaded" means one core.
+"""
+import os
+
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import argparse  # noqa: E402
+import concurrent.futures  # noqa: E402
+import json  # noqa: E402
+import resource  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+N_LEVELS = 41  # 40 layers
+CHUNK_CANDIDATES = (1024, 2048, 4096, 8192)
+
+
+def _peak_rss_mb(who=resource.RUSAGE_SELF):
+    return resource.getrusage(who).ru_maxrss / 1024.0  # Linux reports KiB
+
+
+def _current_rss_mb():
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+
+
+# ---------------------------------------------------------------------------------------
+# exp floor (child process)
+# ---------------------------------------------------------------------------------------
+def exp_floor(n_elements, seed, repeats=3):
+    """Best-of-``repeats`` time of np.exp over n float32 values, input and output preallocated."""
+    rng = np.random.default_rng(seed)
+    x = rng.random(n_elements, dtype=np.float32)
+    x *= np.float32(-3.0)  # slant optical depths of a few: a representative exp argument
+    y = np.empty_like(x)
+    best = np.inf
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        np.exp(x, out=y)
+        best = min(best, time.perf_counter() - t0)
+    return {"exp_floor_s": best, "exp_floor_rss_mb": _peak_rss_mb(), "elements": n_elements}
+
+
+def run_exp_floor_in_child(n_elements, seed):
+    out = subprocess.run(
+        [sys.executable, os.path.abspath(__file__), "--exp-floor-only", str(n_elements), "--seed", str(seed)],
+        check=True, capture_output=True, text=True,
+    )
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+# ---------------------------------------------------------------------------------------
+# simulation
+# ---------------------------------------------------------------------------------------
+def make_inputs(n_pixels, n_channels, seed):
+    """Seeded random surface numbers, float32, pixel axis last. Ranges are typical of
+    global ocean scenes (air 245–305 K, 0.5–60 kg m⁻², skin within a few K of the air,
+    view zenith 0–65°, sea emissivity 0.96–0.995)."""
+    rng = np.random.default_rng(seed)
+    f = np.float32
+    t_air = rng.uniform(245.0, 305.0, n_pixels).astype(f)
+    tcwv = rng.uniform(0.5, 60.0, n_pixels).astype(f)
+    surface_pressure = np.full(n_pixels, 1013.25, dtype=f)
+    t_skin = (t_air + rng.normal(0.5, 1.5, n_pixels)).astype(f)
+    zenith = rng.uniform(0.0, 65.0, n_pixels).astype(f)
+    emissivity = rng.uniform(0.96, 0.995, (n_channels, n_pixels)).astype(f)
+    return t_air, tcwv, surface_pressure, t_skin, zenith, emissivity
+
+
+def make_chunk_runner(inputs, channels, coefficients, out):
+    from physics.atmosphere import profile_levels_first
+    from physics.clearsky import simulate_channel_major
+
+    t_air, tcwv, ps, t_skin, zenith, emissivity = inputs
+
+    def run(start, stop):
+        p, t, q = profile_levels_first(t_air[start:stop], tcwv[start:stop], ps[start:stop],
+                                       n_levels=N_LEVELS, dtype=np.float32)
+        res = simulate_channel_major(p, t, q, t_skin[start:stop], emissivity[:, start:stop], zenith[start:stop],
+                                     channels, coefficients, levels=False)
+        out[:, start:stop] = res.brightness_temperature
+
+    return run
+
+
+def chunk_bounds(n_pixels, chunk):
+    return [(s, min(s + chunk, n_pixels)) for s in range(0, n_pixels, chunk)]
+
+
+def run_serial(run, bounds):
+    t0 = time.perf_counter()
+    for start, stop in bounds:
+        run(start, stop)
+    return time.perf_counter() - t0
+
+
+def run_threads(run, bounds, workers=2):
+    with concurrent.futures.ThreadPoolExecutor(max_workers=workers) as pool:
+        t0 = time.perf_counter()
+        for _ in pool.map(lambda b: run(*b), bounds):
+            pass
+        return time.perf_counter() - t0
+
+
+def pick_chunk(run, n_pixels, candidates=CHUNK_CANDIDATES, sample=262_144):
+    """Fastest chunk size on the first ``sample`` pixels (best of 2 passes each)."""
+    n = min(n_pixels, sample)
+    timings = {}
+    for chunk in candidates:
+        bounds = chunk_bounds(n, chunk)
+        timings[chunk] = min(run_serial(run, bounds) for _ in range(2)) / n * 1e6  # µs per pixel
+    return min(timings, key=timings.get), timings
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--pixels", type=int, default=1_000_000, help="number of pixel columns (default 1e6)")
+    parser.add_argument("--chunk", type=int, default=None, help="pixels per chunk (default: fastest measured)")
+    parser.add_argument("--seed", type=int, default=20240601, help="random seed of the inputs")
+    parser.add_argument("--exp-floor-only", type=int, default=None, metavar="N_ELEMENTS", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+
+    if args.exp_floor_only is not None:
+        print(json.dumps(exp_floor(args.exp_floor_only, args.seed)))
+        return
+
+    wall0 = time.perf_counter()
+    import tomllib
+    from importlib import resources
+
+    from physics.absorption import channel_coefficients
+    from physics.channels import default_channels
+
+    with resources.files("physics").joinpath("data/absorption.toml").open("rb") as fh:
+        table = tomllib.load(fh)
+    channels = list(default_channels().values())
+    coefficients = channel_coefficients(channels, table)
+    n_ch, n_pix, n_lay = len(channels), args.pixels, N_LEVELS - 1
+
+    inputs = make_inputs(n_pix, n_ch, args.seed)
+    bt_serial = np.empty((n_ch, n_pix), dtype=np.float32)
+    bt_threads = np.empty((n_ch, n_pix), dtype=np.float32)
+    run_serial_chunk = make_chunk_runner(inputs, channels, coefficients, bt_serial)
+    run_thread_chunk = make_chunk_runner(inputs, channels, coefficients, bt_threads)
+
+    if args.chunk is None:
+        chunk, chunk_timings = pick_chunk(run_serial_chunk, n_pix)
+        print("chunk sizes tried (µs per pixel, 1 thread): "
+              + ", ".join(f"{c}: {t:.3f}" for c, t in chunk_timings.items()) + f" -> using {chunk}")
+    else:
+        chunk, chunk_timings = args.chunk, {}
+    bounds = chunk_bounds(n_pix, chunk)
+
+    t_serial = run_serial(run_serial_chunk, bounds)
+    t_threads = run_threads(run_thread_chunk, bounds, workers=2)
+    if not np.array_equal(bt_serial, bt_threads, equal_nan=True):
+        raise RuntimeError("threaded and serial runs disagree")
+    finite = np.isfinite(bt_serial)
+    peak_sim = _peak_rss_mb()
+
+    print(f"pixels {n_pix}, layers {n_lay}, channels {n_ch}, float32, chunk {chunk} pixels ({len(bounds)} chunks)")
+    print(f"1 thread : {t_serial:8.3f} s  {n_pix / t_serial:12,.0f} pixels/s")
+    print(f"2 threads: {t_threads:8.3f} s  {n_pix / t_threads:12,.0f} pixels/s  "
+          f"(speed-up {t_serial / t_threads:.2f}x, results identical)")
+    print(f"brightness temperatures: {finite.mean() * 100:.1f} % finite, "
+          f"mean per channel " + ", ".join(f"{c.name} {m:.2f} K" for c, m in
+                                          zip(channels, np.nanmean(bt_serial, axis=1))))
+    print(f"simulation peak RSS: {peak_sim:.0f} MB")
+
+    del inputs, bt_serial, bt_threads, run_serial_chunk, run_thread_chunk
+    rss_before_floor = _current_rss_mb()
+    n_exp = n_pix * n_lay * n_ch
+    floor = run_exp_floor_in_child(n_exp, args.seed)
+    exp_s = floor["exp_floor_s"]
+    peak_with_floor = max(peak_sim, rss_before_floor + floor["exp_floor_rss_mb"])
+    print(f"exp floor: np.exp over {n_exp:,} float32 (preallocated in/out, best of 3, separate process): "
+          f"{exp_s:.3f} s, that process's peak RSS {floor['exp_floor_rss_mb']:.0f} MB")
+    print(f"ratio to exp floor: 1 thread {t_serial / exp_s:.2f}, 2 threads {t_threads / exp_s:.2f}")
+
+    wall = time.perf_counter() - wall0
+    result = {
+        "pixels": n_pix,
+        "layers": n_lay,
+        "levels": N_LEVELS,
+        "channels": n_ch,
+        "dtype": "float32",
+        "chunk": chunk,
+        "chunk_us_per_pixel": {str(k): round(v, 4) for k, v in chunk_timings.items()},
+        "simulate_s": round(t_serial, 4),
+        "simulate_s_2threads": round(t_threads, 4),
+        "pixels_per_s": round(n_pix / t_serial),
+        "pixels_per_s_2threads": round(n_pix / t_threads),
+        "exp_floor_s": round(exp_s, 4),
+        "ratio_to_exp_floor": round(t_serial / exp_s, 3),
+        "ratio_to_exp_floor_2threads": round(t_threads / exp_s, 3),
+        "peak_rss_mb": round(peak_sim, 1),
+        "exp_floor_rss_mb": round(floor["exp_floor_rss_mb"], 1),
+        "peak_rss_mb_with_floor": round(peak_with_floor, 1),
+        "finite_fraction": round(float(finite.mean()), 6),
+        "wall_s": round(wall, 3),
+        "numpy": np.__version__,
+        "cpu_count": os.cpu_count(),
+    }
+    print(json.dumps(result))
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,111 @@
+"""Plausibility of the whole clear-sky chain: profile → absorption → channels → transfer.
+
+Reference atmospheres span dry polar to moist tropical columns over a black sea surface at
+the air temperature, seen at nadir with the default channels and the absorption data file.
+The checks are the qualitative behaviour every window model must show, and the split-window
+ratio against the range of published sea-surface-temperature coefficients.
+"""
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from physics.atmosphere import column_water_vapour, profile_from_surface
+from physics.clearsky import simulate_clear_sky
+from physics_helpers import channel_index, channels, coefficients
+
+#: Reference atmospheres (t_air [K], tcwv [kg m⁻²]), ordered by water vapour, from a dry
+#: polar column to a moist tropical one; each holds its requested column (not saturation
+#: limited, checked below).
+REFERENCE_ATMOSPHERES = [
+    (250.0, 1.0),
+    (258.0, 2.0),
+    (268.0, 6.0),
+    (278.0, 12.0),
+    (285.0, 20.0),
+    (288.0, 25.0),
+    (292.0, 35.0),
+    (296.0, 45.0),
+    (300.0, 55.0),
+    (302.0, 60.0),
+]
+I11, I12 = channel_index("11um"), channel_index("12um")
+
+
+def _simulate(zenith=0.0, dtype=np.float64):
+    t_air = np.array([a for a, _ in REFERENCE_ATMOSPHERES], dtype=dtype)
+    tcwv = np.array([w for _, w in REFERENCE_ATMOSPHERES], dtype=dtype)
+    prof = profile_from_surface(t_air, tcwv, dtype=dtype)
+    emissivity = np.ones(t_air.shape + (len(channels()),), dtype=dtype)  # black sea surface
+    sky = simulate_clear_sky(prof, t_air, emissivity, np.asarray(zenith, dtype=dtype), channels(), coefficients())
+    return t_air, tcwv, prof, sky
+
+
+def test_reference_atmospheres_hold_their_columns():
+    # precondition of the tests below (profile_from_surface contract, 0.1 %)
+    _, tcwv, prof, _ = _simulate()
+    assert_allclose(column_water_vapour(prof.pressure, prof.specific_humidity), tcwv, rtol=1e-3)
+
+
+def test_window_deficit_grows_with_water_vapour():
+    # common practice: the 11 µm clear-sky deficit T_s − T11 grows with the water-vapour
+    # column, from a few tenths of a kelvin in dry polar air to several kelvin in the tropics
+    t_air, tcwv, _, sky = _simulate()
+    deficit = t_air - sky.brightness_temperature[:, I11]
+    assert np.all(np.diff(deficit) > 0)
+    assert 0.0 < deficit[0] < 1.0
+    assert deficit[-1] > 3.0
+
+
+def test_split_window_difference_is_positive_and_grows():
+    # common practice: water vapour absorbs more at 12 µm than at 11 µm, so T11 − T12 > 0 and
+    # grows with the column
+    _, _, _, sky = _simulate()
+    split = sky.brightness_temperature[:, I11] - sky.brightness_temperature[:, I12]
+    assert np.all(split > 0)
+    assert np.all(np.diff(split) > 0)
+
+
+def test_split_window_ratio_within_published_sst_coefficients():
+    # from memory: split-window SST algorithms weight (T11 − T12) by about 1.5–3.5
+    # (e.g. McClain, Pichel & Walton 1985, J. Geophys. Res. 90, 11587); for a black surface at
+    # the air temperature, T_s = T11 + γ (T11 − T12) gives γ = (T_s − T11)/(T11 − T12)
+    t_air, tcwv, _, sky = _simulate()
+    bt11, bt12 = sky.brightness_temperature[:, I11], sky.brightness_temperature[:, I12]
+    moist = tcwv >= 25.0
+    assert moist.sum() >= 4
+    gamma = (t_air - bt11)[moist] / (bt11 - bt12)[moist]
+    assert np.all((gamma >= 1.5) & (gamma <= 3.5)), gamma
+
+
+@pytest.mark.parametrize("name", [ch.name for ch in channels()])
+def test_deficit_grows_with_view_angle(name):
+    # common practice: the slant path through the absorbing layer grows as sec θ, so the
+    # deficit T_s − T_ch grows with the view angle in every channel and every atmosphere
+    i = channel_index(name)
+    zeniths = [0.0, 20.0, 40.0, 55.0, 65.0]
+    deficits = []
+    for zen in zeniths:
+        t_air, _, _, sky = _simulate(zen)
+        deficits.append(t_air - sky.brightness_temperature[:, i])
+    deficits = np.array(deficits)  # (zenith, atmosphere)
+    assert np.all(deficits > 0)
+    assert np.all(np.diff(deficits, axis=0) > 0)
+
+
+def test_surface_transmittance_falls_with_water_vapour_and_angle():
+    # Beer–Lambert (common practice): more absorber or a longer path, less transmittance
+    _, _, _, nadir = _simulate(0.0)
+    _, _, _, slant = _simulate(60.0)
+    assert np.all(np.diff(nadir.surface_transmittance[:, I11]) < 0)
+    assert np.all(slant.surface_transmittance < nadir.surface_transmittance)
+    # exactly the nadir transmittance to the power sec θ = 2 (τ/μ scaling, common practice)
+    assert_allclose(slant.surface_transmittance, nadir.surface_transmittance**2, rtol=1e-12)
+
+
+@pytest.mark.parametrize("zenith", [0.0, 50.0])
+def test_float32_and_float64_agree(zenith):
+    # float32 rounding ≈ 1e-7 relative ≈ 1e-5 K; the requirement is 0.01 K
+    *_, sky64 = _simulate(zenith, np.float64)
+    *_, sky32 = _simulate(zenith, np.float32)
+    assert sky32.brightness_temperature.dtype == np.float32
+    assert np.max(np.abs(sky32.brightness_temperature - sky64.brightness_temperature)) <= 0.01
