@@ -92,7 +92,7 @@ def _check_values(cfg, problems):
         ok = isinstance(spec, dict) and set(spec) == {"centre", "width"} and all(
             isinstance(v, (int, float)) and not isinstance(v, bool) for v in spec.values())
         need(ok, f"'channels.{name}' must be a table {{ centre = <cm-1>, width = <cm-1> }}; got {spec!r}.")
-    need(cfg["screening"]["marginal_band"] >= 0, "'screening.marginal_band' must be ≥ 0 K.")
+    need(0 <= cfg["screening"]["marginal_fraction"] <= 1, "'screening.marginal_fraction' must lie within 0–1.")
     need(0 <= cfg["screening"]["night_sun_zenith"] <= 120, "'screening.night_sun_zenith' must lie within 0–120°.")
     for test, table in cfg["tests"].items():
         for key, val in table.items():

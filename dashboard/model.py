@@ -43,7 +43,8 @@ class ScreeningModel(param.Parameterized):
     top_pressure = param.Number(default=500.0, bounds=(50.0, 1050.0), step=10.0,
                                 doc="Cloud-top pressure for the fixed choice [hPa]")
     remove_bias = param.Boolean(default=False, doc="Subtract the clear-sky bias fit and screen again")
-    marginal_band = param.Number(default=0.5, bounds=(0.0, 5.0), step=0.1, doc="Marginal band [K]")
+    marginal_fraction = param.Number(default=0.25, bounds=(0.0, 1.0), step=0.05,
+                                     doc="Marginal band as a fraction of each test's threshold [1]")
     channel = param.Selector(default=None, objects=[], doc="Channel shown on the brightness-temperature maps")
     version = param.Integer(default=0, doc="Incremented after every update of the results")
     busy = param.Boolean(default=False, doc="An update is running")
@@ -56,7 +57,7 @@ class ScreeningModel(param.Parameterized):
         cc = self.config["cloud"]
         self.param.update(cloud_top=cc["top"], top_pressure=float(np.clip(cc["top_pressure"], 50, 1050)),
                           remove_bias=self.config["bias"]["remove"],
-                          marginal_band=self.config["screening"]["marginal_band"])
+                          marginal_fraction=self.config["screening"]["marginal_fraction"])
         self.param.channel.objects = list(scene.channels)
         self.channel = "11um" if "11um" in scene.channels else scene.channels[0]
         n = scene.data.sizes["y"] * scene.data.sizes["x"]
@@ -89,7 +90,7 @@ class ScreeningModel(param.Parameterized):
         cfg["cloud"]["top_pressure"] = float(self.top_pressure)
         cfg["cloud"].pop("top_height", None) if self.cloud_top != "fixed" or self._fixed_by_pressure else None
         cfg["bias"]["remove"] = bool(self.remove_bias)
-        cfg["screening"]["marginal_band"] = float(self.marginal_band)
+        cfg["screening"]["marginal_fraction"] = float(self.marginal_fraction)
         return cfg
 
     _fixed_by_pressure = True
@@ -115,7 +116,7 @@ class ScreeningModel(param.Parameterized):
         self.config["tests"][test]["enabled"] = bool(on)
         self._update()
 
-    @param.depends("cloud_top", "top_pressure", "remove_bias", "marginal_band", watch=True)
+    @param.depends("cloud_top", "top_pressure", "remove_bias", "marginal_fraction", watch=True)
     def _settings_changed(self):
         self._update()
 

@@ -445,11 +445,14 @@ def run_tests(ds, sim, config, departure, sigma_clear):
     else:
         d = departure[window_ch]
         ok = valid & np.isfinite(d)
-        mean, std = _local_std(d, ok, int(t["window"]))
+        win = int(t["window"])
+        _, std = _local_std(d, ok, win)
+        warmest = ndimage.maximum_filter(np.where(ok, d, -np.inf), size=win, mode="nearest")
         thr = per_surface(t["threshold"], codes)
-        # only a pixel at or below its neighbourhood mean can be the cloudy one; a clear pixel
-        # beside a cloud is warmer than the mean and is held back by that difference
-        margins["texture"] = std - thr - np.maximum(0.0, d - mean)
+        # A rough neighbourhood alone does not make the pixel cloudy: a clear pixel beside a
+        # cloud sits in a rough window too, but it is the warmest there. The pixel must also be
+        # colder than the warmest of its neighbours by twice the threshold.
+        margins["texture"] = np.minimum(std - thr, (warmest - d) - 2.0 * thr)
         thresholds["texture"] = thr
     # night-time 3.9 - 11 contrast
     t = tests_cfg["night_fog_contrast"]
@@ -460,7 +463,7 @@ def run_tests(ds, sim, config, departure, sigma_clear):
     elif not night.any():
         off("night_fog_contrast", "no night-time pixels (sun above the horizon, or sol_zenith missing)")
     else:
-        thr = per_surface(t["threshold"], codes)
+        thr = per_surface(t["threshold"], codes) + per_surface(t["per_path"], codes) * path
         m = -(departure["3p9um"] - departure["11um"]) - thr
         margins["night_fog_contrast"] = np.where(night, m, np.nan)
         thresholds["night_fog_contrast"] = -thr
@@ -482,15 +485,17 @@ def run_tests(ds, sim, config, departure, sigma_clear):
     return margins, thresholds, skipped, notes, night
 
 
-def classify(valid, margins, band, night=None, has_3p9=False, edits=None):
+def classify(valid, margins, thresholds, fraction, night=None, has_3p9=False, edits=None):
     """Class codes and bit field from the test margins (and analyst edits).
 
     Parameters
     ----------
     valid : (y, x) bool
     margins : dict test -> (y, x) [K]
-    band : float
-        Marginal band [K]: no test fired, but one within ``band`` of its threshold.
+    thresholds : dict test -> (y, x) threshold applied [K] (sign ignored)
+    fraction : float
+        Marginal band as a fraction of each test's threshold: no test fired, but one came
+        within ``fraction × |threshold|`` of firing.
     night : (y, x) bool, optional
     has_3p9 : bool
         Scene has the 3.9 µm channel (day pixels then get the daylight bit).
@@ -499,18 +504,21 @@ def classify(valid, margins, band, night=None, has_3p9=False, edits=None):
     """
     shape = valid.shape
     bits = np.zeros(shape, np.uint16)
-    worst = np.full(shape, -np.inf)
+    fired_any = np.zeros(shape, bool)
+    near_any = np.zeros(shape, bool)
     for name in TESTS:
         m = margins.get(name)
         if m is None:
             continue
-        fired = np.nan_to_num(m, nan=-np.inf) > 0
+        m = np.nan_to_num(m, nan=-np.inf)
+        fired = m > 0
         bits |= np.where(fired, BITS[name], 0).astype(np.uint16)
         if name in CLOUD_TESTS:
-            worst = np.maximum(worst, np.nan_to_num(m, nan=-np.inf))
+            fired_any |= fired
+            near_any |= m > -fraction * np.abs(thresholds[name])
     mask = np.full(shape, CLEAR, np.int8)
-    mask[worst > -band] = MARGINAL
-    mask[worst > 0] = CLOUD
+    mask[near_any] = MARGINAL
+    mask[fired_any] = CLOUD
     if has_3p9 and night is not None:
         bits |= np.where(valid & ~night, BITS["daylight_3p9um_unused"], 0).astype(np.uint16)
     if edits is not None:
@@ -577,17 +585,17 @@ def screen(scene, sim, config, edits=None, cloud=None):
     valid = ds["valid"].values
     departure = {ch: (ds[f"bt_{ch}"].values - sim.bt_clear[i]).astype(float) for i, ch in enumerate(sim.channels)}
     sigma = clear_sky_sigma(ds, sim, config)
-    band = config["screening"]["marginal_band"]
+    band = config["screening"]["marginal_fraction"]
     edit_codes = edits_grid(valid.shape, edits) if edits else None
     margins, thresholds, skipped, notes, night = run_tests(ds, sim, config, departure, sigma)
-    mask, bits = classify(valid, margins, band, night, "3p9um" in departure, edit_codes)
+    mask, bits = classify(valid, margins, thresholds, band, night, "3p9um" in departure, edit_codes)
     bias = fit_bias(departure, sim, mask, bits, valid, config["bias"]["min_pixels"])
     applied = False
     if config["bias"]["remove"]:
         if all(np.isfinite(b["a"]) for b in bias.values()):
             departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * sim.slant_path) for ch, d in departure.items()}
             margins, thresholds, skipped, notes, night = run_tests(ds, sim, config, departure, sigma)
-            mask, bits = classify(valid, margins, band, night, "3p9um" in departure, edit_codes)
+            mask, bits = classify(valid, margins, thresholds, band, night, "3p9um" in departure, edit_codes)
             applied = True
         else:
             notes.append(f"bias not removed: fewer than {config['bias']['min_pixels']} clear pixels to fit it")

@@ -273,9 +273,23 @@ def _grid_from_table(df, report, source):
     return grid, np.arange(r0, r0 + ny), np.arange(c0, c0 + nx)
 
 
+def _open_netcdf(path):
+    """Open with an explicit engine (guessing imports every installed backend, seconds)."""
+    with open(path, "rb") as fh:
+        magic = fh.read(8)
+    if magic.startswith(b"\x89HDF"):
+        try:
+            return xr.open_dataset(path, engine="netcdf4", mask_and_scale=True)
+        except Exception:  # noqa: BLE001 — fall back to the pure-h5py reader
+            return xr.open_dataset(path, engine="h5netcdf", mask_and_scale=True)
+    if magic.startswith(b"CDF"):
+        return xr.open_dataset(path, engine="netcdf4", mask_and_scale=True)
+    raise ValueError("the file does not start like NetCDF (no HDF5 or CDF signature)")
+
+
 def _grid_from_netcdf(path, report):
     try:
-        ds = xr.open_dataset(path, engine=None, mask_and_scale=True)
+        ds = _open_netcdf(path)
         ds = ds.load()
     except Exception as exc:  # netCDF4/h5py raise a variety of errors for broken files
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
