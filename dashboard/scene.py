@@ -159,9 +159,14 @@ def _read_csv(path, report):
             name = {";": "semicolons", "\t": "tabs", "|": "vertical bars"}[sep]
             raise SceneError(f"'{Path(path).name}' separates columns with {name}; cloudsieve reads comma-separated "
                              "tables. Re-export with commas (e.g. pandas: df.to_csv(path, index=False)).")
+    import warnings
+
     try:
-        df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
-    except (pd.errors.ParserError, UnicodeDecodeError, ValueError) as exc:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", pd.errors.ParserWarning)
+            df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, index_col=False,
+                             on_bad_lines="error")
+    except (pd.errors.ParserError, pd.errors.ParserWarning, UnicodeDecodeError, ValueError) as exc:
         msg = str(exc).splitlines()[0]
         raise SceneError(f"'{Path(path).name}' is not a well-formed CSV table ({msg}). "
                          "Every row must have the same number of comma-separated fields as the header.") from None

@@ -1,0 +1,108 @@
+"""The cloudsieve command line: commands, outputs, exit codes, no tracebacks."""
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import xarray as xr
+
+from dashboard.cli import main
+
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
+SMALL = SAMPLES / "night_front_small.csv"
+EXE = Path(sys.executable).with_name("cloudsieve")
+
+
+def run(*args):
+    """Run the installed console script as a user would."""
+    out = subprocess.run([str(EXE), *map(str, args)], capture_output=True, text=True, timeout=300)
+    assert "Traceback" not in out.stderr, out.stderr
+    return out
+
+
+def test_help_explains_the_job():
+    out = run("--help")
+    assert out.returncode == 0
+    assert "clear-sky" in out.stdout and "exit codes" in out.stdout and "not a certified" in out.stdout
+    for cmd in ("check", "screen", "simulate", "serve"):
+        assert cmd in out.stdout
+
+
+def test_check_good_and_bad(tmp_path):
+    out = run("check", SMALL)
+    assert out.returncode == 0 and "usable" in out.stdout
+    bad = tmp_path / "bad.csv"
+    pd.read_csv(SMALL).drop(columns=["t_skin"]).to_csv(bad, index=False)
+    out = run("check", bad)
+    assert out.returncode == 2 and "t_skin" in out.stdout
+
+
+def test_screen_one_scene_netcdf_and_csv(tmp_path):
+    assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.nc"), "--quiet"]) == 0
+    ds = xr.open_dataset(tmp_path / "m.nc")
+    assert {"mask", "test_bits", "cloud_optical_depth"} <= set(ds.data_vars)
+    assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.csv"), "--quiet"]) == 0
+    df = pd.read_csv(tmp_path / "m.csv")
+    assert list(df["mask"].map({"clear": 0, "marginal": 1, "cloud": 2, "no_data": 3})) == list(ds["mask"].values.ravel())
+
+
+def test_screen_many_scenes_into_folder_one_bad(tmp_path):
+    bad = tmp_path / "broken.csv"
+    bad.write_text("row,col\n")
+    good = tmp_path / "good.csv"
+    good.write_bytes(SMALL.read_bytes())
+    out = run("screen", good, bad, "--out", tmp_path / "out")
+    assert out.returncode == 4  # some scenes failed, the others were written
+    assert (tmp_path / "out" / "good_mask.nc").exists()
+    assert "broken.csv" in out.stderr and "no pixel rows" in out.stderr
+    assert "good" in out.stdout  # summary table
+
+
+def test_screen_glob_pattern(tmp_path):
+    for name in ("a.csv", "b.csv"):
+        (tmp_path / name).write_bytes(SMALL.read_bytes())
+    assert main(["screen", str(tmp_path / "*.csv"), "--out", str(tmp_path / "res"), "--quiet", "--format", "csv"]) == 0
+    assert sorted(p.name for p in (tmp_path / "res").iterdir()) == ["a_mask.csv", "b_mask.csv"]
+
+
+def test_simulate(tmp_path):
+    out = run("simulate", SMALL, "--out", tmp_path / "clear.nc")
+    assert out.returncode == 0
+    ds = xr.open_dataset(tmp_path / "clear.nc")
+    assert "bt_clear_11um" in ds and ds["bt_clear_11um"].attrs["units"] == "K"
+
+
+def test_exit_codes_for_bad_input_and_output(tmp_path):
+    out = run("screen", tmp_path / "missing.csv", "--out", tmp_path / "x.nc")
+    assert out.returncode == 2 and "does not exist" in out.stderr
+    out = run("screen", SMALL, "--out", tmp_path / "no" / "such" / "x.nc")
+    assert out.returncode == 3 and "does not exist" in out.stderr
+    cfg = tmp_path / "bad.toml"
+    cfg.write_text("[tests.texture]\ntreshold = 1\n")
+    out = run("screen", SMALL, "--out", tmp_path / "x.nc", "--config", cfg)
+    assert out.returncode == 2 and "treshold" in out.stderr
+    out = run("screen", SMALL)
+    assert out.returncode == 2 and "--out" in out.stderr
+
+
+def test_config_show_round_trips(tmp_path):
+    out = run("config", "--show")
+    assert out.returncode == 0
+    path = tmp_path / "mine.toml"
+    path.write_text(out.stdout)
+    assert run("config", "--check", path).returncode == 0
+
+
+def test_qa_journal_applied_by_cli(tmp_path):
+    scene = tmp_path / "s.csv"
+    scene.write_bytes(SMALL.read_bytes())
+    from dashboard.journal import Journal, journal_path
+
+    j = Journal(journal_path(scene), 10_000)
+    j.add("cloud", [0, 1, 2])
+    assert main(["screen", str(scene), "--out", str(tmp_path / "m.csv"), "--quiet"]) == 0
+    df = pd.read_csv(tmp_path / "m.csv")
+    assert (df["mask"].iloc[:3] == "cloud").all()
+    assert main(["screen", str(scene), "--out", str(tmp_path / "n.csv"), "--quiet", "--no-edits"]) == 0

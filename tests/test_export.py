@@ -1,0 +1,94 @@
+"""Exports: CF-NetCDF checked by a CF checker from the registry, re-read round trips, CSV
+content, atomic writes."""
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from dashboard import export
+from dashboard.config import load_config
+from dashboard.model import ScreeningModel
+
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
+
+
+@pytest.fixture(scope="module")
+def model():
+    return ScreeningModel.open(SAMPLES / "night_front_small.csv", load_config(), journal=False)
+
+
+@pytest.fixture(scope="module")
+def result(model):
+    return model.result_dataset()
+
+
+def _checker():
+    exe = Path(sys.executable).with_name("compliance-checker")
+    return str(exe) if exe.exists() else shutil.which("compliance-checker")
+
+
+def test_netcdf_passes_cf_checker(tmp_path, result):
+    """CF-1.10 conformance by the IOOS compliance-checker (registry package)."""
+    path = export.write_netcdf(result, tmp_path / "mask.nc")
+    exe = _checker()
+    assert exe, "compliance-checker must be installed (pip install compliance-checker)"
+    out = subprocess.run([exe, "--test=cf:1.10", "--criteria=normal", "--format=json", "-o", "-", str(path)],
+                         capture_output=True, text=True, timeout=300)
+    report = json.loads(out.stdout)
+    cf = next(iter(report.values()))
+    high = [m for m in cf["high_priorities"] if m["value"][0] != m["value"][1]]
+    medium = [m for m in cf["medium_priorities"] if m["value"][0] != m["value"][1]]
+    assert not high and not medium, (high, medium)
+
+
+def test_netcdf_round_trip(tmp_path, result):
+    path = export.write_netcdf(result, tmp_path / "mask.nc")
+    back = xr.open_dataset(path)
+    np.testing.assert_array_equal(back["mask"].values, result["mask"].values)
+    np.testing.assert_array_equal(back["test_bits"].values, result["test_bits"].values)
+    np.testing.assert_allclose(back["departure_11um"].values, result["departure_11um"].values, equal_nan=True)
+    assert back["mask"].attrs["flag_meanings"] == "clear marginal cloud no_data"
+    assert "cold_departure" in back["test_bits"].attrs["flag_meanings"]
+    assert back["inversion_status"].attrs["flag_meanings"].split()[0] == "inverted"
+    cfg = json.loads(back.attrs["cloudsieve_config"])
+    assert cfg["cloud"]["top"] == "opaque"
+    assert back.attrs["source"].startswith("cloudsieve")
+
+
+def test_csv_columns_and_values(tmp_path, result):
+    path = export.write_csv(result, tmp_path / "mask.csv")
+    df = pd.read_csv(path)
+    for col in ("row", "col", "lat", "lon", "mask", "test_bits", "margin_cold_departure", "departure_11um",
+                "bt_clear_11um", "cloud_optical_depth", "cloud_top_pressure", "inversion_status"):
+        assert col in df.columns
+    assert set(df["mask"]) <= {"clear", "marginal", "cloud", "no_data"}
+    assert len(df) == result.sizes["y"] * result.sizes["x"]
+    np.testing.assert_allclose(df["departure_11um"].to_numpy(), result["departure_11um"].values.ravel(), atol=1e-4)
+
+
+def test_interrupted_write_leaves_old_file(tmp_path, result, monkeypatch):
+    target = tmp_path / "mask.csv"
+    target.write_text("old content\n")
+
+    def boom(self, *a, **k):
+        with open(a[0], "w") as fh:
+            fh.write("row,col\n0,")  # partial content, then the process "dies"
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(pd.DataFrame, "to_csv", boom)
+    with pytest.raises(export.OutputError, match="No space left"):
+        export.write_csv(result, target)
+    assert target.read_text() == "old content\n"
+    assert [p.name for p in tmp_path.iterdir()] == ["mask.csv"]  # no temporary left behind
+
+
+def test_missing_output_folder(tmp_path, result):
+    with pytest.raises(export.OutputError, match="does not exist"):
+        export.write_netcdf(result, tmp_path / "nope" / "mask.nc")

@@ -1,0 +1,130 @@
+"""Screening pipeline: departures, tests, classes, bias fit, user clear-sky values."""
+import copy
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from dashboard import pipeline as pl
+from dashboard.config import load_config
+from dashboard.scene import load_scene
+
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
+SMALL = SAMPLES / "night_front_small.csv"
+
+
+@pytest.fixture(scope="module")
+def cfg():
+    return load_config()
+
+
+@pytest.fixture(scope="module")
+def small(cfg):
+    scene = load_scene(SMALL, config=cfg)
+    return scene, pl.simulate(scene, cfg)
+
+
+def test_simulation_is_plausible(small):
+    scene, sim = small
+    i = sim.channels.index("11um")
+    clear_bt = sim.bt_clear[i]
+    skin = scene.data["t_skin"].values
+    # clear-sky 11 µm is colder than the skin by the atmospheric correction (common practice:
+    # ~0.5–10 K for 10–60 kg m-2 of water vapour) and never warmer than the skin by much
+    diff = skin - clear_bt
+    assert np.all(diff > 0) and np.all(diff < 12)
+
+
+def test_threads_and_chunks_do_not_change_results(small, cfg):
+    scene, sim = small
+    c = copy.deepcopy(cfg)
+    c["simulation"].update(threads=1, chunk_pixels=100)
+    other = pl.simulate(scene, c)
+    np.testing.assert_array_equal(sim.bt_clear, other.bt_clear)
+
+
+def test_classes_from_margins():
+    valid = np.array([[True, True, True, False]])
+    margins = {"cold_departure": np.array([[1.0, -0.1, -5.0, 2.0]]),
+               "texture": np.array([[np.nan, -3.0, -3.0, np.nan]])}
+    thr = {"cold_departure": np.full((1, 4), 2.0), "texture": np.full((1, 4), 0.5)}
+    mask, bits = pl.classify(valid, margins, thr, 0.25)
+    assert mask.tolist() == [[pl.CLOUD, pl.MARGINAL, pl.CLEAR, pl.NO_DATA]]
+    assert bits[0, 0] & pl.BITS["cold_departure"] and not bits[0, 1]
+    edits = np.array([[1, 2, 0, 0]], np.int8)
+    mask, bits = pl.classify(valid, margins, thr, 0.25, edits=edits)
+    assert mask.tolist() == [[pl.CLEAR, pl.CLOUD, pl.CLEAR, pl.NO_DATA]]
+    assert bits[0, 0] & pl.BITS["analyst_clear"] and bits[0, 1] & pl.BITS["analyst_cloud"]
+
+
+def test_warm_departure_does_not_make_cloud():
+    valid = np.ones((1, 1), bool)
+    mask, bits = pl.classify(valid, {"warm_departure": np.array([[3.0]])}, {"warm_departure": np.ones((1, 1))}, 0.25)
+    assert mask[0, 0] == pl.CLEAR and bits[0, 0] == pl.BITS["warm_departure"]
+
+
+def test_bias_fit_recovers_a_line(small):
+    scene, sim = small
+    x = sim.slant_path
+    dep = {"11um": 0.3 + 0.02 * x + np.random.default_rng(0).normal(0, 0.01, x.shape)}
+    mask = np.zeros(x.shape, np.int8)
+    bits = np.zeros(x.shape, np.uint16)
+    fit = pl.fit_bias(dep, sim, mask, bits, np.ones(x.shape, bool), 10)
+    assert fit["11um"]["a"] == pytest.approx(0.3, abs=0.02)
+    assert fit["11um"]["b"] == pytest.approx(0.02, abs=0.001)
+
+
+def test_bias_removal_centres_clear_departures(cfg):
+    scene = load_scene(SAMPLES / "day_coast.nc", config=cfg)
+    sim = pl.simulate(scene, cfg)
+    c = copy.deepcopy(cfg)
+    c["bias"]["remove"] = True
+    res = pl.screen(scene, sim, c)
+    clear = res.mask == pl.CLEAR
+    assert all(b["applied"] for b in res.bias.values())
+    assert abs(np.nanmean(res.departure["11um"][clear])) < 0.05
+
+
+def test_user_clear_sky_replaces_simulation(tmp_path, cfg):
+    df = pd.read_csv(SMALL)
+    df["bt_clear_11um"] = df["bt_11um"] + 0.25
+    path = tmp_path / "with_clear.csv"
+    df.to_csv(path, index=False)
+    scene = load_scene(path, config=cfg)
+    sim = pl.simulate(scene, cfg)
+    res = pl.screen(scene, sim, cfg)
+    assert sim.source["11um"] == "user" and sim.source["12um"] == "simulated"
+    np.testing.assert_allclose(res.departure["11um"], -0.25, atol=1e-4)
+
+
+def test_absent_channels_skip_tests_and_say_so(tmp_path, cfg):
+    df = pd.read_csv(SMALL).drop(columns=["bt_3p9um", "bt_12um", "bt_8p6um"])
+    path = tmp_path / "only11.csv"
+    df.to_csv(path, index=False)
+    scene = load_scene(path, config=cfg)
+    res = pl.screen(scene, pl.simulate(scene, cfg), cfg)
+    assert set(res.skipped) == {"split_window_excess", "night_fog_contrast"}
+    assert any("split_window_excess skipped" in n for n in res.notes)
+    assert "cold_departure" in res.margins
+
+
+def test_daylight_3p9_not_screened(tmp_path, cfg):
+    df = pd.read_csv(SMALL)
+    df.loc[df.index[: len(df) // 2], "sol_zenith"] = 40.0  # half the pixels by day
+    path = tmp_path / "dawn.csv"
+    df.to_csv(path, index=False)
+    scene = load_scene(path, config=cfg)
+    res = pl.screen(scene, pl.simulate(scene, cfg), cfg)
+    day = scene.data["sol_zenith"].values < 90
+    assert np.all(np.isnan(res.margins["night_fog_contrast"][day]))
+    assert np.all(res.bits[day] & pl.BITS["daylight_3p9um_unused"])
+    assert not np.any(res.bits[~day] & pl.BITS["daylight_3p9um_unused"])
+    assert any("reflected sunlight" in n for n in res.notes)
+
+
+def test_threshold_scales_with_water_vapour_path(small, cfg):
+    scene, sim = small
+    sigma = pl.clear_sky_sigma(scene.data, sim, cfg)
+    x = sim.slant_path
+    assert np.corrcoef(sigma.ravel(), x.ravel())[0, 1] > 0.9
