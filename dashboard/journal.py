@@ -48,7 +48,8 @@ class Journal:
         self.n_pixels = int(n_pixels)
         self.entries = []
         self.problems = []
-        self._lock = threading.Lock()
+        self._size = 0  # bytes of the file this object has read or written
+        self._lock = threading.RLock()
         self._load()
 
     def _load(self):
@@ -75,6 +76,18 @@ class Journal:
                 fh.write(b"\n")
                 fh.flush()
                 os.fsync(fh.fileno())
+        self._size = self.path.stat().st_size
+
+    def _refresh(self):
+        """Read the file again if another writer (a second dashboard session on the same
+        scene, the CLI) appended to it since, so ids stay unique and edits are not lost."""
+        try:
+            size = self.path.stat().st_size
+        except FileNotFoundError:
+            size = 0
+        if size != self._size:
+            self.entries, self.problems, self._size = [], [], 0
+            self._load()
 
     def _append(self, entry):
         data = (json.dumps(entry, separators=(",", ":")) + "\n").encode("utf-8")
@@ -82,6 +95,7 @@ class Journal:
         try:
             os.write(fd, data)
             os.fsync(fd)
+            self._size = os.fstat(fd).st_size
         finally:
             os.close(fd)
         self.entries.append(entry)
@@ -99,6 +113,7 @@ class Journal:
         if idx[0] < 0 or idx[-1] >= self.n_pixels:
             raise JournalError(f"pixel index out of the scene (0–{self.n_pixels - 1})")
         with self._lock:
+            self._refresh()
             entry = {"id": self._next_id(), "time": _now(), "action": action, "count": len(idx), "index": idx}
             self._append(entry)
         return entry
@@ -106,6 +121,7 @@ class Journal:
     def undo(self):
         """Cancel the latest edit that is still active; returns it (or None)."""
         with self._lock:
+            self._refresh()
             active = self.active()
             if not active:
                 return None
@@ -115,6 +131,8 @@ class Journal:
 
     def active(self):
         """Edits in force, in order (those not undone)."""
+        with self._lock:
+            self._refresh()
         undone = {e["target"] for e in self.entries if e["action"] == "undo"}
         return [e for e in self.entries if e["action"] in ACTIONS and e["id"] not in undone]
 

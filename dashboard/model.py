@@ -50,7 +50,9 @@ class ScreeningModel(param.Parameterized):
     busy = param.Boolean(default=False, doc="An update is running")
     message = param.String(default="", doc="Last user-facing message (errors included)")
 
-    def __init__(self, scene, config=None, journal=None, **params):
+    def __init__(self, scene, config=None, journal=None, sim=None, **params):
+        """``sim``: a Simulation of this scene under this configuration, to reuse (the
+        dashboard caches one per file); computed when omitted."""
         super().__init__(**params)
         self.scene = scene
         self.config = copy.deepcopy(config) if config is not None else load_config()
@@ -65,7 +67,7 @@ class ScreeningModel(param.Parameterized):
             Journal(journal_path(scene.path), n) if scene.path is not None else None)
         if self.journal is not None and self.journal.problems:
             self.message = "; ".join(self.journal.problems)
-        self.sim = pl.simulate(scene, self.config)
+        self.sim = sim if sim is not None else pl.simulate(scene, self.config)
         self._cloud = None
         self._cloud_key = None
         self.result = None

@@ -281,73 +281,89 @@ def invert_all(scene, sim, config, bias=None):
     if sim.level_pressure is None or idx.size == 0:
         notes.append("no inversion: the simulation kept no level data")
     else:
-        obs_bt = np.stack([ds[f"bt_{c}"].values.ravel()[idx] for c in inv], axis=-1)
-        clr_bt = np.stack([sim.bt_clear[i].ravel()[idx] for i in ci], axis=-1).astype(float)
-        if bias:
-            clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * sim.slant_path.ravel()[idx] if c in bias
-                                        else np.zeros(idx.size) for c in inv], axis=-1)
-        obs = np.stack([ch.radiance(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-        clr = np.stack([ch.radiance(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-        sig_k = clear_sky_sigma(ds, sim, config).ravel()[idx]
-        s_obs = np.stack([cc["nedt"] * ch.radiance_derivative(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-        s_clr = np.stack([sig_k * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-        lp = sim.level_pressure.astype(float)
-        lt = sim.level_temperature.astype(float)
-        opq = sim.opaque_radiance[:, :, ci].astype(float)
-        mu = np.cos(np.deg2rad(ds["sat_zenith"].values.ravel()[idx]))
-        # the tropopause (first temperature minimum going up) bounds the cloud top
-        k_trop = np.argmin(lt, axis=-1)
-        top_limit = np.take_along_axis(lp, k_trop[:, None], axis=-1)[:, 0]
-        ref = inv.index(cc["reference_channel"]) if cc["reference_channel"] in inv else 0
-        if cc["reference_channel"] not in inv:
-            notes.append(f"reference channel {cc['reference_channel']} absent: {inv[ref]} places the opaque top")
-        pair = tuple(cc["pair"])
-        use_method = method
-        if method == "grey":
-            if all(p in inv for p in pair):
-                pair_idx = (inv.index(pair[0]), inv.index(pair[1]))
-            else:
-                pair_idx = (0, 0)
-                use_method = "opaque"
-                notes.append(f"grey-consistency top needs {pair[0]} and {pair[1]}: using the opaque top instead")
-        else:
-            pair_idx = (0, min(1, n_inv - 1))
-        fixed = None
-        if method == "fixed":
-            if "top_height" in cc:
-                z = geopotential_height(lp, lt)
-                target = cc["top_height"] * 1000.0 + z[:, 0]
-                k = np.clip(np.sum(z <= target[:, None], axis=-1) - 1, 0, lp.shape[1] - 2)
-                z0 = np.take_along_axis(z, k[:, None], -1)[:, 0]
-                z1 = np.take_along_axis(z, k[:, None] + 1, -1)[:, 0]
-                p0 = np.take_along_axis(lp, k[:, None], -1)[:, 0]
-                p1 = np.take_along_axis(lp, k[:, None] + 1, -1)[:, 0]
-                w = np.clip((target - z0) / (z1 - z0), 0, 1)
-                fixed = np.exp(np.log(p0) + w * (np.log(p1) - np.log(p0)))
-            else:
-                fixed = np.full(idx.size, cc["top_pressure"])
-        res = pcloud.invert_grey_cloud(
-            obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(idx.size, bool), method=use_method,
-            fixed_pressure=fixed, reference=ref, pair=pair_idx, top_limit=top_limit, eps_max=cc["eps_max"],
-            max_sigma_pressure=cc["max_sigma_pressure"],
-        )
-        out_eps[:, idx] = res.emissivity.T
-        out["tau"][idx] = res.optical_depth
-        out["stau"][idx] = res.optical_depth_sigma
-        out["pc"][idx] = res.top_pressure
-        out["tc"][idx] = res.top_temperature
-        status[idx] = res.status
-        uncertain[idx] = res.uncertain
-        # phase from the top temperature -> similarity-relation extinction
-        ice, water = cc["optics"]["ice"], cc["optics"]["water"]
-        frac_ice = np.clip((cc["water_above"] - res.top_temperature) / max(cc["water_above"] - cc["ice_below"], 1e-6),
-                           0.0, 1.0)
-        ssa = frac_ice * ice["single_scattering_albedo"] + (1 - frac_ice) * water["single_scattering_albedo"]
-        g = frac_ice * ice["asymmetry"] + (1 - frac_ice) * water["asymmetry"]
-        out["text"][idx] = pcloud.extinction_optical_depth(res.optical_depth, ssa, g)
+        chunk = max(1024, int(config["simulation"]["chunk_pixels"]) * 16)
+        sigma_k = clear_sky_sigma(ds, sim, config).ravel()
+        for start in range(0, idx.size, chunk):
+            _invert_block(slice(start, min(start + chunk, idx.size)), ds, sim, config, bias, inv, ci, chans,
+                          out_eps, out, status, uncertain, notes if start == 0 else [], sigma_k)
     r2 = lambda a: a.reshape(ny, nx)  # noqa: E731
     return CloudLayer(out_eps.reshape(n_inv, ny, nx), r2(out["tau"]), r2(out["stau"]), r2(out["text"]), r2(out["pc"]),
                       r2(out["tc"]), r2(status), r2(uncertain), tuple(inv), method, notes)
+
+
+
+
+def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain, notes, sigma_k):
+    """Invert one block of valid pixels (bounded memory); writes into the output arrays."""
+    cc = config["cloud"]
+    method = cc["top"]
+    n_inv = len(inv)
+    idx = sim.valid_index[blk]
+    n_blk = idx.size
+    obs_bt = np.stack([ds[f"bt_{c}"].values.ravel()[idx] for c in inv], axis=-1)
+    clr_bt = np.stack([sim.bt_clear[i].ravel()[idx] for i in ci], axis=-1).astype(float)
+    if bias:
+        clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * sim.slant_path.ravel()[idx] if c in bias
+                                    else np.zeros(n_blk) for c in inv], axis=-1)
+    obs = np.stack([ch.radiance(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    clr = np.stack([ch.radiance(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    sig_k = sigma_k[idx]
+    s_obs = np.stack([cc["nedt"] * ch.radiance_derivative(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    s_clr = np.stack([sig_k * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    lp = sim.level_pressure[blk].astype(float)
+    lt = sim.level_temperature[blk].astype(float)
+    opq = sim.opaque_radiance[blk][:, :, ci].astype(float)
+    mu = np.cos(np.deg2rad(ds["sat_zenith"].values.ravel()[idx]))
+    # the tropopause (first temperature minimum going up) bounds the cloud top
+    k_trop = np.argmin(lt, axis=-1)
+    top_limit = np.take_along_axis(lp, k_trop[:, None], axis=-1)[:, 0]
+    ref = inv.index(cc["reference_channel"]) if cc["reference_channel"] in inv else 0
+    if cc["reference_channel"] not in inv:
+        notes.append(f"reference channel {cc['reference_channel']} absent: {inv[ref]} places the opaque top")
+    pair = tuple(cc["pair"])
+    use_method = method
+    if method == "grey":
+        if all(p in inv for p in pair):
+            pair_idx = (inv.index(pair[0]), inv.index(pair[1]))
+        else:
+            pair_idx = (0, 0)
+            use_method = "opaque"
+            notes.append(f"grey-consistency top needs {pair[0]} and {pair[1]}: using the opaque top instead")
+    else:
+        pair_idx = (0, min(1, n_inv - 1))
+    fixed = None
+    if method == "fixed":
+        if "top_height" in cc:
+            z = geopotential_height(lp, lt)
+            target = cc["top_height"] * 1000.0 + z[:, 0]
+            k = np.clip(np.sum(z <= target[:, None], axis=-1) - 1, 0, lp.shape[1] - 2)
+            z0 = np.take_along_axis(z, k[:, None], -1)[:, 0]
+            z1 = np.take_along_axis(z, k[:, None] + 1, -1)[:, 0]
+            p0 = np.take_along_axis(lp, k[:, None], -1)[:, 0]
+            p1 = np.take_along_axis(lp, k[:, None] + 1, -1)[:, 0]
+            w = np.clip((target - z0) / (z1 - z0), 0, 1)
+            fixed = np.exp(np.log(p0) + w * (np.log(p1) - np.log(p0)))
+        else:
+            fixed = np.full(n_blk, cc["top_pressure"])
+    res = pcloud.invert_grey_cloud(
+        obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(n_blk, bool), method=use_method,
+        fixed_pressure=fixed, reference=ref, pair=pair_idx, top_limit=top_limit, eps_max=cc["eps_max"],
+        max_sigma_pressure=cc["max_sigma_pressure"],
+    )
+    out_eps[:, idx] = res.emissivity.T
+    out["tau"][idx] = res.optical_depth
+    out["stau"][idx] = res.optical_depth_sigma
+    out["pc"][idx] = res.top_pressure
+    out["tc"][idx] = res.top_temperature
+    status[idx] = res.status
+    uncertain[idx] = res.uncertain
+    # phase from the top temperature -> similarity-relation extinction
+    ice, water = cc["optics"]["ice"], cc["optics"]["water"]
+    frac_ice = np.clip((cc["water_above"] - res.top_temperature) / max(cc["water_above"] - cc["ice_below"], 1e-6),
+                       0.0, 1.0)
+    ssa = frac_ice * ice["single_scattering_albedo"] + (1 - frac_ice) * water["single_scattering_albedo"]
+    g = frac_ice * ice["asymmetry"] + (1 - frac_ice) * water["asymmetry"]
+    out["text"][idx] = pcloud.extinction_optical_depth(res.optical_depth, ssa, g)
 
 
 # ---------------------------------------------------------------------------------------

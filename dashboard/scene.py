@@ -211,8 +211,13 @@ def _numeric_table(df, report):
 
 
 def _surface_codes_from_text(values, report):
-    text = pd.Series(values).astype(str).str.strip().str.lower()
-    codes = text.map(lambda v: SURFACE_CODES.get(v, {"0": 0, "1": 1, "2": 2, "0.0": 0, "1.0": 1, "2.0": 2}.get(v, -1)))
+    raw = pd.Series(values)
+    lut = dict(SURFACE_CODES, **{"0": 0, "1": 1, "2": 2, "0.0": 0, "1.0": 1, "2.0": 2})
+    inverse, uniq = pd.factorize(raw.astype(str), use_na_sentinel=False)  # hashing; few distinct values
+    uniq = np.asarray(uniq, dtype=object)
+    norm = np.array([u.strip().lower() for u in uniq], dtype=object)
+    text = pd.Series(norm[inverse.ravel()])
+    codes = pd.Series(np.array([lut.get(u, -1) for u in norm], dtype=np.int64)[inverse.ravel()])
     missing = text.isin(["", "nan", "none", "null"])
     bad = (codes < 0) & ~missing
     if bad.any():
