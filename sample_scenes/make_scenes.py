@@ -36,6 +36,7 @@ All random numbers come from ``numpy.random.default_rng([scene_seed, crc32(field
 so the output is the same on every run (byte for byte, for the same library versions).
 """
 import argparse
+import os
 import tomllib
 import zlib
 from pathlib import Path
@@ -94,7 +95,7 @@ LAND_EMISSIVITY_SPREAD = (0.012, 0.015, 0.005, 0.004)
 #: droplets absorb less and scatter more at 3.9 µm than at 11 µm (common practice for the
 #: night-time fog signature BT3.9 − BT11 < 0).
 WATER_ABSORPTION_RATIO_3P9 = 0.6
-WATER_REFLECTIVITY_MAX_3P9 = 0.13
+WATER_REFLECTIVITY_MAX_3P9 = 0.15
 #: Structures whose phase follows their top temperature are ice below this [K]
 #: (≈ −20 °C; common practice, from memory).
 ICE_TOP_TEMPERATURE = 253.15
@@ -283,7 +284,7 @@ def make_night_front():
     e2 = (-up_r * np.sin(ang) + up_c * np.cos(ang)) / 52.0
     upwelling = np.exp(-(e1**2 + e2**2) ** 1.3)
     eddies = smooth_field(seed, "sst_eddies", shape, 12.0)
-    sst = 292.2 + 6.8 * rows / (ny - 1) + 0.6 * eddies + 1.2 * warm - 3.6 * upwelling
+    sst = 291.6 + 6.0 * rows / (ny - 1) + 0.5 * eddies + 1.0 * warm - 3.6 * upwelling
     surface = np.zeros(shape, dtype=np.int8)
     t_skin = sst
     # air - sea: slightly cold air behind the front, warm moist air over the cool patch
@@ -292,8 +293,9 @@ def make_night_front():
     t_air = t_skin + air_sea
     p_surf = 1010.0 + 5.0 * smooth_field(seed, "p_surf", shape, 60.0) - 7.0 * np.exp(-((across + 15.0) / 90.0) ** 2)
     p_surf = np.clip(p_surf, 1000.0, 1020.0)
-    saturation = 0.30 + 0.45 * warm + 0.04 * smooth_field(seed, "humidity", shape, 18.0)
-    tcwv = column_from_saturation(t_air, p_surf, saturation)
+    # moist warm sector, dry cold sector; drier aloft over the upwelling (subsiding air)
+    saturation = 0.33 + 0.42 * warm - 0.30 * upwelling + 0.04 * smooth_field(seed, "humidity", shape, 18.0)
+    tcwv = np.clip(column_from_saturation(t_air, p_surf, saturation), 10.0, 50.0)
 
     sat_zenith = swath_zenith(shape, 5.0, 60.0)
     sol_zenith = solar_zenith(lat, lon, declination=-8.0, utc_hour=7.0)
@@ -366,7 +368,7 @@ def make_day_coast():
     offshore = ndimage.distance_transform_edt(~land) * pixel_km  # [km] from the land
 
     # Taskel Hills: terrain rises inland to ~1.4 km
-    hills = special.ndtr((inland - 70.0) / 35.0) * (0.75 + 0.25 * smooth_field(seed, "hills", shape, 15.0))
+    hills = special.ndtr((inland - 70.0) / 35.0) * to_range(smooth_field(seed, "hills", shape, 15.0), 0.55, 1.05)
     height_m = np.where(land, 1400.0 * np.clip(hills, 0.0, None) + 60.0 * special.ndtr(inland / 3.0 - 1.0), 0.0)
     p_msl = 1014.0 + 2.0 * smooth_field(seed, "p_msl", shape, 60.0)
     # hypsometric reduction with a scale height of R_d T / g ≈ 8.4 km at 288 K (approximate)
@@ -375,11 +377,13 @@ def make_day_coast():
     sst = 294.0 + 1.2 * smooth_field(seed, "sst", shape, 30.0) - 0.8 * np.exp(-offshore / 12.0)
     t_air_land = 298.5 + 0.8 * smooth_field(seed, "t_air_land", shape, 25.0) - 0.0065 * height_m + 1.0 * special.ndtr(inland / 10.0 - 1.0)
     sea_air = sst + np.clip(0.25 + 0.35 * smooth_field(seed, "air_sea", shape, 25.0), -0.5, 1.0)
-    t_air = np.where(land, t_air_land, sea_air)
+    # the air changes from its sea to its land value over a few km across the coast
+    land_weight = np.clip(ndimage.gaussian_filter(land.astype(float), 3.0 / pixel_km, mode="nearest"), 0.0, 1.0)
+    t_air = land_weight * t_air_land + (1.0 - land_weight) * sea_air
     # sunlit land: skin warmer than the air by 4–12 K (drier ground warmer)
     dryness = smooth_field(seed, "dryness", shape, 12.0)
-    t_skin = np.where(land, t_air_land + to_range(dryness, 4.0, 12.0), sst)
-    saturation = np.where(land, 0.48 - 0.06 * dryness, 0.58) + 0.04 * smooth_field(seed, "humidity", shape, 20.0)
+    t_skin = np.where(land, t_air + to_range(dryness, 4.0, 12.0), sst)
+    saturation = 0.58 - land_weight * (0.10 + 0.06 * dryness) + 0.04 * smooth_field(seed, "humidity", shape, 20.0)
     tcwv = column_from_saturation(t_air, p_surf, saturation)
 
     sat_zenith = swath_zenith(shape, 22.0, 46.0, tilt=-0.1)
@@ -400,7 +404,7 @@ def make_day_coast():
     tau_cu = 2.0 + 28.0 * strength
     cumulus = Cloud(f_cu, tau_cu, p_top_cu, p_base_cu, np.full(shape, WATER), FEATURES.index("cumulus_field"))
 
-    # two cirrus streaks across the north of the scene
+    # cirrus streaks, most of them across the north of the scene
     streaks = streak_field(seed, "cirrus_streaks", shape, 3.0, 30.0, angle_deg=-20.0)
     envelope = np.exp(-((rows - 70.0) / 55.0) ** 2)
     f_ci = smoothstep((streaks + 1.5 * envelope - 1.9) / 0.6)
@@ -410,7 +414,7 @@ def make_day_coast():
     cirrus = Cloud(f_ci, tau_ci, p_top_ci, p_base_ci, np.full(shape, ICE), FEATURES.index("cirrus_streak"))
 
     # a few stratocumulus patches over the sea, away from the coast
-    blobs = smooth_field(seed, "sc_blobs", shape, 7.0)
+    blobs = smooth_field(seed, "sc_blobs", shape, 11.0)
     f_sc = smoothstep((blobs - 1.45) / 0.35) * smoothstep((offshore - 8.0) / 6.0)
     p_top_sc = p_surf - to_range(smooth_field(seed, "sc_top", shape, 15.0), 110.0, 160.0)
     p_base_sc = p_top_sc + to_range(smooth_field(seed, "sc_depth", shape, 10.0), 30.0, 60.0)
@@ -422,7 +426,7 @@ def make_day_coast():
         "Invented day scene: cumulus over the Corvenna coast and the Taskel Hills",
         "A summer morning on the invented Corvenna coast: sea to the west with the small invented Isle "
         "of Quennet, sunlit land to the east rising into the invented Taskel Hills, fair-weather cumulus "
-        "fields inland, two cirrus streaks in the north and a few stratocumulus patches over the sea. "
+        "fields inland, cirrus streaks (most in the north) and a few stratocumulus patches over the sea. "
         "Only the 11 and 12 µm channels (a daytime product without 3.9 µm).",
         seed, pixel_km, channels, lat, lon, sat_zenith, sol_zenith, surface, t_skin, t_air, tcwv, p_surf,
         emissivity, (cirrus, cumulus, stratocu),
@@ -450,7 +454,7 @@ def make_polar_ice():
     sea_weight = ndimage.gaussian_filter(sea.astype(float), 6.0, mode="nearest")
 
     # over ice: a surface-based inversion, skin 2–7 K colder than the air
-    t_air_ice = 256.0 + 2.5 * smooth_field(seed, "t_air", shape, 30.0)
+    t_air_ice = 257.0 + 2.5 * smooth_field(seed, "t_air", shape, 30.0)
     inversion = to_range(smooth_field(seed, "inversion", shape, 15.0), 2.0, 7.0)
     t_air_sea = 263.0 + 1.0 * smooth_field(seed, "t_air_sea", shape, 30.0)
     t_air = t_air_ice + np.clip(2.0 * sea_weight, 0.0, 1.0) * (t_air_sea - t_air_ice)
@@ -458,7 +462,7 @@ def make_polar_ice():
     t_skin = np.where(sea, 271.35 + 0.3 * special.ndtr(smooth_field(seed, "sst", shape, 10.0)), t_air - inversion)
     p_surf = 1015.0 + 6.0 * smooth_field(seed, "p_surf", shape, 50.0)
     saturation = 0.62 + 0.08 * sea_weight + 0.05 * smooth_field(seed, "humidity", shape, 20.0)
-    tcwv = column_from_saturation(t_air, p_surf, saturation)
+    tcwv = np.clip(column_from_saturation(t_air, p_surf, saturation), 1.0, 5.0)
 
     sat_zenith = swath_zenith(shape, 34.0, 55.0, tilt=0.2)
     sol_zenith = solar_zenith(lat, lon, declination=-20.0, utc_hour=3.0)
@@ -586,7 +590,7 @@ def _solve_chunk(t_skin, t_air, tcwv, p_surf, emissivity, sat_zenith, cloud, cha
     pressure thickness and added to the gas optical depth; the same solver gives L_cloudy.
     τ_ch = τ at 8.6, 11, 12 µm (grey) and at 3.9 µm for ice; 0.6 τ at 3.9 µm for water.
     A water cloud at 3.9 µm also reflects the downwelling sky radiance L↓ reaching its top,
-    with reflectivity r = 0.13 (1 − e^{−τ}); r is taken out of the radiance leaving the cloud
+    with reflectivity r = 0.15 (1 − e^{−τ}); r is taken out of the radiance leaving the cloud
     top (energy conservation, simply): with 𝒯 the slant transmittance from the cloud top to
     space and A the emission of the air above it,
 
@@ -789,7 +793,7 @@ def scene_dataset(scene, bt, t_skin_bg, t_air_bg, tcwv_bg):
     data["sat_zenith"] = _float_var(scene.sat_zenith, 2, "satellite (viewing) zenith angle", "degree",
                                     "sensor_zenith_angle")
     data["sol_zenith"] = _float_var(scene.sol_zenith, 2, "solar zenith angle", "degree", "solar_zenith_angle")
-    data["p_surf"] = _float_var(scene.p_surf, 2, "surface pressure", "hPa", "surface_air_pressure")
+    data["p_surf"] = _float_var(scene.p_surf, 1, "surface pressure", "hPa", "surface_air_pressure")
     data["surface"] = (("y", "x"), scene.surface.astype(np.int8), {
         "long_name": "surface type", "units": "1",
         "flag_values": np.array([0, 1, 2], dtype=np.int8), "flag_meanings": "sea land ice"})
@@ -803,8 +807,8 @@ def truth_dataset(scene, layer, top_t, phase, base_used, bg_attrs):
         "cloud_fraction": _float_var(layer["fraction"], 3, "cloud cover fraction of the pixel", "1"),
         "cloud_optical_depth": _float_var(layer["optical_depth"], 3,
                                           "vertical 11 um absorption optical depth of the cloud layer (0: no cloud)", "1"),
-        "cloud_top_pressure": _float_var(layer["top_pressure"], 2, "cloud top pressure (NaN: no cloud)", "hPa"),
-        "cloud_base_pressure": _float_var(np.where(cloudy, base_used, np.nan), 2,
+        "cloud_top_pressure": _float_var(layer["top_pressure"], 1, "cloud top pressure (NaN: no cloud)", "hPa"),
+        "cloud_base_pressure": _float_var(np.where(cloudy, base_used, np.nan), 1,
                                           "cloud base pressure (NaN: no cloud)", "hPa"),
         "cloud_phase": (("y", "x"), np.where(cloudy, phase, 0).astype(np.int8), {
             "long_name": "thermodynamic phase of the cloud top", "units": "1",
@@ -849,8 +853,24 @@ def generation_attrs():
     }
 
 
+def _replace_atomically(path, write):
+    """Write through a temporary file in the same folder, then rename it over ``path``.
+
+    Readers (tests, the dashboard) that have the old file open keep a complete file and
+    never see a half-written one.
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.partial")
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
 def write_netcdf(ds, path):
-    ds.to_netcdf(path, engine="netcdf4", format="NETCDF4", encoding=_encoding(ds))
+    _replace_atomically(path, lambda tmp: ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4",
+                                                       encoding=_encoding(ds)))
 
 
 def pixel_table(ds, rows=slice(None), cols=slice(None)):
@@ -862,7 +882,7 @@ def pixel_table(ds, rows=slice(None), cols=slice(None)):
     columns = {"row": rr.ravel().astype(np.int32), "col": cc.ravel().astype(np.int32),
                "lat": np.round(sub["lat"].values.astype(np.float64), 4).ravel(),
                "lon": np.round(sub["lon"].values.astype(np.float64), 4).ravel()}
-    decimals = {"t_skin": 2, "t_air": 2, "tcwv": 2, "sat_zenith": 2, "sol_zenith": 2, "p_surf": 2}
+    decimals = {"t_skin": 2, "t_air": 2, "tcwv": 2, "sat_zenith": 2, "sol_zenith": 2, "p_surf": 1}
     for c in CHANNEL_ORDER:
         if f"bt_{c}" in sub:
             decimals[f"bt_{c}"] = 2
@@ -875,11 +895,15 @@ def pixel_table(ds, rows=slice(None), cols=slice(None)):
 
 
 def write_csv(columns, path):
+    _replace_atomically(path, lambda tmp: _write_csv(columns, tmp))
+
+
+def _write_csv(columns, path):
     names = list(columns)
     with open(path, "w", newline="\n") as fh:
         fh.write(",".join(names) + "\n")
         n = len(columns["row"])
-        fmt = {"lat": "{:.4f}", "lon": "{:.4f}"}
+        fmt = {"lat": "{:.4f}", "lon": "{:.4f}", "p_surf": "{:.1f}"}
         for i in range(n):
             fields = []
             for name in names:
@@ -898,10 +922,11 @@ def write_parquet(columns, path):
             arrays[name] = pa.array(v, type=pa.int32())
         elif name == "surface":
             arrays[name] = pa.array(list(v), type=pa.string())
-        else:
+        else:  # float64: the values equal the scene file's decoded values, rounded as there
             arrays[name] = pa.array(v, type=pa.float64())
-    pq.write_table(pa.table(arrays), path, compression="zstd", compression_level=9,
-                   use_dictionary=["surface"], write_statistics=False)
+    _replace_atomically(path, lambda tmp: pq.write_table(pa.table(arrays), tmp, compression="zstd",
+                                                         compression_level=9, use_dictionary=["surface"],
+                                                         write_statistics=False))
 
 
 # ---------------------------------------------------------------------------------------
@@ -987,6 +1012,9 @@ def print_checks(scene_ds, truth_ds):
 # Main
 # ---------------------------------------------------------------------------------------
 def build(scene, out_dir):
+    # the fields handed over exactly are rounded first, so the file holds what the simulation used
+    scene = scene._replace(p_surf=np.round(scene.p_surf, 1), sat_zenith=np.round(scene.sat_zenith, 2),
+                           sol_zenith=np.round(scene.sol_zenith, 2))
     layer = combine_clouds(scene.clouds, scene.t_skin.shape)
     bt, _, top_t, phase, base_used = simulate_observation(scene, layer)
     t_skin_bg, t_air_bg, tcwv_bg = background_state(scene)
