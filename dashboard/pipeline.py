@@ -233,11 +233,15 @@ def clear_sky_sigma(ds, sim, config):
     σ = sqrt(base² + (per_path · W sec θ)²) with base and per_path per surface type
     (config [clear_sky_uncertainty]).
     """
-    codes = ds["surface"].values
+    return sigma_from_path(ds["surface"].values, sim.slant_path, config)
+
+
+def sigma_from_path(surface, slant_path, config):
+    """:func:`clear_sky_sigma` from the surface codes and the slant path W sec θ [kg m⁻²]. [K]"""
     unc = config["clear_sky_uncertainty"]
-    base = per_surface(unc["base"], codes)
-    per = per_surface(unc["per_path"], codes)
-    return np.sqrt(base**2 + (per * np.nan_to_num(sim.slant_path)) ** 2)
+    base = per_surface(unc["base"], surface)
+    per = per_surface(unc["per_path"], surface)
+    return np.sqrt(base**2 + (per * np.nan_to_num(slant_path)) ** 2)
 
 
 def _inversion_channels(sim, config):
@@ -294,26 +298,59 @@ def invert_all(scene, sim, config, bias=None):
 
 
 def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain, notes, sigma_k):
-    """Invert one block of valid pixels (bounded memory); writes into the output arrays."""
-    cc = config["cloud"]
-    method = cc["top"]
-    n_inv = len(inv)
+    """Invert one block of valid pixels of a Simulation; writes into the output arrays."""
     idx = sim.valid_index[blk]
-    n_blk = idx.size
     obs_bt = np.stack([ds[f"bt_{c}"].values.ravel()[idx] for c in inv], axis=-1)
     clr_bt = np.stack([sim.bt_clear[i].ravel()[idx] for i in ci], axis=-1).astype(float)
     if bias:
         clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * sim.slant_path.ravel()[idx] if c in bias
-                                    else np.zeros(n_blk) for c in inv], axis=-1)
+                                    else np.zeros(idx.size) for c in inv], axis=-1)
+    res = invert_columns(obs_bt, clr_bt, sim.level_pressure[blk], sim.level_temperature[blk],
+                         sim.opaque_radiance[blk][:, :, ci], ds["sat_zenith"].values.ravel()[idx], sigma_k[idx],
+                         chans, inv, config, notes)
+    out_eps[:, idx] = res["emissivity"].T
+    out["tau"][idx] = res["optical_depth"]
+    out["stau"][idx] = res["optical_depth_sigma"]
+    out["pc"][idx] = res["top_pressure"]
+    out["tc"][idx] = res["top_temperature"]
+    out["text"][idx] = res["extinction_optical_depth"]
+    status[idx] = res["status"]
+    uncertain[idx] = res["uncertain"]
+
+
+def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sat_zenith, sigma_clear, chans, inv,
+                   config, notes=None):
+    """Grey-cloud inversion of a set of pixel columns (the per-pixel core of stage 2).
+
+    Parameters
+    ----------
+    obs_bt, clr_bt : (n, n_inv) observed and clear-sky brightness temperatures [K]
+    level_pressure, level_temperature : (n, n_levels) [hPa], [K]
+    opaque : (n, n_levels, n_inv) opaque-level radiances [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹]
+    sat_zenith : (n,) [deg]
+    sigma_clear : (n,) clear-sky 1-σ [K]
+    chans : physics Channels of the inversion channels; inv : their names
+    config : dict
+    notes : list, optional — receives notes about fallbacks
+
+    Returns
+    -------
+    dict of arrays: emissivity (n, n_inv), optical_depth, optical_depth_sigma, top_pressure,
+    top_temperature, extinction_optical_depth, status, uncertain (n,)
+    """
+    notes = [] if notes is None else notes
+    cc = config["cloud"]
+    method = cc["top"]
+    n_inv = len(inv)
+    n_blk = obs_bt.shape[0]
     obs = np.stack([ch.radiance(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     clr = np.stack([ch.radiance(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-    sig_k = sigma_k[idx]
     s_obs = np.stack([cc["nedt"] * ch.radiance_derivative(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-    s_clr = np.stack([sig_k * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-    lp = sim.level_pressure[blk].astype(float)
-    lt = sim.level_temperature[blk].astype(float)
-    opq = sim.opaque_radiance[blk][:, :, ci].astype(float)
-    mu = np.cos(np.deg2rad(ds["sat_zenith"].values.ravel()[idx]))
+    s_clr = np.stack([sigma_clear * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    lp = np.asarray(level_pressure, dtype=float)
+    lt = np.asarray(level_temperature, dtype=float)
+    opq = np.asarray(opaque, dtype=float)
+    mu = np.cos(np.deg2rad(sat_zenith))
     # the tropopause (first temperature minimum going up) bounds the cloud top
     k_trop = np.argmin(lt, axis=-1)
     top_limit = np.take_along_axis(lp, k_trop[:, None], axis=-1)[:, 0]
@@ -350,20 +387,17 @@ def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, stat
         fixed_pressure=fixed, reference=ref, pair=pair_idx, top_limit=top_limit, eps_max=cc["eps_max"],
         max_sigma_pressure=cc["max_sigma_pressure"],
     )
-    out_eps[:, idx] = res.emissivity.T
-    out["tau"][idx] = res.optical_depth
-    out["stau"][idx] = res.optical_depth_sigma
-    out["pc"][idx] = res.top_pressure
-    out["tc"][idx] = res.top_temperature
-    status[idx] = res.status
-    uncertain[idx] = res.uncertain
     # phase from the top temperature -> similarity-relation extinction
     ice, water = cc["optics"]["ice"], cc["optics"]["water"]
     frac_ice = np.clip((cc["water_above"] - res.top_temperature) / max(cc["water_above"] - cc["ice_below"], 1e-6),
                        0.0, 1.0)
     ssa = frac_ice * ice["single_scattering_albedo"] + (1 - frac_ice) * water["single_scattering_albedo"]
     g = frac_ice * ice["asymmetry"] + (1 - frac_ice) * water["asymmetry"]
-    out["text"][idx] = pcloud.extinction_optical_depth(res.optical_depth, ssa, g)
+    return {"emissivity": res.emissivity, "optical_depth": res.optical_depth,
+            "optical_depth_sigma": res.optical_depth_sigma, "top_pressure": res.top_pressure,
+            "top_temperature": res.top_temperature,
+            "extinction_optical_depth": pcloud.extinction_optical_depth(res.optical_depth, ssa, g),
+            "status": res.status, "uncertain": res.uncertain}
 
 
 # ---------------------------------------------------------------------------------------
@@ -413,15 +447,31 @@ def _local_std(values, valid, window):
     return np.where(enough, mean, np.nan), np.where(enough, np.sqrt(var), np.nan)
 
 
-def run_tests(ds, sim, config, departure, sigma_clear):
-    """Margins [K] of every test (> 0 means the test fired), thresholds, notes."""
-    codes = ds["surface"].values
+def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=None):
+    """Margins [K] of every test (> 0 means the test fired), thresholds, notes.
+
+    Parameters
+    ----------
+    fields : mapping of (y, x) arrays
+        ``surface`` (codes), ``valid`` (bool), ``sol_zenith`` [deg], ``slant_path`` [kg m⁻²].
+    config : dict
+    departure : dict channel -> (y, x) observed − clear [K]
+    sigma_clear : (y, x) expected clear-sky error [K]
+    night_any, day_any : bool, optional
+        Whether the whole scene has night / daylight valid pixels (a block of a chunked
+        scene cannot tell); computed from ``fields`` when omitted.
+    """
+    codes = fields["surface"]
     tests_cfg = config["tests"]
-    valid = ds["valid"].values
+    valid = fields["valid"]
     margins, thresholds, skipped, notes = {}, {}, {}, []
-    path = np.nan_to_num(sim.slant_path)
-    sol = ds["sol_zenith"].values
+    path = np.nan_to_num(fields["slant_path"])
+    sol = fields["sol_zenith"]
     night = np.isfinite(sol) & (sol > config["screening"]["night_sun_zenith"])
+    if night_any is None:
+        night_any = bool(night.any())
+    if day_any is None:
+        day_any = bool((~night & valid).any())
     window_ch = tests_cfg["cold_departure"]["channel"]
     if window_ch not in departure:
         window_ch = next((c for c in ("11um", "12um", "8p6um") if c in departure), None)
@@ -476,16 +526,16 @@ def run_tests(ds, sim, config, departure, sigma_clear):
         off("night_fog_contrast", "switched off in the config")
     elif not ("3p9um" in departure and "11um" in departure):
         off("night_fog_contrast", "needs 3p9um and 11um")
-    elif not night.any():
+    elif not night_any:
         off("night_fog_contrast", "no night-time pixels (sun above the horizon, or sol_zenith missing)")
     else:
         thr = per_surface(t["threshold"], codes) + per_surface(t["per_path"], codes) * path
         m = -(departure["3p9um"] - departure["11um"]) - thr
         margins["night_fog_contrast"] = np.where(night, m, np.nan)
         thresholds["night_fog_contrast"] = -thr
-    if "3p9um" in departure and (~night & valid).any():
-        notes.append(f"3.9 µm not used on {int((~night & valid).sum())} daylight pixel(s): by day it carries "
-                     "reflected sunlight that the thermal model does not simulate")
+    if "3p9um" in departure and day_any:
+        notes.append("3.9 µm not used on daylight pixels: by day it carries reflected sunlight that the "
+                     "thermal model does not simulate (bit daylight_3p9um_unused marks them)")
     # warm departure (background suspect)
     t = tests_cfg["warm_departure"]
     if not t["enabled"]:
@@ -547,28 +597,53 @@ def classify(valid, margins, thresholds, fraction, night=None, has_3p9=False, ed
     return mask, bits
 
 
+def bias_sums(departure, slant_path, mask, bits, valid):
+    """Sums for the clear-sky bias fit over pixels passing every test (additive over blocks).
+
+    Returns dict channel -> array [n, Σx, Σy, Σx², Σxy, Σy²] (float64), x = W sec θ.
+    """
+    use = valid & (mask == CLEAR) & ((bits & BITS["warm_departure"]) == 0)
+    x_all = np.asarray(slant_path, dtype=float)
+    out = {}
+    for ch, d in departure.items():
+        ok = use & np.isfinite(d) & np.isfinite(x_all)
+        x = x_all[ok]
+        y = np.asarray(d, dtype=float)[ok]
+        out[ch] = np.array([x.size, x.sum(), y.sum(), (x * x).sum(), (x * y).sum(), (y * y).sum()])
+    return out
+
+
+def bias_from_sums(sums, min_pixels):
+    """Least-squares line departure = a + b·x from :func:`bias_sums` (closed form).
+
+    Returns dict channel -> {"a" [K], "b" [K per kg m⁻²], "n", "rms" [K]}; a, b NaN when
+    fewer than ``min_pixels`` clear pixels; b = 0 when x does not vary.
+    """
+    out = {}
+    for ch, (n, sx, sy, sxx, sxy, syy) in sums.items():
+        n = int(n)
+        if n < min_pixels:
+            out[ch] = {"a": float("nan"), "b": float("nan"), "n": n, "rms": float("nan")}
+            continue
+        var_x = sxx - sx * sx / n
+        if var_x <= 1e-12 * max(sxx, 1.0):
+            a, b = sy / n, 0.0
+        else:
+            b = (sxy - sx * sy / n) / var_x
+            a = (sy - b * sx) / n
+        # residual sum of squares Σ(y − a − b x)² expanded in the sums
+        rss = syy - 2 * a * sy - 2 * b * sxy + n * a * a + 2 * a * b * sx + b * b * sxx
+        out[ch] = {"a": float(a), "b": float(b), "n": n, "rms": float(np.sqrt(max(rss, 0.0) / n))}
+    return out
+
+
 def fit_bias(departure, sim, mask, bits, valid, min_pixels):
     """Clear-sky bias per channel: departure = a + b · (W sec θ) over pixels passing every test.
 
     Returns dict channel -> {"a" [K], "b" [K per kg m⁻²], "n", "rms" [K]} (a, b NaN when
     fewer than ``min_pixels`` clear pixels).
     """
-    use = valid & (mask == CLEAR) & ((bits & BITS["warm_departure"]) == 0)
-    x = sim.slant_path[use].astype(float)
-    out = {}
-    for ch, d in departure.items():
-        y = d[use].astype(float)
-        ok = np.isfinite(y) & np.isfinite(x)
-        n = int(ok.sum())
-        if n < min_pixels or np.ptp(x[ok]) == 0 if n else True:
-            a = float(np.nanmean(y[ok])) if n >= min_pixels else float("nan")
-            out[ch] = {"a": a, "b": 0.0 if n >= min_pixels else float("nan"), "n": n,
-                       "rms": float(np.nanstd(y[ok])) if n else float("nan")}
-            continue
-        b, a = np.polyfit(x[ok], y[ok], 1)
-        resid = y[ok] - (a + b * x[ok])
-        out[ch] = {"a": float(a), "b": float(b), "n": n, "rms": float(np.sqrt(np.mean(resid**2)))}
-    return out
+    return bias_from_sums(bias_sums(departure, sim.slant_path, mask, bits, valid), min_pixels)
 
 
 def edits_grid(shape, edits):
@@ -578,6 +653,43 @@ def edits_grid(shape, edits):
         code = {"clear": 1, "cloud": 2, "reset": 0}[e["action"]]
         grid[np.asarray(e["index"], dtype=np.int64)] = code
     return grid.reshape(shape)
+
+
+def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, night_any=None, day_any=None):
+    """Departures, test margins, classes and bits for a grid or a block of one (no global step).
+
+    Parameters
+    ----------
+    obs, bt_clear : dict channel -> (y, x) observed and clear-sky brightness temperature [K]
+    fields : mapping of (y, x) arrays: surface, valid, sol_zenith, slant_path
+    config : dict
+    bias : dict channel -> {"a", "b"}, optional
+        Clear-sky bias line to subtract from the departures.
+    edit_codes : (y, x) int8, optional
+        Analyst overrides (0 none, 1 clear, 2 cloud).
+    night_any, day_any : bool, optional
+        Scene-wide flags (see :func:`run_tests`).
+
+    Returns
+    -------
+    dict with departure, margins, thresholds, mask, bits, sigma, skipped, notes
+    """
+    departure = {ch: (np.asarray(obs[ch], dtype=float) - bt_clear[ch]) for ch in bt_clear}
+    if bias:
+        departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * fields["slant_path"]) for ch, d in departure.items()}
+    sigma = sigma_from_path(fields["surface"], fields["slant_path"], config)
+    margins, thresholds, skipped, notes, night = run_tests(fields, config, departure, sigma, night_any, day_any)
+    mask, bits = classify(fields["valid"], margins, thresholds, config["screening"]["marginal_fraction"], night,
+                          "3p9um" in departure, edit_codes)
+    return {"departure": departure, "margins": margins, "thresholds": thresholds, "mask": mask, "bits": bits,
+            "sigma": sigma, "skipped": skipped, "notes": notes}
+
+
+def screen_fields(scene, sim):
+    """The per-pixel fields the screening needs, from a loaded scene and its simulation."""
+    ds = scene.data
+    return {"surface": ds["surface"].values, "valid": ds["valid"].values, "sol_zenith": ds["sol_zenith"].values,
+            "slant_path": sim.slant_path}
 
 
 def screen(scene, sim, config, edits=None, cloud=None):
@@ -598,33 +710,35 @@ def screen(scene, sim, config, edits=None, cloud=None):
     Screening
     """
     ds = scene.data
-    valid = ds["valid"].values
-    departure = {ch: (ds[f"bt_{ch}"].values - sim.bt_clear[i]).astype(float) for i, ch in enumerate(sim.channels)}
-    sigma = clear_sky_sigma(ds, sim, config)
-    band = config["screening"]["marginal_fraction"]
-    edit_codes = edits_grid(valid.shape, edits) if edits else None
-    margins, thresholds, skipped, notes, night = run_tests(ds, sim, config, departure, sigma)
-    mask, bits = classify(valid, margins, thresholds, band, night, "3p9um" in departure, edit_codes)
-    bias = fit_bias(departure, sim, mask, bits, valid, config["bias"]["min_pixels"])
+    fields = screen_fields(scene, sim)
+    obs = {ch: ds[f"bt_{ch}"].values for ch in sim.channels}
+    clear = {ch: sim.bt_clear[i] for i, ch in enumerate(sim.channels)}
+    edit_codes = edits_grid(fields["valid"].shape, edits) if edits else None
+    out = screen_arrays(obs, clear, fields, config, None, edit_codes)
+    bias = bias_from_sums(bias_sums(out["departure"], sim.slant_path, out["mask"], out["bits"], fields["valid"]),
+                          config["bias"]["min_pixels"])
     applied = False
+    notes = out["notes"]
     if config["bias"]["remove"]:
         if all(np.isfinite(b["a"]) for b in bias.values()):
-            departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * sim.slant_path) for ch, d in departure.items()}
-            margins, thresholds, skipped, notes, night = run_tests(ds, sim, config, departure, sigma)
-            mask, bits = classify(valid, margins, thresholds, band, night, "3p9um" in departure, edit_codes)
+            out = screen_arrays(obs, clear, fields, config, bias, edit_codes)
+            notes = out["notes"]
             applied = True
         else:
-            notes.append(f"bias not removed: fewer than {config['bias']['min_pixels']} clear pixels to fit it")
+            notes = notes + [f"bias not removed: fewer than {config['bias']['min_pixels']} clear pixels to fit it"]
     for b in bias.values():
         b["applied"] = applied
+    mask = out["mask"]
     counts = {name: float(np.mean(mask == code)) for code, name in enumerate(CLASS_NAMES)}
+    result = Screening(out["departure"], out["margins"], mask, out["bits"], counts, bias, notes, out["thresholds"],
+                       out["sigma"], None, out["skipped"])
     if type(cloud).__name__ == "_Pending":  # the caller (the model) supplies its cached cloud layer
-        return Screening(departure, margins, mask, bits, counts, bias, notes, thresholds, sigma, None, skipped)
+        return result
     if cloud is None and sim.level_pressure is not None:
         cloud = invert_all(scene, sim, config, {c: (b["a"], b["b"]) for c, b in bias.items()} if applied else None)
     if cloud is not None:
-        cloud = mask_cloud_layer(cloud, mask)
-    return Screening(departure, margins, mask, bits, counts, bias, notes, thresholds, sigma, cloud, skipped)
+        result.cloud = mask_cloud_layer(cloud, mask)
+    return result
 
 
 def mask_cloud_layer(cloud, mask):
