@@ -124,7 +124,7 @@ def test_user_gaussian_table_channel():
     nu, phi = _gaussian_table()
     ch = channel_from_response("gauss", nu, 100.0 * phi)  # in percent: normalised to peak 1
     assert isinstance(ch, Channel)
-    assert ch.response.max() == pytest.approx(1.0)
+    assert ch.response.max() == pytest.approx(1.0)  # documented normalisation: peak 1
     # symmetric response: centroid at the centre (definition)
     assert ch.central_wavenumber == pytest.approx(900.0, abs=1e-6)
     assert ch.band_fit_residual <= BAND_TOLERANCE_K  # the requirement

@@ -9,9 +9,16 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from physics.atmosphere import column_water_vapour, profile_from_surface
+from physics.absorption import (
+    MOLECULES_PER_CM2_PER_KG_M2,
+    layer_absorber_amounts,
+    layer_optical_depth,
+    self_continuum_spectrum,
+)
+from physics.atmosphere import column_water_vapour, profile_from_surface, vapour_pressure_from_specific_humidity
 from physics.clearsky import simulate_clear_sky
-from physics_helpers import channel_index, channels, coefficients
+from physics.constants import GRAVITY
+from physics_helpers import absorption_table, channel_index, channels, coefficients
 
 #: Reference atmospheres (t_air [K], tcwv [kg m⁻²]), ordered by water vapour, from a dry
 #: polar column to a moist tropical one; each holds its requested column (not saturation
@@ -109,3 +116,59 @@ def test_float32_and_float64_agree(zenith):
     *_, sky32 = _simulate(zenith, np.float32)
     assert sky32.brightness_temperature.dtype == np.float32
     assert np.max(np.abs(sky32.brightness_temperature - sky64.brightness_temperature)) <= 0.01
+
+
+# ---------------------------------------------------------------------------------------
+# The absorption step of the chain
+# ---------------------------------------------------------------------------------------
+def test_molecules_per_kg_of_water_vapour():
+    # from memory: 1 g cm⁻² of water vapour is 3.34e22 molecules cm⁻² (N_A / 18.015 g mol⁻¹),
+    # and 1 kg m⁻² = 0.1 g cm⁻²
+    assert MOLECULES_PER_CM2_PER_KG_M2 == pytest.approx(3.343e21, rel=1e-3)
+
+
+def test_self_continuum_follows_roberts_form_inside_its_range():
+    # Roberts, Selby & Biberman (1976): k = a + b exp(−β ν̃), with a, b, β of the data file
+    table = absorption_table()["self_continuum"]
+    a, b, beta = (table[k]["value"] for k in ("a", "b", "beta"))
+    nu = np.array([800.0, 926.0, 1163.0])
+    assert_allclose(self_continuum_spectrum(nu, table), a + b * np.exp(-beta * nu), rtol=1e-14)
+    # from memory: about 2e-22 cm² molecule⁻¹ atm⁻¹ at 11 µm (296 K), the order of magnitude
+    # behind the split-window effect
+    assert 1e-22 < self_continuum_spectrum(926.0, table) < 5e-22
+
+
+def test_layer_optical_depth_matches_the_data_file_formula():
+    # the optical-depth formula stated in the header of physics/data/absorption.toml, written
+    # out independently for every layer and channel:
+    # τ = u [K_self (e/p₀) f(T) + K_foreign ((p − e)/p₀) + K_line (p/p₀)ⁿ] + K_dry 2 p Δp / p₀²
+    prof = profile_from_surface(296.0, 45.0)
+    coef = coefficients()
+    p0 = 1013.25
+    p = 0.5 * (prof.pressure[:-1] + prof.pressure[1:])
+    t = 0.5 * (prof.temperature[:-1] + prof.temperature[1:])
+    q = 0.5 * (prof.specific_humidity[:-1] + prof.specific_humidity[1:])
+    dp = prof.pressure[:-1] - prof.pressure[1:]
+    u = q * dp * 100.0 / GRAVITY
+    e = vapour_pressure_from_specific_humidity(q, p)
+    f_t = np.exp(coef.continuum_t0 * (1.0 / t - 1.0 / 296.0))
+    expected = (
+        u[:, None] * (coef.self_continuum * (e * f_t / p0)[:, None]
+                      + coef.foreign_continuum * ((p - e) / p0)[:, None]
+                      + coef.line * ((p / p0) ** coef.line_pressure_exponent)[:, None])
+        + coef.dry_column * (2.0 * p * dp / p0**2)[:, None]
+    )
+    assert_allclose(layer_optical_depth(*prof, coef), expected, rtol=1e-12)
+
+
+def test_layer_absorber_amounts_sum_to_the_columns():
+    # hydrostatic identities: Σ u = column water vapour (same trapezoid), and the dry-gas
+    # weights 2 p Δp / p₀² sum to (p_s² − p_top²)/p₀² (common practice, pressure broadening)
+    prof = profile_from_surface(np.array([270.0, 300.0]), np.array([5.0, 50.0]),
+                                surface_pressure=np.array([1013.25, 980.0]))
+    # with a line pressure exponent of 0 the third amount is the layer water vapour u itself
+    x = layer_absorber_amounts(*prof, 1800.0, 0.0)
+    assert x.shape == (2, prof.pressure.shape[-1] - 1, 4)
+    assert_allclose(x[..., 2].sum(axis=-1), column_water_vapour(prof.pressure, prof.specific_humidity), rtol=1e-12)
+    ps, top = prof.pressure[..., 0], prof.pressure[..., -1]
+    assert_allclose(x[..., 3].sum(axis=-1), (ps**2 - top**2) / 1013.25**2, rtol=1e-12)

@@ -23,7 +23,8 @@ RADIANCE_UNIT = u.mW / (u.m**2 * u.sr * u.cm**-1)  # our radiance unit, per cm�
 # Radiation constants
 # ---------------------------------------------------------------------------------------
 def test_first_radiation_constant_from_codata():
-    # CODATA via scipy.constants: 2hc² [W m² sr⁻¹] → mW m⁻² sr⁻¹ cm⁴ is × 1e3 (W→mW) × 1e8 (m⁴→cm⁴)
+    # CODATA via scipy.constants: 2hc² [W m² sr⁻¹] → [mW m⁻² sr⁻¹ cm⁴] is × 1e3 (W → mW)
+    # × 1e8 (m⁴ → cm⁴)
     expected = 2.0 * sc.h * sc.c**2 * 1.0e11
     assert constants.C1_RADIANCE == pytest.approx(expected, rel=1e-15)
     # from memory: c1 = 1.191042e-5 mW m⁻² sr⁻¹ cm⁴ (customary infrared-sounding value)
