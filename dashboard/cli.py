@@ -21,6 +21,7 @@ from . import CAUTION, __version__
 from .errors import CloudsieveError, SceneError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_OUTPUT, EXIT_PARTIAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 4, 130
+AUTO_CHUNK_PIXELS = 4_000_000  # above this a NetCDF/Parquet scene is screened chunk by chunk
 
 DESCRIPTION = """\
 cloudsieve — screen infrared window-channel imagery (3.9, 8.6, 11, 12 µm) for cloud.
@@ -80,6 +81,13 @@ def build_parser():
                                                                 "else netcdf for folders)")
     s.add_argument("--no-edits", action="store_true", help="ignore the scene's QA-edit journal")
     s.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+    big = s.add_argument_group("large scenes and archives (Dask)")
+    big.add_argument("--chunks", type=int, metavar="ROWS",
+                     help="screen chunk by chunk, ROWS grid rows at a time, with bounded memory (NetCDF/Parquet "
+                          "scenes; automatic above 4 million pixels)")
+    big.add_argument("--workers", type=int, metavar="N", help="start a local Dask cluster of N worker processes")
+    big.add_argument("--scheduler", metavar="ADDRESS",
+                     help="use an existing dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
 
     m = sub.add_parser("simulate", help="write clear-sky brightness temperatures and departures only",
                        description="Simulate the clear-sky brightness temperature of every pixel and channel.")
@@ -214,7 +222,75 @@ def cmd_screen(args):
             out.mkdir()
     fmt = args.format or (None if not many else "netcdf")
     ext = {"netcdf": ".nc", "csv": ".csv", None: ".nc"}[fmt]
+    if args.workers is not None and args.workers < 1:
+        raise SceneError("--workers must be at least 1")
+    if args.chunks is not None and args.chunks < 8:
+        raise SceneError("--chunks must be at least 8 rows")
+    client = _dask_client(args)
+    try:
+        return _screen_files(args, cfg, files, out, many, fmt, ext, client)
+    finally:
+        if client is not None:
+            cluster = getattr(client, "cluster", None)
+            client.close()
+            if cluster is not None and args.workers:
+                cluster.close()
+
+
+def _dask_client(args):
+    if not (args.workers or args.scheduler):
+        return None
+    from dask.distributed import Client, LocalCluster
+
+    if args.scheduler:
+        try:
+            return Client(args.scheduler, timeout="20s")
+        except (OSError, TimeoutError) as exc:
+            raise SceneError(f"cannot reach the Dask scheduler at {args.scheduler} ({exc}); check the address "
+                             "and that the scheduler is running (dask scheduler / dask worker)") from None
+    cluster = LocalCluster(n_workers=args.workers, threads_per_worker=1, processes=True, dashboard_address=None)
+    return Client(cluster)
+
+
+def _use_chunks(args, path):
+    if args.chunks or args.workers or args.scheduler:
+        return True
+    from .scene import scene_format
+
+    try:
+        fmt = scene_format(path)
+    except SceneError:
+        return False
+    if fmt == "netcdf":
+        try:
+            import xarray as xr
+
+            from .scene import _open_netcdf
+
+            with _open_netcdf(path) as ds:
+                return ds.sizes.get("y", 0) * ds.sizes.get("x", 0) > AUTO_CHUNK_PIXELS
+        except Exception:  # noqa: BLE001 — unreadable: let the normal loader report it
+            return False
+    if fmt == "parquet":
+        try:
+            import pyarrow.parquet as pq
+
+            return pq.ParquetFile(path).metadata.num_rows > AUTO_CHUNK_PIXELS
+        except Exception:  # noqa: BLE001
+            return False
+    return False
+
+
+def _screen_files(args, cfg, files, out, many, fmt, ext, client):
+    from . import scale
+
     rows, failed = [], []
+    bar = None
+    if many and not args.quiet:
+        from tqdm import tqdm
+
+        bar = tqdm(total=len(files), desc="scenes", unit="scene", file=sys.stderr,
+                   disable=not sys.stderr.isatty() and not os.environ.get("CLOUDSIEVE_PROGRESS"))
     stems = [Path(f).stem for f in files]
     for path in files:
         stem = Path(path).stem
@@ -224,12 +300,22 @@ def cmd_screen(args):
                 stem = f"{Path(path).parent.name}_{stem}"
         target = out / f"{stem}_mask{ext}" if many else out
         try:
-            rows.append(_screen_one(path, target, cfg, fmt, not args.no_edits, not args.quiet))
+            if _use_chunks(args, path):
+                rows.append(scale.screen_file_chunked(path, target, cfg, fmt, args.chunks or scale.DEFAULT_CHUNK_ROWS,
+                                                      not args.no_edits))
+            else:
+                rows.append(_screen_one(path, target, cfg, fmt, not args.no_edits, not args.quiet and not many))
+            if bar is not None:
+                bar.update(1)
         except CloudsieveError as exc:
             if not many:
                 raise
             failed.append((path, str(exc)))
             print(f"cloudsieve: skipped {path}:\n{exc}", file=sys.stderr)
+            if bar is not None:
+                bar.update(1)
+    if bar is not None:
+        bar.close()
     if not args.quiet:
         _print_summary(rows, failed)
     if failed:

@@ -57,7 +57,9 @@ def result_dataset(scene, sim, res, config, edits=None):
     out = xr.Dataset(coords={k: xr.Variable(*v) for k, v in coords.items()})
 
     def put(name, data, attrs, dtype=np.float32):
-        out[name] = xr.Variable(("y", "x"), np.asarray(data).astype(dtype), attrs)
+        # dask arrays (the chunked path) stay lazy, so writing computes them block by block
+        data = data.astype(dtype) if hasattr(data, "dask") else np.asarray(data).astype(dtype)
+        out[name] = xr.Variable(("y", "x"), data, attrs)
 
     put("mask", res.mask, {"long_name": "cloud screening class", "units": "1",
                            "flag_values": np.arange(len(CLASS_NAMES), dtype=np.int8),

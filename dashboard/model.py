@@ -120,6 +120,8 @@ class ScreeningModel(param.Parameterized):
 
     @param.depends("cloud_top", "top_pressure", "remove_bias", "marginal_fraction", watch=True)
     def _settings_changed(self):
+        if getattr(self, "result", None) is None:  # still constructing: __init__ runs the first update
+            return
         self._update()
 
     # ------------------------------------------------------------------ computing

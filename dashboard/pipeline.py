@@ -303,7 +303,7 @@ def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, stat
     obs_bt = np.stack([ds[f"bt_{c}"].values.ravel()[idx] for c in inv], axis=-1)
     clr_bt = np.stack([sim.bt_clear[i].ravel()[idx] for i in ci], axis=-1).astype(float)
     if bias:
-        clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * sim.slant_path.ravel()[idx] if c in bias
+        clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * sim.slant_path.ravel()[idx].astype(float) if c in bias
                                     else np.zeros(idx.size) for c in inv], axis=-1)
     res = invert_columns(obs_bt, clr_bt, sim.level_pressure[blk], sim.level_temperature[blk],
                          sim.opaque_radiance[blk][:, :, ci], ds["sat_zenith"].values.ravel()[idx], sigma_k[idx],
@@ -631,6 +631,10 @@ def bias_from_sums(sums, min_pixels):
         else:
             b = (sxy - sx * sy / n) / var_x
             a = (sy - b * sx) / n
+        # Rounded far below any physical meaning (1e-9 K, 1e-12 K per kg m⁻²) so that sums
+        # accumulated in a different order (the chunked path adds them block by block) give
+        # the very same line.
+        a, b = round(float(a), 9), round(float(b), 12)
         # residual sum of squares Σ(y − a − b x)² expanded in the sums
         rss = syy - 2 * a * sy - 2 * b * sxy + n * a * a + 2 * a * b * sx + b * b * sxx
         out[ch] = {"a": float(a), "b": float(b), "n": n, "rms": float(np.sqrt(max(rss, 0.0) / n))}
@@ -674,7 +678,9 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, nig
     -------
     dict with departure, margins, thresholds, mask, bits, sigma, skipped, notes
     """
-    departure = {ch: (np.asarray(obs[ch], dtype=float) - bt_clear[ch]) for ch in bt_clear}
+    # float64 throughout: a float32 field would keep float32 arithmetic (numpy promotion rules)
+    fields = dict(fields, slant_path=np.asarray(fields["slant_path"], dtype=float))
+    departure = {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float)) for ch in bt_clear}
     if bias:
         departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * fields["slant_path"]) for ch, d in departure.items()}
     sigma = sigma_from_path(fields["surface"], fields["slant_path"], config)

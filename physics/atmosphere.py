@@ -354,7 +354,8 @@ def profile_from_surface(
     Assumptions (documented, and the same for every pixel):
 
     * Temperature falls with a constant lapse rate Γ from ``t_air`` until it reaches the
-      tropopause temperature, then stays there. In pressure coordinates a constant lapse
+      tropopause temperature, then stays there (where ``t_air`` is already colder than the
+      tropopause value, the column is isothermal at ``t_air``). In pressure coordinates a constant lapse
       rate is T = T_air (p/p_s)^{R_d Γ / g} (hydrostatic balance; Wallace & Hobbs 2006,
       Sec. 3.2).
     * Specific humidity follows q = q₀ (p/p_s)^λ (Smith 1966), scaled so the column
@@ -400,8 +401,9 @@ def profile_levels_first(
     log_ratio = np.log(p / ps)
     t = np.exp(log_ratio * f(R_DRY_AIR * lapse_rate / GRAVITY))
     t *= t_air
-    trop_t = f(tropopause_temperature)
-    troposphere = t > trop_t
+    # a surface colder than the tropopause value (polar winter) keeps its own temperature aloft
+    trop_t = np.minimum(f(tropopause_temperature), t_air)
+    troposphere = (t > trop_t) | (trop_t >= t_air)  # an isothermal polar column has no stratospheric cap
     np.maximum(t, trop_t, out=t)
     q_sat = specific_humidity_from_vapour_pressure(saturation_vapour_pressure(t), p)
     q_sat = np.where(troposphere, q_sat, np.minimum(q_sat, f(STRATOSPHERE_Q)))

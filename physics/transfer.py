@@ -75,7 +75,8 @@ def layer_transmittance_and_weight(slant_optical_depth):
     *relative* error grows, but its *absolute* error stays at one rounding unit of 1 —
     and w only multiplies the source difference across the layer, so the emitted radiance
     keeps full absolute accuracy. δ is floored at 10⁻³⁰ so that δ = 0 gives w = 0 exactly
-    (w → 0 as δ → 0, w → 1 as δ → ∞). No branches: the kernel stays vectorised.
+    (w → 0 as δ → 0, and w → 0 as 1/δ for δ → ∞, so a thick layer radiates at the
+    temperature of its boundary facing the observer). No branches: the kernel stays vectorised.
     """
     d = np.asarray(slant_optical_depth)
     f = np.result_type(d, np.float32).type
