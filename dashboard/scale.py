@@ -272,8 +272,10 @@ def _cloud_kernel(t_air, tcwv, p_surf, t_skin, zen, valid, mask, obs, clear, emi
     out[:, n_inv + 5] = pl.pcloud.STATUS_NOT_CLOUDY
     out[:, n_inv + 6] = 0.0
     keep = valid.ravel() & ((mask.ravel() == pl.CLOUD) | (mask.ravel() == pl.MARGINAL))
-    idx = np.flatnonzero(keep)
-    if idx.size:
+    all_idx = np.flatnonzero(keep)
+    step = max(1024, int(sim_cfg["chunk_pixels"]) * 16)  # levels exist only for this many columns at once
+    for start in range(0, all_idx.size, step):
+        idx = all_idx[start:start + step]
         args = _inputs_f32(t_air, tcwv, p_surf, t_skin, zen, idx)
         e = emis.reshape(-1, len(chans))[idx].T.astype(np.float32)
         _, _, lp, lt, opq = _columns(*args, e, chans, coeffs, sim_cfg, levels=True)

@@ -153,6 +153,11 @@ def _read_csv(path, report):
         first = head.decode("utf-8").splitlines()[0]
     except UnicodeDecodeError:
         raise SceneError(f"'{Path(path).name}' is not UTF-8 text. Save the table as UTF-8 CSV.") from None
+    header = [h.strip().strip('"').lstrip("\ufeff") for h in first.split(",")]
+    dupes = sorted({h for h in header if header.count(h) > 1 and h})
+    if dupes:
+        raise SceneError(f"'{Path(path).name}': column(s) {', '.join(dupes)} appear more than once in the header. "
+                         "Keep one of each (rename the other if it is a different quantity).")
     if "," not in first:
         sep = next((s for s in (";", "\t", "|") if s in first), None)
         if sep is not None:
@@ -165,7 +170,7 @@ def _read_csv(path, report):
         with warnings.catch_warnings():
             warnings.simplefilter("error", pd.errors.ParserWarning)
             df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, index_col=False,
-                             on_bad_lines="error")
+                             on_bad_lines="error", encoding="utf-8-sig")
     except (pd.errors.ParserError, pd.errors.ParserWarning, UnicodeDecodeError, ValueError) as exc:
         msg = str(exc).splitlines()[0]
         raise SceneError(f"'{Path(path).name}' is not a well-formed CSV table ({msg}). "
@@ -432,8 +437,9 @@ def _validate_grid(grid, known_channels, report):
         a = grid[name]
         finite = np.isfinite(a)
         if not finite.any():
-            if name in REQUIRED:
-                report.error(f"column '{name}' has no valid values", "fill it in; every pixel will be no_data otherwise")
+            if name in REQUIRED or (name.startswith("bt_") and not name.startswith("bt_clear_")):
+                report.error(f"column '{name}' has no valid values (all cells empty or NaN)",
+                             "fill it in, or drop the column if the channel was not observed")
             continue
         vals = a[finite]
         is_temp = name.startswith("bt") or name in _TEMPERATURE_LIKE
@@ -458,7 +464,7 @@ def _validate_grid(grid, known_channels, report):
         # a saturated column of our humidity shape holds about q_s p_s / (g (λ+1))
         ta = grid["t_air"]
         ps = grid.get("p_surf", np.full_like(ta, 1013.25))
-        with np.errstate(invalid="ignore"):
+        with np.errstate(all="ignore"):
             cap = 0.622 * saturation_vapour_pressure(ta) / ps * ps * 100 / 9.80665 / 4.0
             over = np.isfinite(grid["tcwv"]) & (grid["tcwv"] > 1.5 * cap)
         if over.any():

@@ -1,0 +1,149 @@
+"""Benchmark: large scenes on the chunked Dask path.
+
+1. Builds a 4000 × 4000, 4-channel NetCDF scene by mirror-tiling the invented sample scene
+   ``night_front`` (written block by block; not timed) and screens it with
+   ``cloudsieve screen big.nc --out mask.nc --chunks 256`` while sampling the resident memory
+   of the whole process tree (workers included) every 0.2 s → ``peak_rss_mb`` (target ≤ 4096).
+2. Screens a 2000 × 2000 scene with ``--workers 1`` and ``--workers 2`` (local Dask
+   clusters of single-threaded worker processes) → ``pixels_per_s_1worker``,
+   ``pixels_per_s_2workers``, ``scaling_efficiency`` = 2-worker / (2 × 1-worker) (target ≥ 0.7).
+3. Checks the chunked result against the in-memory one on ``night_front`` → ``matches_in_memory``
+   (≤ 1e-6 in every variable).
+
+    python tests/benchmarks/bench_scale.py [--size 4000] [--scaling-size 2000]
+
+The last line printed is one JSON object.
+"""
+import argparse
+import json
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import psutil
+import xarray as xr
+
+ROOT = Path(__file__).resolve().parents[2]
+VARS = ("lat", "lon", "bt_3p9um", "bt_8p6um", "bt_11um", "bt_12um", "t_skin", "t_air", "tcwv", "sat_zenith",
+        "sol_zenith", "p_surf")
+
+
+def write_tiled(size, path, block=500):
+    """Mirror-tile night_front to size × size and write it block of rows by block of rows."""
+    import netCDF4
+
+    src = xr.open_dataset(ROOT / "sample_scenes" / "night_front.nc").load()
+    ny0, nx0 = src.sizes["y"], src.sizes["x"]
+    cols = np.arange(size)
+    cidx = np.where((cols // nx0) % 2 == 0, cols % nx0, nx0 - 1 - cols % nx0)
+    with netCDF4.Dataset(path, "w") as nc:
+        nc.createDimension("y", size)
+        nc.createDimension("x", size)
+        nc.createVariable("row", "i4", ("y",))[:] = np.arange(size)
+        nc.createVariable("col", "i4", ("x",))[:] = np.arange(size)
+        out = {v: nc.createVariable(v, "f4", ("y", "x"), chunksizes=(min(block, size), size)) for v in VARS}
+        for v in VARS:
+            out[v].units = src[v].attrs.get("units", "1")
+        surf = nc.createVariable("surface", "i1", ("y", "x"))
+        for start in range(0, size, block):
+            rows = np.arange(start, min(start + block, size))
+            ridx = np.where((rows // ny0) % 2 == 0, rows % ny0, ny0 - 1 - rows % ny0)
+            for v in VARS:
+                out[v][start:start + rows.size, :] = src[v].values[np.ix_(ridx, cidx)].astype(np.float32)
+            surf[start:start + rows.size, :] = np.zeros((rows.size, size), np.int8)
+
+
+def run_tree(cmd):
+    """Run a command; sample the summed RSS of it and all its descendants. Returns (wall_s, peak_mb)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    peak = [0.0]
+    ps = psutil.Process(proc.pid)
+
+    def sample():
+        while proc.poll() is None:
+            try:
+                total = ps.memory_info().rss + sum(c.memory_info().rss for c in ps.children(recursive=True))
+                peak[0] = max(peak[0], total / 2**20)
+            except psutil.Error:
+                pass
+            time.sleep(0.2)
+
+    th = threading.Thread(target=sample, daemon=True)
+    th.start()
+    out, err = proc.communicate()
+    th.join()
+    wall = time.perf_counter() - t0
+    if proc.returncode != 0:
+        print(out, err)
+        raise SystemExit(f"command failed ({proc.returncode}): {' '.join(map(str, cmd))}")
+    return wall, peak[0]
+
+
+def matches_in_memory():
+    import dask
+
+    from dashboard import scale
+    from dashboard.config import load_config
+    from dashboard.model import ScreeningModel
+
+    cfg = load_config()
+    path = ROOT / "sample_scenes" / "night_front.nc"
+    mem = ScreeningModel.open(path, cfg, journal=False).result_dataset()
+    with tempfile.TemporaryDirectory() as tmp, dask.config.set(scheduler="threads"):
+        lazy = scale.open_lazy(path, cfg, chunk_rows=37)
+        out = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, Path(tmp) / "c.nc")
+        ch = xr.open_dataset(out).load()
+    worst = 0.0
+    for v in mem.data_vars:
+        a, b = mem[v].values.astype(float), ch[v].values.astype(float)
+        if not np.array_equal(np.isnan(a), np.isnan(b)) or not np.array_equal(np.isinf(a), np.isinf(b)):
+            return False, float("inf")
+        ok = np.isfinite(a)
+        if ok.any():
+            worst = max(worst, float(np.max(np.abs(a[ok] - b[ok]))))
+    return worst <= 1e-6, worst
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--size", type=int, default=4000)
+    ap.add_argument("--scaling-size", type=int, default=2000)
+    args = ap.parse_args()
+    exe = str(Path(sys.executable).with_name("cloudsieve"))
+    result = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        big = tmp / "big.nc"
+        t = time.perf_counter()
+        write_tiled(args.size, big)
+        print(f"wrote {args.size} × {args.size} scene ({big.stat().st_size / 2**20:.0f} MB) in {time.perf_counter() - t:.0f} s")
+        wall, peak = run_tree([exe, "screen", str(big), "--out", str(tmp / "big_mask.nc"), "--chunks", "256", "--quiet"])
+        n = args.size**2
+        print(f"{args.size}²: {wall:.1f} s, {n / wall:,.0f} pixels/s, peak RSS of the process tree {peak:.0f} MB "
+              "(target ≤ 4096)")
+        result.update(peak_rss_mb=round(peak), big_pixels=n, big_wall_s=round(wall, 1))
+        mid = tmp / "mid.nc"
+        write_tiled(args.scaling_size, mid)
+        m = args.scaling_size**2
+        rates = {}
+        for workers in (1, 2):
+            wall, peak = run_tree([exe, "screen", str(mid), "--out", str(tmp / f"mid_{workers}.nc"),
+                                   "--workers", str(workers), "--chunks", "200", "--quiet"])
+            rates[workers] = m / wall
+            print(f"{args.scaling_size}² with {workers} worker(s): {wall:.1f} s, {m / wall:,.0f} pixels/s, "
+                  f"peak {peak:.0f} MB")
+        result.update(pixels_per_s_1worker=round(rates[1]), pixels_per_s_2workers=round(rates[2]),
+                      scaling_efficiency=round(rates[2] / (2 * rates[1]), 3))
+    same, worst = matches_in_memory()
+    print(f"chunked vs in-memory on night_front: largest difference {worst:.2e} (≤ 1e-6 required)")
+    result.update(matches_in_memory=bool(same), max_abs_difference=worst)
+    print(json.dumps(result))
+
+
+if __name__ == "__main__":
+    main()
