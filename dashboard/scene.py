@@ -220,7 +220,7 @@ def _surface_codes_from_text(values, report):
     lut = dict(SURFACE_CODES, **{"0": 0, "1": 1, "2": 2, "0.0": 0, "1.0": 1, "2.0": 2})
     inverse, uniq = pd.factorize(raw.astype(str), use_na_sentinel=False)  # hashing; few distinct values
     uniq = np.asarray(uniq, dtype=object)
-    norm = np.array([u.strip().lower() for u in uniq], dtype=object)
+    norm = np.array([str(u).strip().lower() for u in uniq], dtype=object)
     text = pd.Series(norm[inverse.ravel()])
     codes = pd.Series(np.array([lut.get(u, -1) for u in norm], dtype=np.int64)[inverse.ravel()])
     missing = text.isin(["", "nan", "none", "null"])
@@ -246,10 +246,15 @@ def _grid_from_table(df, report, source):
     surface_raw = df["surface"].to_numpy() if "surface" in df.columns else None
     nums = _numeric_table(df, report)
     r, c = nums["row"], nums["col"]
-    bad_pos = ~np.isfinite(r) | ~np.isfinite(c) | (r < 0) | (c < 0) | (np.mod(r, 1) != 0) | (np.mod(c, 1) != 0)
+    with np.errstate(invalid="ignore"):
+        bad_pos = ~np.isfinite(r) | ~np.isfinite(c) | (r < 0) | (c < 0) | (np.mod(r, 1) != 0) | (np.mod(c, 1) != 0)
     if bad_pos.any():
         report.error(f"{int(bad_pos.sum())} row(s) have a missing, negative or fractional 'row'/'col'",
                      "grid positions must be whole numbers ≥ 0")
+        return None
+    if r.max() > 1e7 or c.max() > 1e7:
+        report.error(f"grid positions up to row {r.max():.0f}, col {c.max():.0f} are implausibly large",
+                     "'row' and 'col' are grid indices (0, 1, 2, …), not coordinates")
         return None
     r = r.astype(np.int64)
     c = c.astype(np.int64)
