@@ -105,9 +105,8 @@ def result_dataset(scene, sim, res, config, edits=None):
         put("cloud_optical_depth_uncertain", cl.uncertain.astype(np.int8),
             {"long_name": "relative optical-depth uncertainty above 100 %", "units": "1",
              "flag_values": np.array([0, 1], np.int8), "flag_meanings": "no yes"}, np.int8)
-    if has_latlon:
-        for v in out.data_vars.values():
-            v.attrs["coordinates"] = "lat lon"
+    for v in out.data_vars.values():  # auxiliary coordinates (CF 5): grid indices, and lat/lon when given
+        v.attrs["coordinates"] = "row col lat lon" if has_latlon else "row col"
     out.attrs.update({
         "Conventions": "CF-1.10",
         "title": f"cloudsieve cloud screening of scene {scene.name}",

@@ -474,37 +474,89 @@ def _bias_sums_dask(out, slant, valid, names, mask_i, bits_i):
     return {ch: total[i] for i, ch in enumerate(names)}
 
 
-def write_chunked(scene, res, config, out_path, fmt=None, edits=None):
-    """Write a chunked result (NetCDF chunk by chunk, CSV block by block), atomically."""
+def _blocks(ds, rows_per_block):
+    starts = np.cumsum((0,) + tuple(ds.chunks["y"])) if ds.chunks else np.array([0, ds.sizes["y"]])
+    edges = list(starts)
+    if rows_per_block:
+        edges = list(range(0, ds.sizes["y"], rows_per_block)) + [ds.sizes["y"]]
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+
+
+def _compute_window(result, window):
+    """Compute a few row blocks of the lazy result at once (threads or the active cluster)."""
+    parts = [result.isel(y=slice(a, b)) for a, b in window]
+    return dask.compute(*parts)
+
+
+def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2):
+    """Write a chunked result block of rows by block of rows, atomically.
+
+    Only ``parallel`` blocks are computed at a time and each is written as soon as it is
+    computed, so memory stays bounded whatever the scene size. NetCDF is written with the
+    same variables and CF attributes as the in-memory export; CSV block by block.
+
+    Returns
+    -------
+    (Path, dict)
+        The file written and the class fractions.
+    """
+    import netCDF4
+
     from .export import _atomic_target, _commit, result_dataset, result_table, OutputError
 
     out_path = Path(out_path)
     fmt = fmt or ("netcdf" if out_path.suffix.lower() in (".nc", ".nc4", ".netcdf") else "csv")
     result = result_dataset(scene, res, res, config, edits)
+    blocks = _blocks(result, None)
     target, tmp = _atomic_target(out_path)
+    counts = np.zeros(len(pl.CLASS_NAMES))
     try:
         if fmt == "netcdf":
-            enc = {name: ({"zlib": True, "complevel": 4, "_FillValue": np.float32(np.nan)} if v.dtype.kind == "f"
-                          else {"zlib": True, "complevel": 4, "_FillValue": None})
-                   for name, v in result.data_vars.items()}
-            for name in result.coords:
-                enc[name] = {"_FillValue": None}
-            result.to_netcdf(tmp, engine="netcdf4", encoding=enc)
+            nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
+            try:
+                ny, nx = result.sizes["y"], result.sizes["x"]
+                nc.createDimension("y", ny)
+                nc.createDimension("x", nx)
+                for name in ("row", "col"):
+                    var = nc.createVariable(name, "i4", result[name].dims)
+                    var.setncatts(result[name].attrs)
+                    var[:] = result[name].values
+                layers = [n for n in result.variables if n not in ("row", "col")]
+                for name in layers:
+                    v = result[name]
+                    is_float = v.dtype.kind == "f"
+                    var = nc.createVariable(name, v.dtype, v.dims, zlib=True, complevel=4,
+                                            fill_value=np.array(np.nan, v.dtype) if is_float else False,
+                                            chunksizes=(min(max(b - a for a, b in blocks), ny), nx))
+                    var.setncatts({k: val for k, val in v.attrs.items()})
+                nc.setncatts({k: val for k, val in result.attrs.items()})
+                for w in range(0, len(blocks), parallel):
+                    window = blocks[w:w + parallel]
+                    for (a, b), part in zip(window, _compute_window(result, window)):
+                        for name in layers:
+                            nc[name][a:b, :] = part[name].values
+                        m = part["mask"].values
+                        counts += [np.sum(m == k) for k in range(len(pl.CLASS_NAMES))]
+            finally:
+                nc.close()
         else:
-            rows = result.chunks["y"] if result.chunks else (result.sizes["y"],)
-            start = 0
             with open(tmp, "w", newline="") as fh:
-                for k, n in enumerate(rows):
-                    block = result.isel(y=slice(start, start + n)).compute()
-                    result_table(block).to_csv(fh, index=False, header=(k == 0), float_format="%.4f")
-                    start += n
+                first = True
+                for w in range(0, len(blocks), parallel):
+                    window = blocks[w:w + parallel]
+                    for part in _compute_window(result, window):
+                        result_table(part).to_csv(fh, index=False, header=first, float_format="%.4f")
+                        first = False
+                        m = part["mask"].values
+                        counts += [np.sum(m == k) for k in range(len(pl.CLASS_NAMES))]
         _commit(tmp, target)
     except OSError as exc:
         raise OutputError(f"could not write '{target}': {exc.strerror or exc}") from None
     finally:
         if tmp.exists():
             tmp.unlink()
-    return target
+    total = max(counts.sum(), 1)
+    return target, {name: round(float(c / total), 4) for name, c in zip(pl.CLASS_NAMES, counts)}
 
 
 def screen_file_chunked(path, out_path, config, fmt=None, chunk_rows=DEFAULT_CHUNK_ROWS, use_edits=True):
@@ -518,30 +570,9 @@ def screen_file_chunked(path, out_path, config, fmt=None, chunk_rows=DEFAULT_CHU
     if use_edits and jp.exists():
         edits = Journal(jp, scene.shape[0] * scene.shape[1]).active()
     res = screen_chunked(scene, config, edits)
-    write_chunked(scene, res, config, out_path, fmt, edits)
-    counts = _counts_from_file(out_path, fmt)
+    _, counts = write_chunked(scene, res, config, out_path, fmt, edits)
     return {"scene": scene.name, "pixels": scene.shape[0] * scene.shape[1], **counts,
             "bias": {ch: {k: (round(v, 4) if isinstance(v, float) else v) for k, v in b.items()}
                      for ch, b in res.bias.items()},
             "skipped_tests": res.skipped, "notes": res.notes, "seconds": round(time.perf_counter() - t0, 2),
             "output": str(out_path), "qa_edits": len(edits)}
-
-
-def _counts_from_file(path, fmt):
-    path = Path(path)
-    fmt = fmt or ("netcdf" if path.suffix.lower() in (".nc", ".nc4", ".netcdf") else "csv")
-    if fmt == "netcdf":
-        with xr.open_dataset(path, chunks={}) as ds:
-            m = ds["mask"].data
-            counts = dask.compute(*[(m == k).mean() for k in range(4)])
-    else:
-        import pandas as pd
-
-        counts = [0.0] * 4
-        n = 0
-        for part in pd.read_csv(path, usecols=["mask"], chunksize=1 << 20):
-            n += len(part)
-            for k, name in enumerate(pl.CLASS_NAMES):
-                counts[k] += float((part["mask"] == name).sum())
-        counts = [c / max(n, 1) for c in counts]
-    return {name: round(float(c), 4) for name, c in zip(pl.CLASS_NAMES, counts)}

@@ -38,7 +38,7 @@ def test_chunked_equals_in_memory(tmp_path, name, override):
     with dask.config.set(scheduler="threads"):
         lazy = scale.open_lazy(path, cfg, chunk_rows=37)
         res = scale.screen_chunked(lazy, cfg)
-        out = scale.write_chunked(lazy, res, cfg, tmp_path / "chunked.nc")
+        out, _ = scale.write_chunked(lazy, res, cfg, tmp_path / "chunked.nc")
     _compare(mem, xr.open_dataset(out))
 
 
@@ -48,7 +48,7 @@ def test_chunked_parquet_matches_csv_output(tmp_path):
     mem = ScreeningModel.open(pq, cfg, journal=False).result_dataset()
     with dask.config.set(scheduler="threads"):
         lazy = scale.open_lazy(pq, cfg, chunk_rows=64)
-        out = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.csv")
+        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.csv")
     table = pd.read_csv(out)
     assert len(table) == mem.sizes["y"] * mem.sizes["x"]
     np.testing.assert_array_equal(table["mask"].map({"clear": 0, "marginal": 1, "cloud": 2, "no_data": 3}),
@@ -74,3 +74,25 @@ def test_archive_with_workers_skips_bad_scene(tmp_path):
     code = main(["screen", str(arch / "*.nc"), "--out", str(tmp_path / "out"), "--workers", "1", "--quiet"])
     assert code == 4
     assert (tmp_path / "out" / "a_mask.nc").exists() and not (tmp_path / "out" / "bad_mask.nc").exists()
+
+
+def test_chunked_netcdf_passes_cf_checker(tmp_path):
+    """The block-by-block NetCDF writer keeps the CF attributes (IOOS compliance-checker)."""
+    import json
+    import subprocess
+
+    import shutil
+    import sys
+
+    cfg = load_config()
+    with dask.config.set(scheduler="threads"):
+        lazy = scale.open_lazy(SAMPLES / "polar_ice.nc", cfg, chunk_rows=50)
+        out, counts = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.nc")
+    assert abs(sum(counts.values()) - 1) < 1e-3
+    exe = Path(sys.executable).with_name("compliance-checker")
+    checker = str(exe) if exe.exists() else shutil.which("compliance-checker")
+    proc = subprocess.run([checker, "--test=cf:1.10", "--format=json", "-o", "-", str(out)], capture_output=True,
+                          text=True, timeout=300)
+    cf = next(iter(json.loads(proc.stdout).values()))
+    bad = [m for m in cf["high_priorities"] + cf["medium_priorities"] if m["value"][0] != m["value"][1]]
+    assert not bad, bad

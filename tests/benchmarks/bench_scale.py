@@ -96,7 +96,7 @@ def matches_in_memory():
     mem = ScreeningModel.open(path, cfg, journal=False).result_dataset()
     with tempfile.TemporaryDirectory() as tmp, dask.config.set(scheduler="threads"):
         lazy = scale.open_lazy(path, cfg, chunk_rows=37)
-        out = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, Path(tmp) / "c.nc")
+        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, Path(tmp) / "c.nc")
         ch = xr.open_dataset(out).load()
     worst = 0.0
     for v in mem.data_vars:
