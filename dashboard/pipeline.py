@@ -197,6 +197,53 @@ def simulate(scene, config, progress=None, levels=True):
                       time.perf_counter() - t0)
 
 
+class ColumnSimulator:
+    """Clear-sky columns of chosen pixels of a scene, with their level data (on demand).
+
+    Used where the level data of every pixel would not fit in memory (large scenes): the
+    cloud inversion and the pixel inspector simulate just the columns they need. Same
+    arithmetic as :func:`simulate`, so the values are the same.
+    """
+
+    def __init__(self, scene, config):
+        ds = scene.data
+        self.names = tuple(scene.channels)
+        self.chans = scene_channels(config, self.names)
+        self.coeffs = channel_coefficients(self.chans, absorption_table(config))
+        self.sim_cfg = config["simulation"]
+        self.ds = ds
+        self.emis = surface_emissivity(ds, self.names, config).reshape(len(self.names), -1)
+        self.explicit = all(f"profile_{k}" in ds for k in ("pressure", "temperature", "q"))
+
+    def levels(self, idx):
+        """(level pressure, level temperature, opaque radiance) of flat pixel indices ``idx``."""
+        f32 = np.float32
+        ds = self.ds
+        col = lambda name: ds[name].values.ravel()[idx].astype(f32)  # noqa: E731
+        p_surf = col("p_surf")
+        p_surf = np.where(np.isfinite(p_surf), p_surf, f32(1013.25))
+        if self.explicit:
+            n = ds.sizes["y"] * ds.sizes["x"]
+            p, t, q = (np.ascontiguousarray(ds[f"profile_{k}"].values.reshape(n, -1)[idx].astype(f32).T)
+                       for k in ("pressure", "temperature", "q"))
+        else:
+            p, t, q = profile_levels_first(col("t_air"), col("tcwv"), p_surf, int(self.sim_cfg["levels"]),
+                                           self.sim_cfg["top_pressure"], dtype=f32)
+        lp = np.empty((idx.size, p.shape[0]), f32)
+        lt = np.empty_like(lp)
+        opq = np.empty((idx.size, p.shape[0], len(self.names)), f32)
+        chunk = int(self.sim_cfg["chunk_pixels"])
+        for s in range(0, idx.size, chunk):
+            sl = slice(s, min(s + chunk, idx.size))
+            r = simulate_channel_major(np.ascontiguousarray(p[:, sl]), np.ascontiguousarray(t[:, sl]),
+                                       np.ascontiguousarray(q[:, sl]), col("t_skin")[sl],
+                                       self.emis[:, idx[sl]].astype(f32), col("sat_zenith")[sl], self.chans,
+                                       self.coeffs, levels=True)
+            lp[sl], lt[sl] = p[:, sl].T, t[:, sl].T
+            opq[sl] = r.opaque_radiance.transpose(2, 1, 0)
+        return lp, lt, opq
+
+
 # ---------------------------------------------------------------------------------------
 # stage 2: cloud inversion for every valid pixel
 # ---------------------------------------------------------------------------------------
@@ -282,14 +329,27 @@ def invert_all(scene, sim, config, bias=None):
     status = np.full(shape2, pcloud.STATUS_NOT_CLOUDY, np.int8)
     uncertain = np.zeros(shape2, bool)
     method = cc["top"]
-    if sim.level_pressure is None or idx.size == 0:
-        notes.append("no inversion: the simulation kept no level data")
-    else:
+    if idx.size:
         chunk = max(1024, int(config["simulation"]["chunk_pixels"]) * 16)
         sigma_k = clear_sky_sigma(ds, sim, config).ravel()
-        for start in range(0, idx.size, chunk):
-            _invert_block(slice(start, min(start + chunk, idx.size)), ds, sim, config, bias, inv, ci, chans,
-                          out_eps, out, status, uncertain, notes if start == 0 else [], sigma_k)
+        blocks = [slice(start, min(start + chunk, idx.size)) for start in range(0, idx.size, chunk)]
+        if sim.level_pressure is None:
+            # lean simulation (large scenes): simulate each block's columns again with levels,
+            # invert, and drop the levels; blocks run on the configured threads
+            column_sim = ColumnSimulator(scene, config)
+
+            def lean(k_blk):
+                k, blk = k_blk
+                _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain,
+                              notes if k == 0 else [], sigma_k, levels=column_sim.levels(sim.valid_index[blk]))
+
+            threads = max(1, int(config["simulation"].get("threads", 1)))
+            with ThreadPoolExecutor(threads) as pool:
+                list(pool.map(lean, enumerate(blocks)))
+        else:
+            for k, blk in enumerate(blocks):
+                _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain,
+                              notes if k == 0 else [], sigma_k)
     r2 = lambda a: a.reshape(ny, nx)  # noqa: E731
     return CloudLayer(out_eps.reshape(n_inv, ny, nx), r2(out["tau"]), r2(out["stau"]), r2(out["text"]), r2(out["pc"]),
                       r2(out["tc"]), r2(status), r2(uncertain), tuple(inv), method, notes)
@@ -297,16 +357,22 @@ def invert_all(scene, sim, config, bias=None):
 
 
 
-def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain, notes, sigma_k):
-    """Invert one block of valid pixels of a Simulation; writes into the output arrays."""
+def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain, notes, sigma_k,
+                  levels=None):
+    """Invert one block of valid pixels of a Simulation; writes into the output arrays.
+
+    ``levels``: (pressure, temperature, opaque radiance) of the block's columns when the
+    simulation did not keep them.
+    """
     idx = sim.valid_index[blk]
+    lp, lt, opq = levels if levels is not None else (sim.level_pressure[blk], sim.level_temperature[blk],
+                                                     sim.opaque_radiance[blk])
     obs_bt = np.stack([ds[f"bt_{c}"].values.ravel()[idx] for c in inv], axis=-1)
     clr_bt = np.stack([sim.bt_clear[i].ravel()[idx] for i in ci], axis=-1).astype(float)
     if bias:
         clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * sim.slant_path.ravel()[idx].astype(float) if c in bias
                                     else np.zeros(idx.size) for c in inv], axis=-1)
-    res = invert_columns(obs_bt, clr_bt, sim.level_pressure[blk], sim.level_temperature[blk],
-                         sim.opaque_radiance[blk][:, :, ci], ds["sat_zenith"].values.ravel()[idx], sigma_k[idx],
+    res = invert_columns(obs_bt, clr_bt, lp, lt, opq[:, :, ci], ds["sat_zenith"].values.ravel()[idx], sigma_k[idx],
                          chans, inv, config, notes)
     out_eps[:, idx] = res["emissivity"].T
     out["tau"][idx] = res["optical_depth"]

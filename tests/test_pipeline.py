@@ -150,3 +150,15 @@ def test_explicit_profiles_from_netcdf(tmp_path, cfg):
     ds.to_netcdf(tmp_path / "warm.nc")
     c = pl.simulate(load_scene(tmp_path / "warm.nc", config=cfg), cfg).bt_clear
     assert np.all(c > b)
+
+
+def test_lean_simulation_gives_the_same_cloud_layer(cfg):
+    """Large scenes keep no level data; the inversion then simulates each block's columns
+    again and must give the very same cloud layer."""
+    scene = load_scene(SAMPLES / "polar_ice.nc", config=cfg)
+    full = pl.invert_all(scene, pl.simulate(scene, cfg), cfg)
+    lean_sim = pl.simulate(scene, cfg, levels=False)
+    assert lean_sim.level_pressure is None
+    lean = pl.invert_all(scene, lean_sim, cfg)
+    for name in ("optical_depth", "top_pressure", "status", "emissivity", "optical_depth_sigma"):
+        np.testing.assert_array_equal(getattr(full, name), getattr(lean, name), err_msg=name)
