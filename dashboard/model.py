@@ -254,7 +254,7 @@ class ScreeningModel(param.Parameterized):
         ny, nx = self.result.mask.shape
         flat = row * nx + col
         pos = np.searchsorted(self.sim.valid_index, flat)
-        if pos >= self.sim.valid_index.size or self.sim.valid_index[pos] != flat or self.sim.level_pressure is None:
+        if pos >= self.sim.valid_index.size or self.sim.valid_index[pos] != flat:
             return None
         taus = np.concatenate([[0.0], np.geomspace(0.01, 20.0, 60)]) if taus is None else np.asarray(taus)
         p_top = self.result.cloud.top_pressure[row, col]
@@ -262,8 +262,13 @@ class ScreeningModel(param.Parameterized):
             p_top = self._cloud.top_pressure[row, col] if self._cloud is not None else np.nan
         if not np.isfinite(p_top):
             p_top = self.top_pressure
-        lp = self.sim.level_pressure[pos].astype(float)
-        opq = pcloud.interpolate_levels(lp, self.sim.opaque_radiance[pos].astype(float), p_top)
+        if self.sim.level_pressure is not None:
+            lp = self.sim.level_pressure[pos].astype(float)
+            opq_levels = self.sim.opaque_radiance[pos].astype(float)
+        else:  # large scene: simulate this one column again, with its levels
+            lp, _, opq_levels = pl.ColumnSimulator(self.scene, self.config).levels(np.array([flat]))
+            lp, opq_levels = lp[0].astype(float), opq_levels[0].astype(float)
+        opq = pcloud.interpolate_levels(lp, opq_levels, p_top)
         clr = self.sim.clear_radiance[pos].astype(float)
         mu = np.cos(np.deg2rad(float(self.scene.data["sat_zenith"].values[row, col])))
         out = {"tau": taus.tolist(), "top_pressure": float(p_top), "model": {}, "observed": {}}

@@ -98,7 +98,12 @@ def surface_emissivity(ds, channels, config):
     return np.stack(out)
 
 
-def simulate(scene, config, progress=None, levels=True):
+#: Above this many valid pixels the simulation keeps no per-level data (≈ 0.8 kB per pixel);
+#: the cloud inversion and the pixel inspector then simulate the columns they need again.
+LEVELS_PIXEL_LIMIT = 2_000_000
+
+
+def simulate(scene, config, progress=None, levels=None):
     """Stage 1: clear-sky brightness temperatures (and inversion inputs) for every valid pixel.
 
     Parameters
@@ -106,14 +111,18 @@ def simulate(scene, config, progress=None, levels=True):
     scene : dashboard.scene.Scene
     config : dict
     progress : callable(n_done, n_total), optional
-    levels : bool
-        Keep the per-level arrays for the cloud inversion.
+    levels : bool, optional
+        Keep the per-level arrays for the cloud inversion; by default only for scenes of up
+        to ``LEVELS_PIXEL_LIMIT`` valid pixels.
 
     Returns
     -------
     Simulation
     """
     import time
+
+    if levels is None:
+        levels = int(scene.data["valid"].values.sum()) <= LEVELS_PIXEL_LIMIT
 
     t0 = time.perf_counter()
     ds = scene.data

@@ -162,3 +162,15 @@ def test_lean_simulation_gives_the_same_cloud_layer(cfg):
     lean = pl.invert_all(scene, lean_sim, cfg)
     for name in ("optical_depth", "top_pressure", "status", "emissivity", "optical_depth_sigma"):
         np.testing.assert_array_equal(getattr(full, name), getattr(lean, name), err_msg=name)
+
+
+def test_inspector_curve_without_stored_levels(cfg):
+    """A large-scene model (no stored levels) gives the inspector the same curve."""
+    from dashboard.model import ScreeningModel, _NoJournal
+
+    scene = load_scene(SAMPLES / "polar_ice.nc", config=cfg)
+    full = ScreeningModel(scene, cfg, journal=_NoJournal())
+    lean = ScreeningModel(scene, cfg, journal=_NoJournal(), sim=pl.simulate(scene, cfg, levels=False))
+    a, b = full.optical_depth_curve(60, 70), lean.optical_depth_curve(60, 70)
+    assert a["top_pressure"] == b["top_pressure"]
+    np.testing.assert_array_equal(a["model"]["11um"], b["model"]["11um"])
