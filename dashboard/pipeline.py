@@ -651,12 +651,13 @@ def classify(valid, margins, thresholds, fraction, night=None, has_3p9=False, ed
         m = margins.get(name)
         if m is None:
             continue
-        m = np.nan_to_num(m, nan=-np.inf)
-        fired = m > 0
-        bits |= np.where(fired, BITS[name], 0).astype(np.uint16)
+        with np.errstate(invalid="ignore"):  # NaN margins (test not applicable) compare False
+            fired = m > 0
+            if name in CLOUD_TESTS:
+                near_any |= m > -fraction * np.abs(thresholds[name])
+        bits[fired] |= np.uint16(BITS[name])
         if name in CLOUD_TESTS:
             fired_any |= fired
-            near_any |= m > -fraction * np.abs(thresholds[name])
     mask = np.full(shape, CLEAR, np.int8)
     mask[near_any] = MARGINAL
     mask[fired_any] = CLOUD
