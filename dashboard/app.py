@@ -1,0 +1,422 @@
+"""The cloudsieve dashboard: page assembly and the server.
+
+Each browser session gets its own :class:`dashboard.model.ScreeningModel`; sessions share
+only what is immutable — a loaded scene and its clear-sky simulation, cached per file
+(path, modification time, size) and configuration. The views in :mod:`dashboard.views`
+render the model; this module puts them on a page and serves it.
+
+    cloudsieve serve [SCENE ...] [--data-dir DIR] [--port 5006]
+"""
+import asyncio
+import collections
+import socket
+import sys
+import threading
+from pathlib import Path
+
+import panel as pn
+from bokeh.core.validation import silence
+from bokeh.core.validation.warnings import FIXED_SIZING_MODE
+
+from . import CAUTION, __version__
+from . import pipeline as pl
+from .config import config_json, load_config
+from .errors import CloudsieveError, PathError, SceneError
+from .model import ScreeningModel
+from .scene import load_scene
+from .views import (ClassCounts, Diagnostics, ExportPanel, Focus, MapGrid, Notices, PixelInspector, QAPanel,
+                    TuningPanel)
+from .views.scenes import ScenePicker, UploadBox
+from .views.style import ACCENT, PAGE_CSS, channel_label, legend_html
+
+# HoloViews sizes plots by their frame (frame_width/frame_height); Bokeh's check does not know that
+silence(FIXED_SIZING_MODE, True)
+
+SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_scenes"
+DEFAULT_SCENE = "night_front.nc"
+SCENE_SUFFIXES = (".nc", ".csv", ".parquet")
+LOCAL_ADDRESSES = ("127.0.0.1", "localhost", "::1")
+
+
+# ---------------------------------------------------------------------------------------
+# scene files: listing inside the data folder, and the shared cache
+# ---------------------------------------------------------------------------------------
+def is_scene_file(path):
+    """A scene file the picker lists (not a truth file, a journal or an exported mask)."""
+    name = path.name
+    return (path.suffix.lower() in SCENE_SUFFIXES and not name.startswith(".")
+            and not name.endswith("_truth.nc") and "_mask." not in name and ".qa.jsonl" not in name)
+
+
+class SceneCatalog:
+    """The scene files a session may open: those inside the data folder, plus any given
+    explicitly on the command line."""
+
+    def __init__(self, folder, extra=()):
+        self.folder = Path(folder).resolve()
+        self.extra = {}
+        for p in extra:
+            p = Path(p).resolve()
+            if not self._inside(p):
+                self.extra[f"{p.name} ({p.parent})"] = p
+
+    def _inside(self, path):
+        return path.is_relative_to(self.folder)
+
+    def names(self):
+        found = []
+        if self.folder.is_dir():
+            for p in sorted(self.folder.iterdir()):
+                if is_scene_file(p):
+                    try:
+                        target = self.resolve(p.name)
+                    except PathError:
+                        continue
+                    if target.is_file():
+                        found.append(p.name)
+        return found + list(self.extra)
+
+    def resolve(self, name):
+        """The file behind a listed name; PathError for anything that leaves the data folder."""
+        if name in self.extra:
+            return self.extra[name]
+        if not name or "/" in name or "\\" in name or name in (".", "..") or "\x00" in name:
+            raise PathError(f"'{name}' is not a file name inside the data folder; pick a scene from the list")
+        path = (self.folder / name).resolve()
+        if not self._inside(path):
+            raise PathError(f"'{name}' points outside the data folder {self.folder} (through a link); "
+                            "copy the file into the folder instead")
+        if not path.is_file():
+            raise PathError(f"'{name}' is not in the data folder {self.folder} any more; refresh the list")
+        if not is_scene_file(path):
+            raise PathError(f"'{name}' is not a scene file (.nc, .csv or .parquet)")
+        return path
+
+
+_CACHE = collections.OrderedDict()
+_CACHE_SIZE = 4
+_CACHE_LOCK = threading.Lock()
+
+
+def load_cached(path, config):
+    """(Scene, Simulation) of a scene file, shared between sessions (both are never modified)."""
+    path = Path(path).resolve()
+    st = path.stat()
+    key = (str(path), st.st_mtime_ns, st.st_size, config_json(config))
+    with _CACHE_LOCK:
+        if key in _CACHE:
+            _CACHE.move_to_end(key)
+            return _CACHE[key]
+        scene = load_scene(path, config=config)
+        sim = pl.simulate(scene, config)
+        _CACHE[key] = (scene, sim)
+        while len(_CACHE) > _CACHE_SIZE:
+            _CACHE.popitem(last=False)
+        return scene, sim
+
+
+def _as_config(config):
+    if config is None or isinstance(config, (str, Path)):
+        return load_config(config)
+    return config
+
+
+# ---------------------------------------------------------------------------------------
+# one browser session
+# ---------------------------------------------------------------------------------------
+class Session:
+    """The page of one browser session and the model it renders."""
+
+    def __init__(self, paths=None, data_dir=None, config=None, max_upload_mb=200.0):
+        paths = [Path(p) for p in (paths or [])]
+        folder = Path(data_dir) if data_dir else (paths[0].resolve().parent if paths else SAMPLE_DIR)
+        self.config = _as_config(config)
+        self.catalog = SceneCatalog(folder, paths)
+        self.model = None
+        self.notices = Notices()
+        self._uploaded = {}
+        # sidebar
+        self.picker = ScenePicker(self.catalog, self.open_name, self.notices)
+        self.upload = UploadBox(self.open_scene, self.notices, max_upload_mb=max_upload_mb, config=self.config)
+        self.tuning = pn.Column(sizing_mode="stretch_width", margin=0)
+        self.exports = pn.Column(sizing_mode="stretch_width", margin=0)
+        # main
+        self.counts = pn.Column(sizing_mode="stretch_width", margin=0)
+        self.maps = pn.Column(sizing_mode="stretch_width", margin=0)
+        self.diagnostics = pn.Column(sizing_mode="stretch_width", margin=0)
+        self.template = self._assemble()
+        first = self._first_scene(paths)
+        if first is not None:
+            self._open_sync(first)
+        else:
+            self.notices.show("No scene found. Put .nc, .csv or .parquet scenes into the data folder, or upload one.",
+                              "info")
+
+    # ------------------------------------------------------------------ page
+    def _assemble(self):
+        caution = pn.pane.HTML(f"<div class='cs-caution'><b>Caution.</b> {CAUTION}</div>",
+                               sizing_mode="stretch_width", margin=(10, 10), css_classes=["cs-caution-pane"])
+        sidebar = [
+            pn.Card(self.picker, self.upload, title="Scene", collapsible=False, sizing_mode="stretch_width"),
+            pn.Card(self.tuning, title="Screening", collapsible=True, sizing_mode="stretch_width"),
+            pn.Card(self.exports, title="Download result", collapsible=True, sizing_mode="stretch_width"),
+            pn.pane.HTML(legend_html(), margin=(4, 12)),
+            caution,
+        ]
+        about = pn.pane.Markdown(_about_text(), sizing_mode="stretch_width", max_width=900, css_classes=["cs-about"])
+        self.tabs = pn.Tabs(("Maps & QA", self.maps), ("Diagnostics", self.diagnostics), ("About", about),
+                            dynamic=True, sizing_mode="stretch_width", css_classes=["cs-tabs"])
+        footer = pn.pane.HTML(f"<div class='cs-muted' style='padding:6px 10px;border-top:1px solid #e3e7ea'>"
+                              f"cloudsieve {__version__} · {CAUTION}</div>", sizing_mode="stretch_width",
+                              css_classes=["cs-footer"])
+        return pn.template.FastListTemplate(
+            title="cloudsieve", sidebar=sidebar, main=[self.notices, self.counts, self.tabs, footer],
+            accent=ACCENT, header_background=ACCENT, sidebar_width=360, theme_toggle=False, main_layout=None,
+            raw_css=[PAGE_CSS], main_max_width="", collapsed_sidebar=False)
+
+    def _first_scene(self, paths):
+        return paths[0] if paths else self.default_scene(self.catalog.folder)
+
+    @staticmethod
+    def default_scene(folder):
+        """The scene opened first: night_front.nc of the data folder, else its first scene, else the
+        bundled sample scene."""
+        catalog = SceneCatalog(folder if folder is not None else SAMPLE_DIR)
+        names = catalog.names()
+        if DEFAULT_SCENE in names:
+            return catalog.resolve(DEFAULT_SCENE)
+        if names:
+            return catalog.resolve(names[0])
+        bundled = SAMPLE_DIR / DEFAULT_SCENE
+        return bundled if bundled.is_file() else None
+
+    # ------------------------------------------------------------------ opening scenes
+    def _open_sync(self, path):
+        try:
+            scene, sim = load_cached(path, self.config)
+            self._show_model(ScreeningModel(scene, self.config, sim=sim))
+            self.picker.update_options(current=self._label_of(path))
+        except Exception as exc:  # noqa: BLE001 — shown in the page
+            self.notices.report(exc, f"opening {Path(path).name}")
+
+    def _label_of(self, path):
+        path = Path(path).resolve()
+        for name in self.catalog.names():
+            try:
+                if self.catalog.resolve(name) == path:
+                    return name
+            except PathError:
+                continue
+        return None
+
+    async def open_name(self, name):
+        """Open a scene chosen in the picker (a data-folder name or an uploaded one)."""
+        if name in self._uploaded:
+            scene = self._uploaded[name]
+            await self._open(lambda: (scene, None), name)
+            return
+        try:
+            path = self.catalog.resolve(name)
+        except PathError as exc:
+            self.notices.report(exc, f"opening {name}")
+            return
+        await self._open(lambda: load_cached(path, self.config), name)
+
+    async def open_scene(self, scene):
+        """Open a validated, uploaded scene."""
+        label = f"⬆ {scene.path.name} (uploaded)"
+        self._uploaded[label] = scene
+        await self._open(lambda: (scene, None), label)
+        self.picker.update_options(current=label, extra=list(self._uploaded))
+
+    async def _open(self, load, label):
+        self.tabs.loading = True
+        self.notices.clear()
+        try:
+            loop = asyncio.get_running_loop()
+
+            def build():
+                scene, sim = load()
+                return ScreeningModel(scene, self.config, sim=sim)
+
+            model = await loop.run_in_executor(None, build)
+            self._show_model(model)
+        except CloudsieveError as exc:
+            self.notices.report(exc, f"opening {label}")
+            self.picker.update_options(current=self._current_label())
+        except Exception as exc:  # noqa: BLE001 — never a traceback in the page
+            self.notices.report(exc, f"opening {label}")
+            self.picker.update_options(current=self._current_label())
+        finally:
+            self.tabs.loading = False
+
+    def _current_label(self):
+        if self.model is None:
+            return None
+        for label, scene in self._uploaded.items():
+            if scene is self.model.scene:
+                return label
+        return self._label_of(self.model.scene.path)
+
+    def _show_model(self, model):
+        """Build the views of a freshly opened model and put them on the page."""
+        self.model = model
+        ds = model.scene.data
+        focus = Focus((ds.sizes["y"], ds.sizes["x"]), row0=int(ds["row"].values[0]), col0=int(ds["col"].values[0]))
+        self.focus = focus
+        channel = pn.widgets.RadioButtonGroup(options={channel_label(c): c for c in model.param.channel.objects},
+                                              value=model.channel, color="primary", variant="outline",
+                                              margin=(6, 10), css_classes=["cs-channel"])
+        channel.link(model, value="channel")
+        maps = MapGrid(model, focus, self.notices)
+        side = pn.Column(
+            pn.Card(QAPanel(model, focus, self.notices), title="Analyst QA", collapsible=False,
+                    sizing_mode="stretch_width", css_classes=["cs-qa-card"]),
+            pn.Card(PixelInspector(model, focus, self.notices), title="Pixel inspector", collapsible=False,
+                    sizing_mode="stretch_width", css_classes=["cs-inspector-card"]),
+            sizing_mode="stretch_width", min_width=380, margin=(0, 0, 0, 10))
+        self.counts[:] = [ClassCounts(model)]
+        self.maps[:] = [pn.Row(pn.Column(
+            pn.Row(pn.pane.HTML("<b>Channel of the temperature maps</b>", margin=(12, 0, 0, 10)), channel),
+            maps), side, sizing_mode="stretch_width")]
+        self.diagnostics[:] = [Diagnostics(model)]
+        self.tuning[:] = [TuningPanel(model, self.notices)]
+        self.exports[:] = [ExportPanel(model, self.notices)]
+        if model.message:
+            self.notices.show(model.message, "warning")
+
+    def cleanup(self, *_):
+        self.upload.cleanup()
+
+
+def _about_text():
+    return f"""
+### cloudsieve dashboard
+
+Screens infrared window-channel imagery for cloud. For every pixel the clear-sky brightness
+temperature is simulated from the background state; the **departure** observed − clear and a set
+of physically based tests give each pixel a class:
+
+{legend_html()}
+
+- **Maps & QA** — six linked maps (pan or zoom one, all follow). Click a pixel to inspect it. With the
+  box or lasso tool from the toolbar, select pixels and mark them clear or cloud; edits are saved at once
+  beside the scene (`<scene>.qa.jsonl`), shown outlined in magenta on the class map, and used by the
+  downloads and by `cloudsieve screen`.
+- **Screening** (sidebar) — switch tests and move thresholds; only the screening is redone, never the
+  clear-sky simulation.
+- **Diagnostics** — departure histogram with the thresholds, split-window scatter, clear-sky bias fit
+  and a summary of the scene.
+
+Class palette: deep teal = clear, amber = marginal, pale lavender = cloud, mid-grey = no_data. The
+colours differ in lightness as well as hue, so they stay apart for common colour-vision deficiencies.
+
+**Caution.** {CAUTION}
+
+cloudsieve {__version__}
+"""
+
+
+def create_app(paths=None, data_dir=None, config=None, max_upload_mb=200.0):
+    """A new page (with its own model) for one session; ``config`` is a dict, a TOML path or None."""
+    session = Session(paths, data_dir, config, max_upload_mb)
+    if pn.state.curdoc is not None and pn.state.curdoc.session_context is not None:
+        pn.state.on_session_destroyed(session.cleanup)
+    return session.template
+
+
+# ---------------------------------------------------------------------------------------
+# the server
+# ---------------------------------------------------------------------------------------
+def _free_port(address):
+    family = socket.AF_INET6 if ":" in address else socket.AF_INET
+    with socket.socket(family, socket.SOCK_STREAM) as s:
+        s.bind((address, 0))
+        return s.getsockname()[1]
+
+
+def _check_port(address, port):
+    """Fail early (before the first scene is prepared) if the port is taken."""
+    family = socket.AF_INET6 if ":" in address else socket.AF_INET
+    with socket.socket(family, socket.SOCK_STREAM) as s:
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        s.bind((address, port))
+    return port
+
+
+def server_options(address, port, allow_websocket_origin, max_upload_mb):
+    """Keyword arguments of pn.serve for these command-line settings (raises CloudsieveError)."""
+    local = address in LOCAL_ADDRESSES
+    origins = [o for o in (allow_websocket_origin or []) if o]
+    if not local and not origins:
+        raise _OriginError(
+            f"cloudsieve: --address {address} makes the dashboard reachable from other machines; say which "
+            f"origins may connect with --allow-websocket-origin HOST:PORT (e.g. --allow-websocket-origin "
+            f"myhost.example.org:{port or 5006}), or serve on 127.0.0.1.")
+    if local:
+        origins += [f"127.0.0.1:{port}", f"localhost:{port}"] + ([f"[::1]:{port}"] if address == "::1" else [])
+    # uploads travel base64-encoded over the websocket (4/3 of the file), plus some headroom
+    limit = int(max_upload_mb * 1024 * 1024 * 4 / 3) + 8 * 1024 * 1024
+    return dict(port=port, address=address, websocket_origin=origins, websocket_max_message_size=limit,
+                http_server_kwargs={"max_buffer_size": limit}, title="cloudsieve")
+
+
+class _OriginError(CloudsieveError):
+    exit_code = 2
+
+
+def serve(args):
+    """``cloudsieve serve``: run the dashboard until Ctrl-C (returns the exit code)."""
+    address = getattr(args, "address", None) or "127.0.0.1"
+    max_mb = float(getattr(args, "max_upload_mb", None) or 200.0)
+    if max_mb <= 0:
+        print("cloudsieve: --max-upload-mb must be a positive number of megabytes", file=sys.stderr)
+        return 2
+    try:
+        server_options(address, 1, args.allow_websocket_origin, max_mb)
+    except _OriginError as exc:
+        print(str(exc), file=sys.stderr)
+        return exc.exit_code
+    config = load_config(args.config)  # a bad file raises ConfigError: the CLI prints it, exit 2
+    paths = [Path(p) for p in (args.scenes or [])]
+    for p in paths:
+        if not p.is_file():
+            raise SceneError(f"scene file '{p}' does not exist. Check the path.")
+    data_dir = Path(args.data_dir) if args.data_dir else None
+    if data_dir is not None and not data_dir.is_dir():
+        raise PathError(f"--data-dir '{data_dir}' is not a folder")
+    try:
+        port = _check_port(address, args.port) if args.port else _free_port(address)
+    except OSError as exc:
+        print(f"cloudsieve: cannot listen on {address}:{args.port} ({exc.strerror or exc}); choose another "
+              "--port (0 picks a free one) or stop the program using it.", file=sys.stderr)
+        return 2
+    opts = server_options(address, port, args.allow_websocket_origin, max_mb)
+    def app():  # a plain function: Panel calls it once per session
+        return create_app(paths=paths, data_dir=data_dir, config=config, max_upload_mb=max_mb)
+
+    host = f"[{address}]" if ":" in address else address
+    print("cloudsieve dashboard: preparing the first scene …", flush=True)
+    first = paths[0] if paths else Session.default_scene(data_dir)
+    if first is not None:
+        try:  # fills the shared cache, so the first page opens quickly
+            load_cached(first, config)
+        except CloudsieveError as exc:
+            print(f"cloudsieve: {exc}", file=sys.stderr)
+            print("cloudsieve dashboard: the page will show this problem; pick another scene there.", file=sys.stderr)
+    server = pn.serve(app, show=False, start=False, verbose=False, threaded=False, **opts)
+    print(f"cloudsieve dashboard: http://{host}:{port}/ (Ctrl-C to stop)", flush=True)
+    if args.show:
+        server.io_loop.add_callback(server.show, "/")
+    try:
+        server.start()
+        server.io_loop.start()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        try:
+            server.stop()
+        except Exception:  # noqa: BLE001 — already stopped
+            pass
+    print("cloudsieve dashboard: stopped", flush=True)
+    return 0

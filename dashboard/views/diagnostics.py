@@ -1,0 +1,229 @@
+"""Diagnostic plots of the screening: departure histogram, split-window scatter, bias fit,
+and a short scene summary. Each redraws when the model's result changes."""
+import html
+
+import numpy as np
+import holoviews as hv
+import panel as pn
+from panel.viewable import Viewer
+
+from .. import pipeline as pl
+from .style import CLASS_COLOURS, INK, TEST_LABELS, channel_colour, channel_label
+
+MAX_POINTS = 20_000
+_DARK = "#454c5a"
+
+
+def window_channel(model):
+    """The channel the cold-departure test uses (the configured one, else a fallback)."""
+    want = model.config["tests"]["cold_departure"]["channel"]
+    chans = model.sim.channels
+    return want if want in chans else next((c for c in ("11um", "12um", "8p6um") if c in chans), chans[0])
+
+
+def _subsample(n, k, seed=0):
+    if n <= k:
+        return np.arange(n)
+    return np.sort(np.random.default_rng(seed).choice(n, k, replace=False))
+
+
+def _median_threshold(thr, valid):
+    return float(np.nanmedian(np.broadcast_to(np.asarray(thr, float), valid.shape)[valid]))
+
+
+class DepartureHistogram(Viewer):
+    """Window-channel departures stacked by class, with the test thresholds as lines."""
+
+    def __init__(self, model, **params):
+        super().__init__(**params)
+        self.model = model
+        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version)))
+
+    def __panel__(self):
+        return self._pane
+
+    def plot(self, version=None):
+        m = self.model
+        res = m.result
+        ch = window_channel(m)
+        valid = m.scene.data["valid"].values
+        d = res.departure[ch]
+        ok = valid & np.isfinite(d)
+        vals, cls = d[ok], res.mask[ok]
+        lines = []
+        if "cold_departure" in res.thresholds:
+            lines.append((_median_threshold(res.thresholds["cold_departure"], valid), "cold (−k·σ, median)", "dashed"))
+        if "warm_departure" in res.thresholds:
+            lines.append((_median_threshold(res.thresholds["warm_departure"], valid), "warm", "dotted"))
+        # the range around the thresholds, where tuning matters; the tails pile up in the end bins
+        cuts = [v for v, _, _ in lines] or [0.0]
+        lo = min(min(cuts) - 6.0, -8.0)
+        hi = max(max(cuts) + 3.0, 4.0)
+        edges = np.linspace(lo, hi, 91)
+        stack = np.zeros(edges.size - 1)
+        parts = []
+        for code, name in ((pl.CLEAR, "clear"), (pl.MARGINAL, "marginal"), (pl.CLOUD, "cloud")):
+            counts, _ = np.histogram(np.clip(vals[cls == code], lo, hi), edges)
+            stack = stack + counts
+            parts.append((name, stack.copy()))
+        kdim = hv.Dimension("dep", label=f"departure observed − clear, {channel_label(ch)}", unit="K")
+        vdim = hv.Dimension("n", label="pixels")
+        layers = [hv.Histogram((edges, top), kdims=[kdim], vdims=[vdim], label=name)
+                  .opts(color=CLASS_COLOURS[name], line_color="#4a5560", line_width=0.5)
+                  for name, top in reversed(parts)]  # tallest first, so each class shows as its band
+        inner = stack[1:-1]  # the end bins gather the tails and may tower over the rest
+        ymax = float(inner.max()) if inner.size and inner.max() > 0 else max(float(stack.max()), 1.0)
+        for k, (v, text, dash) in enumerate(lines):
+            layers.append(hv.VLine(v).opts(color=INK, line_dash=dash, line_width=1.6))
+            layers.append(hv.Text(v, ymax * (1.08 - 0.09 * k), f" {text}: {v:+.2f} K", fontsize=9, halign="left",
+                                  valign="center").opts(text_color=INK))
+        outside = int(((vals < lo) | (vals > hi)).sum())
+        return hv.Overlay(layers).opts(
+            title=f"Window-channel departures by class · {outside:,} beyond the range are in the end bins",
+            frame_width=520, frame_height=260, legend_position="right", ylim=(0, ymax * 1.15), xlim=(lo, hi),
+            show_grid=True, toolbar="above", fontscale=0.9)
+
+
+class SplitWindowScatter(Viewer):
+    """BT11 against BT11 − BT12 (or the two window channels present), coloured by class."""
+
+    def __init__(self, model, **params):
+        super().__init__(**params)
+        self.model = model
+        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version)))
+
+    def __panel__(self):
+        return self._pane
+
+    def _pair(self):
+        chans = self.model.sim.channels
+        if "11um" in chans and "12um" in chans:
+            return "11um", "12um"
+        window = [c for c in chans if c != "3p9um"]
+        return (window[0], window[1]) if len(window) >= 2 else (chans[0], None)
+
+    def plot(self, version=None):
+        m = self.model
+        ds = m.scene.data
+        a, b = self._pair()
+        valid = ds["valid"].values.ravel()
+        ta = ds[f"bt_{a}"].values.ravel()
+        tb = ds[f"bt_{b}"].values.ravel() if b else np.zeros_like(ta)
+        mask = m.result.mask.ravel()
+        idx = np.flatnonzero(valid & np.isfinite(ta) & np.isfinite(tb))
+        idx = idx[_subsample(idx.size, MAX_POINTS)]
+        xd = hv.Dimension("bt_a", label=f"BT {channel_label(a)}", unit="K")
+        yd = hv.Dimension("diff", label=f"BT {channel_label(a)} − BT {channel_label(b)}" if b else "0", unit="K")
+        layers = []
+        for code, name in ((pl.CLOUD, "cloud"), (pl.MARGINAL, "marginal"), (pl.CLEAR, "clear")):
+            sel = idx[mask[idx] == code]
+            layers.append(hv.Points((ta[sel], ta[sel] - tb[sel]), kdims=[xd, yd], label=name)
+                          .opts(color=CLASS_COLOURS[name], size=2.5, alpha=0.7))
+        shown = f"{idx.size:,} pixels" + (" (random sample)" if valid.sum() > MAX_POINTS else "")
+        return hv.Overlay(layers).opts(
+            title=f"Split window by class · {shown}", frame_width=420, frame_height=260, bgcolor=_DARK,
+            legend_position="top_left", show_grid=False, toolbar="above")
+
+
+class BiasFitPlot(Viewer):
+    """Departure against slant water-vapour path W·secθ over clear pixels, with each fit line."""
+
+    def __init__(self, model, **params):
+        super().__init__(**params)
+        self.model = model
+        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version)))
+        self._table = pn.pane.Markdown(pn.bind(self.table, version=model.param.version), width=520,
+                                       css_classes=["cs-bias-table"])
+
+    def __panel__(self):
+        return pn.Column(self._pane, self._table)
+
+    def plot(self, version=None):
+        m = self.model
+        ds = m.scene.data
+        res = m.result
+        use = (ds["valid"].values & (res.mask == pl.CLEAR) & ((res.bits & pl.BITS["warm_departure"]) == 0)).ravel()
+        x_all = m.sim.slant_path.ravel()
+        idx = np.flatnonzero(use & np.isfinite(x_all))
+        idx = idx[_subsample(idx.size, 4000, seed=1)]
+        xd = hv.Dimension("path", label="slant water-vapour path W·secθ", unit="kg m⁻²")
+        yd = hv.Dimension("dep", label="observed − clear", unit="K")
+        layers = []
+        xs = np.array([np.nanmin(x_all), np.nanmax(x_all)]) if np.isfinite(x_all).any() else np.array([0.0, 1.0])
+        for k, ch in enumerate(m.sim.channels):
+            raw = (ds[f"bt_{ch}"].values - m.sim.bt_clear[k]).ravel()
+            col = channel_colour(ch, k)
+            layers.append(hv.Points((x_all[idx], raw[idx]), kdims=[xd, yd], label=channel_label(ch))
+                          .opts(color=col, size=2, alpha=0.35))
+            fit = res.bias.get(ch, {})
+            if np.isfinite(fit.get("a", np.nan)) and np.isfinite(fit.get("b", np.nan)):
+                layers.append(hv.Curve((xs, fit["a"] + fit["b"] * xs), kdims=[xd], vdims=[yd],
+                                       label=channel_label(ch)).opts(color=col, line_width=2.5))
+        if len(layers) == 0:
+            layers.append(hv.Points([], kdims=[xd, yd]))
+        return hv.Overlay(layers).opts(
+            title=f"Clear-sky bias fit · {idx.size:,} clear pixels shown", frame_width=520, frame_height=260,
+            legend_position="right", show_grid=True, toolbar="above", legend_limit=20)
+
+    def table(self, version=None):
+        rows = ["| channel | a [K] | b [K per kg m⁻²] | pixels | rms [K] | removed |", "|---|---|---|---|---|---|"]
+        for ch, b in self.model.result.bias.items():
+            f = (lambda v, fmt: format(v, fmt) if np.isfinite(v) else "–")
+            rows.append(f"| {channel_label(ch)} | {f(b['a'], '+.3f')} | {f(b['b'], '+.4f')} | {b['n']:,} | "
+                        f"{f(b['rms'], '.3f')} | {'yes' if b.get('applied') else 'no'} |")
+        return "\n".join(rows)
+
+
+class SceneSummary(Viewer):
+    """Counts, skipped tests, notes and the validation report of the scene."""
+
+    def __init__(self, model, **params):
+        super().__init__(**params)
+        self.model = model
+        self._md = pn.pane.Markdown(pn.bind(self.text, version=model.param.version), sizing_mode="stretch_width",
+                                    css_classes=["cs-summary"])
+
+    def __panel__(self):
+        return self._md
+
+    def text(self, version=None):
+        m = self.model
+        s = m.summary()
+        lines = [f"### Scene {html.escape(s['scene'])}",
+                 f"{s['pixels']:,} pixels · clear **{100 * s['clear']:.1f} %** · marginal "
+                 f"**{100 * s['marginal']:.1f} %** · cloud **{100 * s['cloud']:.1f} %** · no_data "
+                 f"**{100 * s['no_data']:.1f} %**", ""]
+        sources = ", ".join(f"{channel_label(c)}: {v}" for c, v in m.sim.source.items())
+        lines.append(f"Clear-sky brightness temperatures: {sources}. Simulation took "
+                     f"{m.timings.get('simulate_s', float('nan')):.1f} s; the last rescreen "
+                     f"{1000 * m.timings.get('screen_s', float('nan')):.0f} ms.")
+        lines.append("")
+        lines.append("**Tests not applied**" if s["skipped_tests"] else "**All tests applied.**")
+        for t, why in s["skipped_tests"].items():
+            lines.append(f"- {TEST_LABELS.get(t, t)}: {why}")
+        lines.append("")
+        if s["notes"]:
+            lines.append("**Notes**")
+            lines += [f"- {n}" for n in s["notes"]]
+            lines.append("")
+        edits = m.edit_listing()
+        lines.append(f"**Analyst edits in force:** {len(edits)}")
+        lines.append("")
+        lines.append("**Validation report**")
+        lines.append('<pre style="white-space:pre-wrap;background:#f4f6f8;color:#1f2933;padding:8px;'
+                     'border-radius:4px;font-size:12px">' + html.escape(m.scene.report.text()) + "</pre>")
+        return "\n".join(lines)
+
+
+class Diagnostics(Viewer):
+    """All diagnostics of one model, laid out for the Diagnostics tab."""
+
+    def __init__(self, model, **params):
+        super().__init__(**params)
+        self._layout = pn.Column(
+            pn.Row(DepartureHistogram(model), SplitWindowScatter(model)),
+            pn.Row(BiasFitPlot(model), pn.Column(SceneSummary(model), width=520)),
+            sizing_mode="stretch_width")
+
+    def __panel__(self):
+        return self._layout

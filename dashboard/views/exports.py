@@ -1,0 +1,45 @@
+"""Downloads of the current result (mask, test bits and margins, departures, cloud layer).
+
+The files are built on click from the model (same writers as ``cloudsieve screen``), so they
+hold the current thresholds and every QA edit in force.
+"""
+import io
+
+import panel as pn
+from panel.viewable import Viewer
+
+
+class ExportPanel(Viewer):
+    """CSV and NetCDF download buttons."""
+
+    def __init__(self, model, notices, **params):
+        super().__init__(**params)
+        self.model, self.notices = model, notices
+        name = model.scene.name
+        self.csv = pn.widgets.FileDownload(callback=self._callback("csv"), filename=f"{name}_mask.csv",
+                                           label="Download CSV", color="primary", variant="outline",
+                                           sizing_mode="stretch_width", css_classes=["cs-download-csv"])
+        self.netcdf = pn.widgets.FileDownload(callback=self._callback("netcdf"), filename=f"{name}_mask.nc",
+                                              label="Download NetCDF", color="primary",
+                                              variant="outline", sizing_mode="stretch_width",
+                                              css_classes=["cs-download-nc"])
+        n = model.result.mask.size
+        hint = ("" if n <= 1_000_000 else
+                "<div class='cs-muted'>Large scene: NetCDF is much smaller and faster than CSV.</div>")
+        self._layout = pn.Column(
+            pn.Row(self.csv, self.netcdf, sizing_mode="stretch_width"),
+            pn.pane.HTML("<div class='cs-muted'>Mask, test bits and margins, departures, clear-sky BT and the "
+                         "cloud layer, with the current settings and QA edits.</div>" + hint, margin=(0, 10)),
+            sizing_mode="stretch_width")
+
+    def __panel__(self):
+        return self._layout
+
+    def _callback(self, fmt):
+        def build():
+            try:
+                return io.BytesIO(self.model.export_bytes(fmt))
+            except Exception as exc:  # noqa: BLE001 — reported in the page
+                self.notices.report(exc, f"building the {fmt.upper()} download")
+                return io.BytesIO(b"")
+        return build

@@ -1,0 +1,264 @@
+"""The six linked maps of a screened scene.
+
+Observed and clear-sky brightness temperature and their departure (for the chosen channel),
+the class mask, cloud optical depth and cloud-top pressure. All six share the axes x =
+column and y = row of the scene grid (row 0 at the top), so pan and zoom move them together.
+A click on any map picks the pixel for the inspector; the box and lasso tools select pixels
+for QA edits. Grids of a million pixels or more are rasterized with datashader; their
+values under the cursor are then read from the source arrays into a readout line.
+"""
+import numpy as np
+import holoviews as hv
+import panel as pn
+from bokeh.models import CustomJSHover, FixedTicker, Range1d
+from panel.viewable import Viewer
+from scipy import ndimage
+
+from .. import pipeline as pl
+from .style import CLASS_COLOURS, EDIT_OUTLINE, SELECTION_LINE, channel_label
+
+XDIM = hv.Dimension("x", label="column")
+YDIM = hv.Dimension("y", label="row")
+NAN_COLOUR = "#eef0f2"
+RASTERIZE_ABOVE = 1_000_000  # pixels
+
+BT_CMAP = "cet_CET_L12"        # light = cold, the way infrared imagery shows cloud
+DEPARTURE_CMAP = "cet_CET_D1A"  # blue (colder than clear) – white – red (warmer)
+TAU_CMAP = "cet_CET_L17"
+PTOP_CMAP = "cet_CET_L8_r"     # high (low-pressure) tops in the brightest colour
+
+_OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=False, tools=[],
+                     clipping_colors={"NaN": "#00000000"})
+_CLASS_JS = "return %s[Math.round(value)] || '';" % list(pl.CLASS_NAMES)
+
+
+def _robust_range(arrays, lo=1.0, hi=99.0, pad=0.0):
+    vals = np.concatenate([np.asarray(a, float).ravel() for a in arrays])
+    vals = vals[np.isfinite(vals)]
+    if vals.size == 0:
+        return 0.0, 1.0
+    a, b = np.percentile(vals, [lo, hi])
+    if b <= a:
+        a, b = a - 0.5, b + 0.5
+    return float(a - pad), float(b + pad)
+
+
+class MapGrid(Viewer):
+    """Six linked maps of the model's current result."""
+
+    def __init__(self, model, focus, notices, frame_width=250, **params):
+        super().__init__(**params)
+        self.model, self.focus, self.notices = model, focus, notices
+        ds = model.scene.data
+        self._xs = ds["col"].values.astype(float)
+        self._ys = ds["row"].values.astype(float)
+        ny, nx = ds.sizes["y"], ds.sizes["x"]
+        self.rasterized = ny * nx >= RASTERIZE_ABOVE
+        self._fw = frame_width
+        self._fh = max(120, int(round(frame_width * ny / nx)))
+        sim = model.sim
+        # colour ranges are fixed per scene (so retuning never rescales a map), over all channels
+        self._obs_clim = _robust_range([ds[f"bt_{c}"].values for c in sim.channels], 0.5, 99.5)
+        self._clear_clim = _robust_range([sim.bt_clear[i] for i in range(len(sim.channels))], 0.5, 99.5)
+        raw = [np.abs(ds[f"bt_{c}"].values - sim.bt_clear[i]) for i, c in enumerate(sim.channels)]
+        lim = max(2.0, _robust_range(raw, 0, 99.0)[1])
+        self._dep_clim = (-lim, lim)
+        p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
+        self._ptop_clim = (100.0, max(1000.0, float(np.nanmax(p_surf)) if np.isfinite(p_surf).any() else 1013.25))
+        # one pair of ranges shared by all six figures: pan or zoom one and all follow
+        self._x_range = Range1d(float(self._xs[0]) - 0.5, float(self._xs[-1]) + 0.5)
+        self._y_range = Range1d(float(self._ys[-1]) + 0.5, float(self._ys[0]) - 0.5)  # row 0 at the top
+        self._readout = pn.pane.HTML("", css_classes=["cs-readout"], margin=(0, 10),
+                                     visible=self.rasterized, sizing_mode="stretch_width")
+        self._layout = self._build()
+
+    def __panel__(self):
+        hint = pn.pane.HTML(
+            '<span class="cs-muted">Drag to pan, scroll to zoom (all maps follow). Click a pixel to inspect '
+            'it. For QA edits pick the box or lasso tool in a map\'s toolbar and drag over the map; the '
+            'selection is outlined (dashed) on the class map.</span>',
+            margin=(0, 10))
+        return pn.Column(hint, self._readout, self._layout, width=2 * (self._fw + 190))
+
+    # ------------------------------------------------------------------ elements
+    def _image(self, arr, vdim, _what=None):
+        return hv.Image((self._xs, self._ys, np.asarray(arr, dtype=np.float32)), kdims=[XDIM, YDIM], vdims=[vdim])
+
+    def _channel_index(self, channel):
+        return self.model.sim.channels.index(channel)
+
+    # titles (shown above each map; they follow the channel and the settings)
+    def title_observed(self, channel):
+        return f"Observed brightness temperature · {channel_label(channel)}"
+
+    def title_clear(self, channel):
+        src = self.model.sim.source.get(channel, "simulated")
+        return f"Clear-sky brightness temperature ({src}) · {channel_label(channel)}"
+
+    def title_departure(self, channel, version=None):
+        applied = bool(self.model.result.bias.get(channel, {}).get("applied"))
+        return f"Departure observed − clear{' (bias removed)' if applied else ''} · {channel_label(channel)}"
+
+    def title_mask(self, version=None):
+        return "Screening class"
+
+    def title_tau(self, version=None):
+        return "Cloud optical depth (infrared absorption)"
+
+    def title_ptop(self, version=None):
+        cl = self.model.result.cloud
+        return f"Cloud-top pressure ({cl.method if cl is not None else self.model.cloud_top} top)"
+
+    # images
+    def observed(self, channel):
+        arr = self.model.scene.data[f"bt_{channel}"].values
+        return self._image(arr, hv.Dimension("bt_obs", label="observed BT", unit="K"), "observed")
+
+    def clear_sky(self, channel):
+        arr = self.model.sim.bt_clear[self._channel_index(channel)]
+        return self._image(arr, hv.Dimension("bt_clear", label="clear-sky BT", unit="K"), "clear sky")
+
+    def departure(self, channel, version=None):
+        return self._image(self.model.result.departure[channel],
+                           hv.Dimension("departure", label="observed − clear", unit="K"), "departure")
+
+    def mask(self, version=None):
+        return self._image(self.model.result.mask.astype(np.float32), hv.Dimension("class", label="class"), "class")
+
+    def optical_depth(self, version=None):
+        cl = self.model.result.cloud
+        arr = cl.optical_depth if cl is not None else np.full(self.model.result.mask.shape, np.nan)
+        arr = np.where(np.isfinite(arr), np.clip(arr, 0.01, None), np.nan)
+        return self._image(arr, hv.Dimension("tau", label="optical depth", unit="1"), "optical depth")
+
+    def top_pressure(self, version=None):
+        cl = self.model.result.cloud
+        arr = cl.top_pressure if cl is not None else np.full(self.model.result.mask.shape, np.nan)
+        return self._image(arr, hv.Dimension("p_top", label="cloud-top pressure", unit="hPa"), "cloud-top pressure")
+
+    def edit_outline(self, version=None):
+        edits = self.model.journal.active() if self.model.journal is not None else []
+        codes = pl.edits_grid(self.model.result.mask.shape, edits) != 0
+        rim = codes & ~ndimage.binary_erosion(codes, border_value=0)
+        return hv.Image((self._xs, self._ys, rim.astype(np.float32)), kdims=[XDIM, YDIM],
+                        vdims=["edited"]).opts(**_OUTLINE_OPTS)
+
+    def selection_outline(self, outline=None):
+        path = hv.Path([outline] if outline else [], kdims=[XDIM, YDIM])
+        return path.opts(color=SELECTION_LINE, line_width=1.5, line_dash="dashed", tools=[])
+
+    # ------------------------------------------------------------------ plots
+    def _opts(self, vdim_label, fmt, clabel, **extra):
+        tools = ["box_select", "lasso_select"]
+        opts = dict(frame_width=self._fw, frame_height=self._fh, invert_yaxis=True, colorbar=True, title="",
+                    clabel=clabel, xlabel="column", ylabel="row", tools=tools,
+                    clipping_colors={"NaN": NAN_COLOUR}, fontscale=0.95, toolbar="above",
+                    colorbar_opts={"title_text_font_style": "normal"}, hooks=[self._share_ranges])
+        if not self.rasterized:
+            opts["tools"] = tools + ["hover"]
+            opts["hover_tooltips"] = [("row", "$y{0}"), ("column", "$x{0}"), (vdim_label, fmt)]
+        opts.update(extra)
+        return opts
+
+    def _share_ranges(self, plot, element):
+        fig = plot.state
+        fig.x_range, fig.y_range = self._x_range, self._y_range
+        plot.handles["x_range"], plot.handles["y_range"] = self._x_range, self._y_range
+
+    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False):
+        if self.rasterized:  # datashader (and numba) load only when a scene needs them
+            from holoviews.operation.datashader import rasterize
+        dmap = hv.DynamicMap(pn.bind(fn, **refs))
+        if self.rasterized:
+            dmap = rasterize(dmap, aggregator=aggregator, precompute=True)
+        dmap = dmap.opts(**opts)
+        self._attach_streams(dmap)
+        layers = dmap
+        if outline:
+            rim = hv.DynamicMap(pn.bind(self.edit_outline, version=self.model.param.version))
+            if self.rasterized:
+                rim = rasterize(rim, aggregator="max").opts(**_OUTLINE_OPTS)
+            sel = hv.DynamicMap(pn.bind(self.selection_outline, outline=self.focus.param.outline))
+            layers = layers * rim * sel
+        return layers
+
+    def _build(self):
+        m = self.model
+        ch, ver = m.param.channel, m.param.version
+        class_ticks = {k: name.replace("_", " ") for k, name in enumerate(pl.CLASS_NAMES)}
+        specs = [
+            (self.observed, self.title_observed, {"channel": ch}, self._opts(
+                "observed BT", "@image{0.00} K", "observed BT [K]", cmap=BT_CMAP, clim=self._obs_clim), {}),
+            (self.clear_sky, self.title_clear, {"channel": ch}, self._opts(
+                "clear-sky BT", "@image{0.00} K", "clear-sky BT [K]", cmap=BT_CMAP, clim=self._clear_clim), {}),
+            (self.departure, self.title_departure, {"channel": ch, "version": ver}, self._opts(
+                "observed − clear", "@image{+0.00} K", "observed − clear [K]", cmap=DEPARTURE_CMAP,
+                clim=self._dep_clim, symmetric=True), {}),
+            (self.mask, self.title_mask, {"version": ver}, self._opts(
+                "class", "@image{custom}", "class", cmap=list(CLASS_COLOURS.values()), clim=(-0.5, 3.5),
+                color_levels=4, hover_formatters={"@image": CustomJSHover(code=_CLASS_JS)},
+                colorbar_opts={"ticker": FixedTicker(ticks=[0, 1, 2, 3]), "major_label_overrides": class_ticks,
+                               "major_label_text_font_size": "11px"}),
+             {"aggregator": "first", "outline": True}),
+            (self.optical_depth, self.title_tau, {"version": ver}, self._opts(
+                "optical depth", "@image{0.00}", "optical depth [1]", cmap=TAU_CMAP, logz=True,
+                clim=(0.05, 20.0)), {}),
+            (self.top_pressure, self.title_ptop, {"version": ver}, self._opts(
+                "cloud-top pressure", "@image{0} hPa", "cloud-top pressure [hPa]", cmap=PTOP_CMAP,
+                clim=self._ptop_clim), {}),
+        ]
+        cells = []
+        for k, (fn, title_fn, refs, opts, extra) in enumerate(specs):
+            plot = self._panel_map(fn, refs, opts, **extra)
+            # one pane per map, sharing the ranges set in _share_ranges (a single hv.Layout grid does not
+            # lay out inside tabs next to other plots with Panel 1.9 / Bokeh 3.9)
+            pane = pn.pane.HoloViews(plot, backend="bokeh", linked_axes=False, margin=(0, 4))
+            title = pn.pane.HTML(pn.bind(lambda text: f"<b style='font-size:13px'>{text}</b>",
+                                         pn.bind(title_fn, **refs)), margin=(8, 10, 0, 10),
+                                 css_classes=["cs-map-title"])
+            cells.append(pn.Column(title, pane, margin=0, css_classes=[f"cs-map-{k}"]))
+        return pn.GridBox(*cells, ncols=2, css_classes=["cs-maps"])
+
+    # ------------------------------------------------------------------ interaction
+    def _attach_streams(self, dmap):
+        tap = hv.streams.Tap(source=dmap, x=None, y=None)
+        box = hv.streams.BoundsXY(source=dmap, bounds=None)
+        lasso = hv.streams.Lasso(source=dmap)
+        guard = self.notices.guard
+        tap.add_subscriber(guard("picking a pixel")(self._on_tap))
+        box.add_subscriber(guard("selecting pixels")(lambda bounds=None, **_: self.focus.select_box(bounds)))
+        lasso.add_subscriber(guard("selecting pixels")(
+            lambda geometry=None, **_: self.focus.select_polygon(geometry)))
+        if self.rasterized:
+            pointer = hv.streams.PointerXY(source=dmap, x=None, y=None)
+            pointer.add_subscriber(guard("reading values")(self._on_pointer))
+        self._streams = getattr(self, "_streams", []) + [tap, box, lasso]
+
+    def _on_tap(self, x=None, y=None, **_):
+        pix = self.focus.pixel_at(x, y)
+        if pix is not None:
+            self.focus.pixel = pix
+
+    def _on_pointer(self, x=None, y=None, **_):
+        """Values under the cursor, read from the source arrays (rasterized maps aggregate)."""
+        pix = self.focus.pixel_at(x, y)
+        if pix is None:
+            self._readout.object = ""
+            return
+        i, j = pix
+        m = self.model
+        ch = m.channel
+        k = m.sim.channels.index(ch)
+        res = m.result
+        tau = res.cloud.optical_depth[i, j] if res.cloud is not None else np.nan
+        ptop = res.cloud.top_pressure[i, j] if res.cloud is not None else np.nan
+
+        def f(v, fmt):
+            return format(v, fmt) if np.isfinite(v) else "–"
+
+        self._readout.object = (
+            f'<span class="cs-muted">row {int(self._ys[i])}, column {int(self._xs[j])} · '
+            f'{channel_label(ch)} observed {f(m.scene.data[f"bt_{ch}"].values[i, j], ".2f")} K, '
+            f'clear {f(m.sim.bt_clear[k, i, j], ".2f")} K, departure {f(res.departure[ch][i, j], "+.2f")} K · '
+            f'class {pl.CLASS_NAMES[int(res.mask[i, j])]} · τ {f(tau, ".2f")} · '
+            f'top {f(ptop, ".0f")} hPa</span>')

@@ -1,0 +1,99 @@
+"""Look of the dashboard: class palette, channel colours, labels, page CSS.
+
+Class palette (chosen for cloudsieve; distinct in lightness as well as hue, so it reads
+for the common colour-vision deficiencies and in greyscale):
+
+=========  =========  ==========================================================
+class      colour     why
+=========  =========  ==========================================================
+clear      deep teal  dark and saturated: the open surface
+marginal   amber      mid lightness, warm hue: "look here"
+cloud      lavender   near-white with a cool tint: bright like cold cloud tops
+no_data    mid-grey   neutral, no hue
+=========  =========  ==========================================================
+
+Pixels edited by the analyst are outlined in magenta on the class map.
+"""
+CLASS_COLOURS = {
+    "clear": "#176d6d",
+    "marginal": "#eaa221",
+    "cloud": "#e6defa",
+    "no_data": "#9a9a9a",
+}
+EDIT_OUTLINE = "#d81b60"
+SELECTION_LINE = "#111827"
+ACCENT = "#17595c"
+INK = "#1f2933"
+
+#: channel colours (Okabe–Ito, colour-blind safe)
+CHANNEL_COLOURS = {"3p9um": "#D55E00", "8p6um": "#009E73", "11um": "#0072B2", "12um": "#CC79A7"}
+_SPARE = ["#E69F00", "#56B4E9", "#F0E442", "#000000"]
+
+
+def channel_colour(ch, k=0):
+    return CHANNEL_COLOURS.get(ch, _SPARE[k % len(_SPARE)])
+
+
+def channel_label(ch):
+    """'11um' -> '11 µm', '3p9um' -> '3.9 µm' (other names unchanged)."""
+    if ch.endswith("um"):
+        return ch[:-2].replace("p", ".") + " µm"
+    return ch
+
+
+TEST_LABELS = {
+    "cold_departure": "Cold departure",
+    "split_window_excess": "Split-window excess",
+    "texture": "Texture",
+    "night_fog_contrast": "Night fog contrast",
+    "warm_departure": "Warm departure",
+}
+
+TEST_HELP = {
+    "cold_departure": "Window channel colder than clear sky by more than k times the expected clear-sky "
+                      "error σ. Threshold: k [× σ].",
+    "split_window_excess": "11 − 12 µm difference above its clear-sky value: thin ice cloud widens it. "
+                           "Threshold [K] (grows with slant water-vapour path).",
+    "texture": "Rough window-channel departure in a small window, with the pixel colder than its "
+               "warmest neighbour. Threshold on the local standard deviation [K].",
+    "night_fog_contrast": "Night only: 3.9 µm colder than 11 µm relative to clear sky, the mark of "
+                          "water droplets (fog, low cloud). Threshold [K].",
+    "warm_departure": "Window channel warmer than clear sky: the background is suspect. Flags the "
+                      "pixel (not cloud) and keeps it out of the bias fit. Threshold [K].",
+}
+
+SURFACE_LABELS = {"sea": "Sea", "land": "Land", "ice": "Ice"}
+
+#: page-wide CSS (the template's raw_css)
+PAGE_CSS = """
+:root { --cs-ink: %(ink)s; --cs-accent: %(accent)s; }
+.cs-muted { color: #5b6770; font-size: 0.9em; }
+.cs-caution { font-size: 0.82em; color: #5b4a1f; background: #fbf4e4; border-left: 3px solid #eaa221;
+              padding: 6px 10px; border-radius: 3px; }
+""" % {"ink": INK, "accent": ACCENT}
+
+#: CSS of the class-count chips (inside the HTML pane's shadow root)
+COUNTS_CSS = """
+.cs-counts { display: flex; gap: 10px; flex-wrap: wrap; font-family: inherit; }
+.cs-count { display: flex; align-items: center; gap: 10px; border: 1px solid #d9dee3; border-radius: 6px;
+            padding: 6px 14px 6px 8px; background: #fff; min-width: 150px; }
+.cs-swatch { width: 14px; height: 38px; border-radius: 3px; border: 1px solid rgba(0,0,0,0.25); }
+.cs-label { font-size: 12px; color: #5b6770; text-transform: uppercase; letter-spacing: 0.04em; }
+.cs-value { font-size: 24px; font-weight: 600; color: %(ink)s; line-height: 1.1; }
+.cs-pixels { font-size: 11px; color: #7b8790; }
+.cs-scene { display: flex; flex-direction: column; justify-content: center; padding: 0 8px; }
+.cs-scene-name { font-size: 18px; font-weight: 600; color: %(ink)s; }
+""" % {"ink": INK}
+
+
+def legend_html():
+    """An HTML legend of the class palette (and the edit outline)."""
+    items = "".join(
+        f'<span style="display:inline-flex;align-items:center;margin-right:14px">'
+        f'<span style="display:inline-block;width:14px;height:14px;background:{c};border:1px solid #777;'
+        f'border-radius:2px;margin-right:5px"></span>{name}</span>'
+        for name, c in CLASS_COLOURS.items())
+    items += (f'<span style="display:inline-flex;align-items:center">'
+              f'<span style="display:inline-block;width:12px;height:12px;border:2px solid {EDIT_OUTLINE};'
+              f'margin-right:5px"></span>analyst edit</span>')
+    return f'<div style="font-size:13px;line-height:1.8">{items}</div>'

@@ -1,0 +1,279 @@
+"""The dashboard in a real browser (Playwright + Debian chromium), plus its server plumbing.
+
+The browser tests are marked ``ui``; each serves the app on a free port over a temporary
+data folder holding a copy of the sample scene (fixtures in conftest.py) and waits for
+conditions — Bokeh finished drawing, a text appearing — never for a fixed time.
+Screenshots go to test-artifacts/.
+"""
+import json
+import re
+import types
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from playwright.sync_api import expect
+
+from dashboard import cli
+from dashboard.app import SceneCatalog, is_scene_file, serve, server_options
+from dashboard.errors import PathError
+from dashboard.journal import journal_path
+
+SAMPLES = Path(__file__).resolve().parents[1] / "sample_scenes"
+
+TIMEOUT = 60_000  # ms; the first page of a fresh server prepares the scene
+
+#: every map drawn: all figures finished and every image glyph has data
+RENDERED = """(n) => {
+  if (!window.Bokeh || !Bokeh.index) return false;
+  const views = [...Bokeh.index.all_views()];
+  const figs = views.filter(v => v.model.type === 'Figure');
+  if (figs.length < n || !figs.every(v => v.has_finished())) return false;
+  const imgs = views.filter(v => v.model.type === 'GlyphRenderer' && v.model.glyph.type === 'Image');
+  return imgs.length >= n && imgs.every(v => {
+    const d = v.model.data_source.data.image; return d && d.length > 0; });
+}"""
+
+#: screen position of data coordinate (x, y) on the map whose colour bar has this title
+SCREEN_XY = """([title, x, y]) => {
+  const fig = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure').find(
+      v => v.model.right.some(r => r.type === 'ColorBar' && r.title === title));
+  if (!fig) return null;
+  const r = fig.canvas_view.el.getBoundingClientRect();
+  return [r.left + fig.frame.x_scale.compute(x), r.top + fig.frame.y_scale.compute(y)];
+}"""
+
+MASK_TITLE = "class"
+
+
+def open_dashboard(page, url, n_maps=6):
+    page.set_viewport_size({"width": 1680, "height": 1050})
+    page.goto(url)
+    page.wait_for_function(RENDERED, arg=n_maps, timeout=TIMEOUT, polling=100)
+
+
+def shadow_text(page, css):
+    return page.locator(css).first.inner_text()
+
+
+def markdown_text(page, css):
+    """Text of a Markdown pane (its content sits in a div of the shadow root)."""
+    return page.locator(f"{css} div").first.inner_text()
+
+
+def cloud_percent(page):
+    return shadow_text(page, ".cs-count-cloud .cs-value")
+
+
+def map_point(page, x, y, title=MASK_TITLE):
+    pos = page.evaluate(SCREEN_XY, [title, x, y])
+    assert pos is not None, f"no map with colour bar '{title}'"
+    return pos
+
+
+def screenshot(page, artifacts, name):
+    page.screenshot(path=str(artifacts / name))
+
+
+def read_journal(path):
+    return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
+
+
+# ---------------------------------------------------------------------------------------
+# server plumbing (no browser)
+# ---------------------------------------------------------------------------------------
+def test_catalog_lists_scenes_and_refuses_paths_outside_the_data_folder(tmp_path):
+    data = tmp_path / "data"
+    data.mkdir()
+    for name in ("a.nc", "b.csv", "c.parquet", "a_truth.nc", "a_mask.nc", "a.nc.qa.jsonl", ".hidden.nc",
+                 "notes.txt"):
+        (data / name).write_bytes(b"x")
+    outside = tmp_path / "secret.nc"
+    outside.write_bytes(b"x")
+    (data / "link.nc").symlink_to(outside)
+    (data / "inner.nc").symlink_to(data / "a.nc")
+    cat = SceneCatalog(data)
+    assert cat.names() == ["a.nc", "b.csv", "c.parquet", "inner.nc"]
+    assert cat.resolve("a.nc") == (data / "a.nc").resolve()
+    for bad in ("../secret.nc", "link.nc", str(outside), "sub/a.nc", "..", "", "a_truth.nc", "missing.nc"):
+        with pytest.raises(PathError):
+            cat.resolve(bad)
+    assert not is_scene_file(data / "a.nc.qa.jsonl")
+
+
+def test_non_local_address_needs_allowed_origins(capsys):
+    args = types.SimpleNamespace(address="0.0.0.0", port=5999, allow_websocket_origin=[], max_upload_mb=10.0,
+                                 scenes=[], data_dir=None, config=None, show=False)
+    assert serve(args) == 2
+    assert "--allow-websocket-origin" in capsys.readouterr().err
+
+
+def test_server_options_for_localhost_and_upload_limit():
+    opts = server_options("127.0.0.1", 5077, [], 100.0)
+    assert opts["websocket_origin"] == ["127.0.0.1:5077", "localhost:5077"]
+    # base64 makes an upload 4/3 larger on the websocket
+    assert opts["websocket_max_message_size"] >= 100 * 1024 * 1024 * 4 / 3
+    assert opts["http_server_kwargs"]["max_buffer_size"] == opts["websocket_max_message_size"]
+    remote = server_options("0.0.0.0", 80, ["maps.example.org:80"], 10.0)
+    assert remote["websocket_origin"] == ["maps.example.org:80"]
+
+
+# ---------------------------------------------------------------------------------------
+# in the browser
+# ---------------------------------------------------------------------------------------
+@pytest.mark.ui
+def test_page_renders_every_map_and_the_caution(served_app, page, artifacts):
+    open_dashboard(page, served_app.url)
+    assert page.title() == "cloudsieve"
+    assert re.fullmatch(r"\d+\.\d%", cloud_percent(page))
+    titles = page.evaluate("""() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure')
+        .map(v => (v.model.right.find(r => r.type === 'ColorBar') || {}).title)""")
+    assert {"observed BT [K]", "clear-sky BT [K]", "observed − clear [K]", "class", "optical depth [1]",
+            "cloud-top pressure [hPa]"} <= set(titles)
+    page.get_by_text("is not a certified operational product").first.wait_for()
+    screenshot(page, artifacts, "ui_main.png")
+    page.locator(".bk-tab").filter(has_text="Diagnostics").first.click()
+    page.wait_for_function(RENDERED, arg=3, timeout=TIMEOUT, polling=100)
+    page.get_by_text("Validation report").first.wait_for(timeout=TIMEOUT)
+    screenshot(page, artifacts, "ui_diagnostics.png")
+
+
+@pytest.mark.ui
+def test_moving_a_threshold_changes_the_counts(served_app, page, artifacts):
+    open_dashboard(page, served_app.url)
+    before = cloud_percent(page)
+    slider = page.locator(".cs-slider-night_fog_contrast").first
+    expect(slider).to_contain_text("1.00")
+    handle = slider.locator(".noUi-handle").first
+    handle.focus()
+    for _ in range(20):  # 20 steps of 0.05 K: the fog threshold from 1.0 to 2.0 K
+        handle.press("ArrowRight")
+    expect(slider).to_contain_text("2.00", timeout=TIMEOUT)
+    expect(page.locator(".cs-count-cloud .cs-value").first).not_to_have_text(before, timeout=TIMEOUT)
+    after = cloud_percent(page)
+    assert float(after.rstrip("%")) < float(before.rstrip("%"))
+    screenshot(page, artifacts, "ui_retuned.png")
+
+
+@pytest.mark.ui
+def test_clicking_a_pixel_fills_the_inspector(served_app, page, artifacts):
+    open_dashboard(page, served_app.url)
+    x, y = map_point(page, 150, 120)
+    page.mouse.click(x, y)
+    heading = page.get_by_text("Pixel row 120, column 150").first
+    heading.wait_for(timeout=TIMEOUT)
+    inspector = markdown_text(page, ".cs-inspector")
+    for text in ("observed [K]", "clear sky [K]", "departure [K]", "margin [K]", "Cloud retrieval", "11 µm"):
+        assert text in inspector
+    page.wait_for_function(RENDERED, arg=7, timeout=TIMEOUT, polling=100)  # the BT-vs-τ curve
+    screenshot(page, artifacts, "ui_inspector.png")
+
+
+def _box_select(page, x0, y0, x1, y1):
+    """Drag a box over the class map with its box-select tool."""
+    page.locator(".cs-map-3 .bk-tool-icon-box-select").first.click()
+    p0, p1 = map_point(page, x0, y0), map_point(page, x1, y1)
+    page.mouse.move(*p0)
+    page.mouse.down()
+    page.mouse.move((p0[0] + p1[0]) / 2, (p0[1] + p1[1]) / 2, steps=5)
+    page.mouse.move(*p1, steps=5)
+    page.mouse.up()
+    selection = page.locator(".cs-selection div").first
+    expect(selection).to_contain_text(re.compile(r"[\d,]+ pixel\(s\)"), timeout=TIMEOUT)
+    text = selection.inner_text()
+    return int(re.search(r"([\d,]+) pixel", text).group(1).replace(",", ""))
+
+
+@pytest.mark.ui
+def test_qa_edit_is_journaled_survives_a_restart_and_goes_into_the_download(served_app, page, artifacts,
+                                                                             tmp_path):
+    scene = served_app.data_dir / "night_front.nc"
+    journal = journal_path(scene)
+    open_dashboard(page, served_app.url)
+
+    n = _box_select(page, 60.2, 40.2, 89.8, 59.8)
+    assert 400 <= n <= 800  # about 30 × 20 pixels (the drag lands within a pixel of the corners)
+    page.get_by_role("button", name="Mark cloud").click()
+    expect(page.locator(".cs-edits div").first).to_contain_text("marked cloud", timeout=TIMEOUT)
+    entries = read_journal(journal)
+    assert [e["action"] for e in entries] == ["cloud"] and entries[0]["count"] == n
+    rows, cols = np.divmod(np.asarray(entries[0]["index"]), 300)
+    assert rows.min() >= 39 and rows.max() <= 61 and cols.min() >= 59 and cols.max() <= 91
+    assert n == (rows.max() - rows.min() + 1) * (cols.max() - cols.min() + 1)  # a full rectangle
+    screenshot(page, artifacts, "ui_qa_edit.png")
+
+    # a restarted server reads the journal back
+    served_app.restart()
+    open_dashboard(page, served_app.url)
+    edits = page.locator(".cs-edits div").first
+    expect(edits).to_contain_text("marked cloud", timeout=TIMEOUT)
+    assert f"{n:,}" in edits.inner_text()
+
+    # the CSV download holds the edit and equals what the command line writes
+    with page.expect_download(timeout=TIMEOUT) as dl:
+        page.get_by_role("button", name="Download CSV").click()
+    download = dl.value
+    assert download.suggested_filename == "night_front_mask.csv"
+    saved = artifacts / "ui_download_night_front_mask.csv"
+    download.save_as(saved)
+    ours = pd.read_csv(saved)
+    out = tmp_path / "cli_mask.csv"
+    assert cli.main(["screen", str(scene), "--out", str(out), "--quiet"]) == 0
+    pd.testing.assert_frame_equal(ours, pd.read_csv(out))
+    flat = ours["row"].to_numpy() * 300 + ours["col"].to_numpy()
+    edited = np.isin(flat, entries[0]["index"])
+    assert (ours.loc[edited, "mask"] == "cloud").all()
+
+
+@pytest.mark.ui
+def test_undo_removes_the_edit(served_app, page):
+    journal = journal_path(served_app.data_dir / "night_front.nc")
+    open_dashboard(page, served_app.url)
+    _box_select(page, 10.2, 10.2, 19.8, 19.8)
+    edits = page.locator(".cs-edits div").first
+    expect(edits).to_contain_text("none yet")
+    page.get_by_role("button", name="Mark clear").click()
+    expect(edits).to_contain_text("marked clear", timeout=TIMEOUT)
+    page.get_by_role("button", name="Undo").click()
+    expect(edits).to_contain_text("none yet", timeout=TIMEOUT)
+    assert [e["action"] for e in read_journal(journal)] == ["clear", "undo"]
+
+
+@pytest.mark.ui
+def test_a_bad_upload_shows_the_report_and_keeps_the_scene(served_app, page, tmp_path, artifacts):
+    open_dashboard(page, served_app.url)
+    bad = tmp_path / "broken.csv"
+    bad.write_text("row,col,bt_11um,t_skin,t_air,tcwv,sat_zenith\n0,0,warm,290,289,20,10\n")
+    page.locator(".cs-upload input[type=file]").first.set_input_files(str(bad))
+    report = page.locator(".cs-upload-report div").first
+    page.get_by_text("broken.csv cannot be used").first.wait_for(timeout=TIMEOUT)
+    assert "Traceback" not in report.inner_text()
+    screenshot(page, artifacts, "ui_bad_upload.png")
+    # the sample scene is still open and the page still works
+    assert "night_front" in shadow_text(page, ".cs-scene-name")
+    x, y = map_point(page, 20, 20)
+    page.mouse.click(x, y)
+    page.get_by_text("Pixel row 20, column 20").first.wait_for(timeout=TIMEOUT)
+
+
+@pytest.mark.ui
+def test_a_good_upload_opens_the_scene(served_app, page):
+    open_dashboard(page, served_app.url)
+    page.locator(".cs-upload input[type=file]").first.set_input_files(str(SAMPLES / "night_front_small.csv"))
+    expect(page.locator(".cs-scene-name").first).to_have_text("night_front_small", timeout=TIMEOUT)
+    page.wait_for_function(RENDERED, arg=6, timeout=TIMEOUT, polling=100)
+    assert "40 × 40" in shadow_text(page, ".cs-counts")
+
+
+@pytest.mark.ui
+def test_an_oversized_upload_is_refused_with_a_message(serve_app, scene_dir, page):
+    served = serve_app(scene_dir, max_upload_mb=0.01)  # 10 KiB
+    open_dashboard(page, served.url)
+    page.locator(".cs-upload input[type=file]").first.set_input_files(str(SAMPLES / "night_front_small.csv"))
+    page.get_by_text("uploads are limited to 0.01 MB").first.wait_for(timeout=TIMEOUT)
+    assert shadow_text(page, ".cs-scene-name") == "night_front"
+    # the page is still connected and working
+    x, y = map_point(page, 20, 20)
+    page.mouse.click(x, y)
+    page.get_by_text("Pixel row 20, column 20").first.wait_for(timeout=TIMEOUT)

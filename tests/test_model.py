@@ -1,0 +1,242 @@
+"""The dashboard's state object, driven without a browser.
+
+Every test works on a copy of the sample scene night_front.nc in tmp_path, so QA journals
+are written there and never into the repository.
+"""
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from dashboard import cli
+from dashboard import pipeline as pl
+from dashboard.config import to_toml
+from dashboard.journal import journal_path
+from dashboard.model import TUNABLE, ScreeningModel
+
+SAMPLE = Path(__file__).resolve().parents[1] / "sample_scenes" / "night_front.nc"
+
+
+@pytest.fixture
+def scene_path(tmp_path):
+    path = tmp_path / "night_front.nc"
+    shutil.copy(SAMPLE, path)
+    return path
+
+
+@pytest.fixture
+def model(scene_path):
+    return ScreeningModel.open(scene_path)
+
+
+def _pixels_of(model, code, n, seed=0):
+    """n flat indices of pixels currently in class ``code``."""
+    idx = np.flatnonzero(model.result.mask.ravel() == code)
+    assert idx.size >= n, f"the sample scene has fewer than {n} pixels of class {pl.CLASS_NAMES[code]}"
+    return np.sort(np.random.default_rng(seed).choice(idx, n, replace=False))
+
+
+# ---------------------------------------------------------------------------------------
+# retuning
+# ---------------------------------------------------------------------------------------
+def test_raising_the_cold_threshold_lowers_the_cloud_fraction(model):
+    before = model.counts
+    version = model.version
+    model.set_threshold("cold_departure", 8.0)  # k = 8 σ instead of 3 σ
+    after = model.counts
+    assert model.version == version + 1
+    assert after["cloud"] < before["cloud"]
+    assert after["clear"] + after["marginal"] > before["clear"] + before["marginal"]
+    assert sum(after.values()) == pytest.approx(1.0)
+    assert model.threshold("cold_departure", "sea") == 8.0
+
+
+def test_switching_a_test_off_changes_counts_and_is_reported(model):
+    before = model.counts
+    model.set_enabled("cold_departure", False)
+    assert model.counts != before
+    assert "cold_departure" in model.result.skipped
+    assert "cold_departure" not in model.result.margins
+    model.set_enabled("cold_departure", True)
+    assert model.counts == before
+
+
+def test_retuning_never_reruns_the_clear_sky_simulation(model, monkeypatch):
+    sim, simulate_s = model.sim, model.timings["simulate_s"]
+
+    def forbidden(*args, **kwargs):
+        raise AssertionError("the clear-sky simulation ran again")
+
+    monkeypatch.setattr(pl, "simulate", forbidden)
+    for test in TUNABLE:
+        model.set_threshold(test, model.threshold(test) * 1.5 + 0.1)
+        model.set_enabled(test, False)
+        model.set_enabled(test, True)
+    model.remove_bias = True
+    model.marginal_fraction = 0.5
+    model.cloud_top = "fixed"
+    model.top_pressure = 300.0
+    assert model.sim is sim
+    assert model.timings["simulate_s"] == simulate_s
+
+
+def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_it(model, monkeypatch):
+    calls = []
+    real = pl.invert_all
+
+    def counting(*args, **kwargs):
+        calls.append(args[2]["cloud"]["top"])
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(pl, "invert_all", counting)
+    model.set_threshold("split_window_excess", 1.0)
+    model.set_threshold("texture", 0.8)
+    assert calls == []  # same cloud settings: the cached retrieval is masked to the new classes
+    model.cloud_top = "fixed"
+    assert calls == ["fixed"]
+    cl = model.result.cloud
+    assert cl.method == "fixed"
+    retrieved = np.isfinite(cl.top_pressure)
+    assert retrieved.any()
+    np.testing.assert_allclose(cl.top_pressure[retrieved], 500.0)
+    model.top_pressure = 300.0
+    assert calls == ["fixed", "fixed"]
+    np.testing.assert_allclose(model.result.cloud.top_pressure[np.isfinite(model.result.cloud.top_pressure)], 300.0)
+    model.cloud_top = "opaque"
+    assert calls[-1] == "opaque"
+    # the cloud layer only covers pixels that are not clear
+    clear = model.result.mask == pl.CLEAR
+    assert np.all(np.isnan(model.result.cloud.optical_depth[clear]))
+
+
+# ---------------------------------------------------------------------------------------
+# QA edits
+# ---------------------------------------------------------------------------------------
+def test_mark_and_undo_are_journaled_and_survive_reopening(model, scene_path):
+    journal = journal_path(scene_path)
+    cloudy = _pixels_of(model, pl.CLOUD, 40, seed=1)
+    clear = _pixels_of(model, pl.CLEAR, 30, seed=2)
+
+    e1 = model.mark("clear", cloudy)
+    assert journal.exists()
+    lines = [json.loads(x) for x in journal.read_text().splitlines()]
+    assert lines[-1]["action"] == "clear" and lines[-1]["count"] == 40 and lines[-1]["index"] == cloudy.tolist()
+    assert np.all(model.result.mask.ravel()[cloudy] == pl.CLEAR)
+    assert np.all(model.result.bits.ravel()[cloudy] & pl.BITS["analyst_clear"])
+
+    model.mark("cloud", clear)
+    assert np.all(model.result.mask.ravel()[clear] == pl.CLOUD)
+    undone = model.undo()
+    assert undone["action"] == "cloud"
+    assert not np.any(model.result.bits.ravel()[clear] & pl.BITS["analyst_cloud"])
+    assert [json.loads(x)["action"] for x in journal.read_text().splitlines()] == ["clear", "cloud", "undo"]
+
+    # a new model (a new session, a restarted server) replays the journal
+    again = ScreeningModel.open(scene_path)
+    assert again.edit_listing() == model.edit_listing()
+    assert [(c, a) for _, c, a in again.edit_listing()] == [(40, "clear")]
+    assert np.all(again.result.mask.ravel()[cloudy] == pl.CLEAR)
+    assert e1["id"] == again.journal.active()[0]["id"]
+
+
+def test_two_sessions_on_one_scene_keep_journal_ids_unique(scene_path):
+    a = ScreeningModel.open(scene_path)
+    b = ScreeningModel.open(scene_path)
+    ea = a.mark("cloud", [0, 1, 2])
+    eb = b.mark("clear", [10, 11])  # b has not seen a's edit in memory; the journal must
+    assert eb["id"] != ea["id"]
+    assert b.undo()["id"] == eb["id"]
+    assert [e["id"] for e in ScreeningModel.open(scene_path).journal.active()] == [ea["id"]]
+
+
+def test_label_scores_against_the_analyst_labels(model):
+    cloudy = _pixels_of(model, pl.CLOUD, 50, seed=3)
+    clear = _pixels_of(model, pl.CLEAR, 60, seed=4)
+    # the margins before the edits are what the tests said about these pixels
+    margins = {t: m.ravel().copy() for t, m in model.result.margins.items()}
+    model.mark("cloud", cloudy)
+    model.mark("clear", clear)
+    scores = model.label_scores()
+    assert set(scores) == set(model.result.margins)
+    for test, (hit, false_alarm, n_cloud, n_clear) in scores.items():
+        fired = np.nan_to_num(margins[test], nan=-np.inf) > 0
+        assert (n_cloud, n_clear) == (50, 60)
+        assert hit == pytest.approx(fired[cloudy].mean())
+        assert false_alarm == pytest.approx(fired[clear].mean())
+    # something fired on every pixel that was classed cloud
+    fired_any = np.zeros(cloudy.size, bool)
+    for test in pl.CLOUD_TESTS:
+        if test in margins:
+            fired_any |= np.nan_to_num(margins[test][cloudy], nan=-np.inf) > 0
+    assert fired_any.all()
+
+
+def test_label_scores_without_labels_are_nan(model):
+    for hit, false_alarm, n_cloud, n_clear in model.label_scores().values():
+        assert np.isnan(hit) and np.isnan(false_alarm) and n_cloud == n_clear == 0
+
+
+# ---------------------------------------------------------------------------------------
+# exports
+# ---------------------------------------------------------------------------------------
+def test_csv_download_equals_the_cli_output_for_the_same_scene_settings_and_edits(model, scene_path, tmp_path):
+    model.set_threshold("cold_departure", 4.0, "sea")
+    model.set_enabled("texture", False)
+    model.marginal_fraction = 0.4
+    model.mark("cloud", _pixels_of(model, pl.CLEAR, 25, seed=5))
+    model.mark("clear", _pixels_of(model, pl.CLOUD, 35, seed=6))
+    ours = pd.read_csv(pd.io.common.BytesIO(model.export_bytes("csv")))
+
+    cfg = tmp_path / "tuned.toml"
+    cfg.write_text(to_toml(model.effective_config()))
+    out = tmp_path / "cli_mask.csv"
+    assert cli.main(["screen", str(scene_path), "--out", str(out), "--config", str(cfg), "--quiet"]) == 0
+    theirs = pd.read_csv(out)
+    pd.testing.assert_frame_equal(ours, theirs)
+    assert (ours["mask"] == "cloud").mean() == pytest.approx(model.counts["cloud"], abs=1e-4)
+
+
+def test_netcdf_download_holds_the_mask_and_the_settings(model, tmp_path):
+    import xarray as xr
+
+    model.set_threshold("warm_departure", 3.5, "sea")
+    path = tmp_path / "download.nc"
+    path.write_bytes(model.export_bytes("netcdf"))
+    with xr.open_dataset(path) as ds:
+        np.testing.assert_array_equal(ds["mask"].values, model.result.mask)
+        cfg = json.loads(ds.attrs["cloudsieve_config"])
+        assert cfg["tests"]["warm_departure"]["threshold"]["sea"] == 3.5
+
+
+# ---------------------------------------------------------------------------------------
+# pixel inspector
+# ---------------------------------------------------------------------------------------
+def test_pixel_info_of_a_cloudy_pixel(model):
+    y, x = np.argwhere(model.result.mask == pl.CLOUD)[0]
+    info = model.pixel_info(int(y), int(x))
+    assert info["class"] == "cloud" and info["tests_fired"]
+    assert {"t_skin", "t_air", "tcwv", "sat_zenith", "surface"} <= set(info["inputs"])
+    assert set(info["channels"]) == set(model.scene.channels)
+    for ch, v in info["channels"].items():
+        assert v["departure"] == pytest.approx(v["observed"] - v["clear"], abs=1e-3)
+    assert set(info["margins"]) == set(model.result.margins)
+    assert any(m is not None and m > 0 for t, m in info["margins"].items() if t in pl.CLOUD_TESTS)
+    cloud = info["cloud"]
+    assert {"status", "optical_depth", "optical_depth_sigma", "top_pressure", "emissivity"} <= set(cloud)
+    curve = info["curve"]
+    tau = np.asarray(curve["tau"])
+    assert tau[0] == 0 and np.all(np.diff(tau) > 0)
+    for ch, bt in curve["model"].items():
+        bt = np.asarray(bt)
+        assert bt.shape == tau.shape
+        # zero optical depth is the clear sky
+        assert bt[0] == pytest.approx(info["channels"][ch]["clear"], abs=0.05)
+        assert curve["observed"][ch] == info["channels"][ch]["observed"]
+
+
+def test_pixel_info_outside_the_grid_is_a_clear_error(model):
+    with pytest.raises(ValueError, match="outside"):
+        model.pixel_info(10_000, 0)
