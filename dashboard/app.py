@@ -175,6 +175,14 @@ class Session:
             raw_css=[PAGE_CSS], main_max_width="", collapsed_sidebar=False)
 
     def _first_scene(self, paths):
+        """The scene named in the address (``?scene=NAME``, a file of the data folder), else the
+        first one given, else the default."""
+        wanted = _query_scene()
+        if wanted:
+            try:
+                return self.catalog.resolve(wanted)
+            except PathError as exc:
+                self.notices.report(exc, f"opening {wanted}")
         return paths[0] if paths else self.default_scene(self.catalog.folder)
 
     @staticmethod
@@ -225,11 +233,12 @@ class Session:
     async def open_scene(self, scene):
         """Open a validated, uploaded scene."""
         label = f"⬆ {scene.path.name} (uploaded)"
-        self._uploaded[label] = scene
-        await self._open(lambda: (scene, None), label)
-        self.picker.update_options(current=label, extra=list(self._uploaded))
+        if await self._open(lambda: (scene, None), label):
+            self._uploaded[label] = scene
+            self.picker.update_options(current=label, extra=list(self._uploaded))
 
     async def _open(self, load, label):
+        """Build a model off the event loop, then its views; True when the scene is on screen."""
         self.tabs.loading = True
         self.notices.clear()
         try:
@@ -241,12 +250,11 @@ class Session:
 
             model = await loop.run_in_executor(None, build)
             self._show_model(model)
-        except CloudsieveError as exc:
+            return True
+        except Exception as exc:  # noqa: BLE001 — ours are shown as they are, anything else briefly
             self.notices.report(exc, f"opening {label}")
             self.picker.update_options(current=self._current_label())
-        except Exception as exc:  # noqa: BLE001 — never a traceback in the page
-            self.notices.report(exc, f"opening {label}")
-            self.picker.update_options(current=self._current_label())
+            return False
         finally:
             self.tabs.loading = False
 
@@ -317,6 +325,19 @@ cloudsieve {__version__}
 """
 
 
+def _query_scene():
+    """The ``scene`` argument of the page address, if any (a name, checked by the catalog)."""
+    try:
+        args = pn.state.session_args or {}
+    except Exception:  # noqa: BLE001 — no session (tests building pages directly)
+        return None
+    value = args.get("scene")
+    if not value:
+        return None
+    raw = value[0]
+    return raw.decode("utf-8", "replace") if isinstance(raw, bytes) else str(raw)
+
+
 def create_app(paths=None, data_dir=None, config=None, max_upload_mb=200.0):
     """A new page (with its own model) for one session; ``config`` is a dict, a TOML path or None."""
     session = Session(paths, data_dir, config, max_upload_mb)
@@ -361,6 +382,26 @@ def server_options(address, port, allow_websocket_origin, max_upload_mb):
                 http_server_kwargs={"max_buffer_size": limit}, title="cloudsieve")
 
 
+def auth_options(basic_auth=None, cookie_secret=None):
+    """pn.serve keyword arguments for an optional login (Panel's basic authentication).
+
+    ``basic_auth`` is one password or the path of a JSON file mapping user names to
+    passwords (Panel reads either); the environment variable CLOUDSIEVE_BASIC_AUTH is used
+    when the option is not given. The login cookie is signed with ``cookie_secret`` (or
+    CLOUDSIEVE_COOKIE_SECRET), else with a random secret made at start-up.
+    """
+    import os
+    import secrets
+
+    basic_auth = basic_auth or os.environ.get("CLOUDSIEVE_BASIC_AUTH")
+    if not basic_auth:
+        return {}
+    if len(basic_auth) < 8 and not Path(basic_auth).is_file():
+        raise _OriginError("cloudsieve: the --basic-auth password must have at least 8 characters")
+    secret = cookie_secret or os.environ.get("CLOUDSIEVE_COOKIE_SECRET") or secrets.token_urlsafe(32)
+    return {"basic_auth": basic_auth, "cookie_secret": secret}
+
+
 class _OriginError(CloudsieveError):
     exit_code = 2
 
@@ -392,6 +433,7 @@ def serve(args):
               "--port (0 picks a free one) or stop the program using it.", file=sys.stderr)
         return 2
     opts = server_options(address, port, args.allow_websocket_origin, max_mb)
+    opts.update(auth_options(getattr(args, "basic_auth", None), getattr(args, "cookie_secret", None)))
     def app():  # a plain function: Panel calls it once per session
         return create_app(paths=paths, data_dir=data_dir, config=config, max_upload_mb=max_mb)
 

@@ -108,6 +108,12 @@ def build_parser():
     v.add_argument("--config", metavar="FILE")
     v.add_argument("--show", action="store_true", help="open a browser tab")
     v.add_argument("--max-upload-mb", type=float, default=200.0, help="largest scene upload accepted (MB)")
+    v.add_argument("--basic-auth", metavar="PASSWORD_OR_FILE",
+                   help="require a login (Panel's basic authentication): one password, or a JSON file of "
+                        "{user: password}; also read from CLOUDSIEVE_BASIC_AUTH")
+    v.add_argument("--cookie-secret", metavar="SECRET",
+                   help="secret that signs the login cookie (default: a random one per server start; "
+                        "also read from CLOUDSIEVE_COOKIE_SECRET)")
 
     g = sub.add_parser("config", help="print the default configuration (TOML)")
     g.add_argument("--show", action="store_true", help="print the defaults (the default action)")
