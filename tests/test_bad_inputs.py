@@ -188,3 +188,37 @@ def test_bad_config(tmp_path, case, capsys):
 def test_unwritable_output(tmp_path, capsys):
     code, _, err = _run(["screen", SMALL, "--out", tmp_path / "missing" / "m.nc"], capsys)
     assert code == 3 and "does not exist" in err
+
+
+UPLOADABLE = [c for c in CASES if c[2] is not None and c[0] != "scene path is a folder"]
+
+
+@pytest.mark.parametrize("case", UPLOADABLE, ids=[c[0] for c in UPLOADABLE])
+def test_bad_upload_gets_the_same_message_in_the_app(tmp_path, case):
+    """The dashboard's upload check reports the problem in the page (same words as the CLI),
+    opens nothing, and raises nothing."""
+    import asyncio
+
+    from dashboard.views.notices import Notices
+    from dashboard.views.scenes import UploadBox
+
+    _, name, make, code, words = case
+    src = tmp_path / name
+    make(src)
+    opened = []
+
+    async def on_scene(scene):
+        opened.append(scene)
+
+    box = UploadBox(on_scene, Notices(), max_upload_mb=50)
+    try:
+        asyncio.run(box._handle(name, src.read_bytes()))
+        text = box.report.object
+        assert not opened
+        assert "cannot be used" in text or "not a scene file" in text
+        assert "Traceback" not in text
+        if not name.endswith(".xlsx"):
+            for w in words:
+                assert w in text, (w, text)
+    finally:
+        box.cleanup()
