@@ -9,6 +9,7 @@ render the model; this module puts them on a page and serves it.
 """
 import asyncio
 import collections
+import logging
 import socket
 import sys
 import threading
@@ -31,6 +32,8 @@ from .views.style import ACCENT, PAGE_CSS, channel_label, legend_html
 
 # HoloViews sizes plots by their frame (frame_width/frame_height); Bokeh's check does not know that
 silence(FIXED_SIZING_MODE, True)
+
+log = logging.getLogger("cloudsieve.dashboard")
 
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_scenes"
 DEFAULT_SCENE = "night_front.nc"
@@ -241,6 +244,7 @@ class Session:
         """Build a model off the event loop, then its views; True when the scene is on screen."""
         self.tabs.loading = True
         self.notices.clear()
+        log.info("opening scene %s", label)
         try:
             loop = asyncio.get_running_loop()
 
@@ -250,6 +254,7 @@ class Session:
 
             model = await loop.run_in_executor(None, build)
             self._show_model(model)
+            log.info("opened scene %s", label)
             return True
         except Exception as exc:  # noqa: BLE001 — ours are shown as they are, anything else briefly
             self.notices.report(exc, f"opening {label}")

@@ -7,6 +7,7 @@ Screenshots go to test-artifacts/.
 """
 import json
 import re
+import shutil
 import types
 from pathlib import Path
 
@@ -144,7 +145,7 @@ def test_moving_a_threshold_changes_the_counts(served_app, page, artifacts):
     open_dashboard(page, served_app.url)
     before = cloud_percent(page)
     slider = page.locator(".cs-slider-night_fog_contrast").first
-    expect(slider).to_contain_text("1.00")
+    expect(slider).to_contain_text("1.00", timeout=TIMEOUT)
     handle = slider.locator(".noUi-handle").first
     handle.focus()
     for _ in range(20):  # 20 steps of 0.05 K: the fog threshold from 1.0 to 2.0 K
@@ -232,7 +233,7 @@ def test_undo_removes_the_edit(served_app, page):
     open_dashboard(page, served_app.url)
     _box_select(page, 10.2, 10.2, 19.8, 19.8)
     edits = page.locator(".cs-edits div").first
-    expect(edits).to_contain_text("none yet")
+    expect(edits).to_contain_text("none yet", timeout=TIMEOUT)
     page.get_by_role("button", name="Mark clear").click()
     expect(edits).to_contain_text("marked clear", timeout=TIMEOUT)
     page.get_by_role("button", name="Undo").click()
@@ -277,3 +278,16 @@ def test_an_oversized_upload_is_refused_with_a_message(serve_app, scene_dir, pag
     x, y = map_point(page, 20, 20)
     page.mouse.click(x, y)
     page.get_by_text("Pixel row 20, column 20").first.wait_for(timeout=TIMEOUT)
+
+
+@pytest.mark.ui
+def test_picking_another_scene_opens_it_with_its_own_settings(served_app, page):
+    shutil.copy(SAMPLES / "day_coast.nc", served_app.data_dir / "day_coast.nc")
+    open_dashboard(page, served_app.url)
+    page.locator(".cs-scene-select select").first.select_option("day_coast.nc")
+    expect(page.locator(".cs-scene-name").first).to_have_text("day_coast", timeout=TIMEOUT)
+    page.wait_for_function(RENDERED, arg=6, timeout=TIMEOUT, polling=100)
+    # sea and land in this scene: the thresholds are edited per surface
+    expect(page.get_by_role("button", name="Land").first).to_be_visible(timeout=TIMEOUT)
+    # no 3.9 µm channel: the fog test cannot run, and the page says so
+    page.get_by_text("not applied: needs 3p9um and 11um").first.wait_for(timeout=TIMEOUT)

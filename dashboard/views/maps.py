@@ -29,6 +29,8 @@ PTOP_CMAP = "cet_CET_L8_r"     # high (low-pressure) tops in the brightest colou
 
 _OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=False, tools=[],
                      clipping_colors={"NaN": "#00000000"})
+_READOUT_HINT = ("<span class='cs-muted'>Large scene: the maps are rasterized; move the pointer over a map to "
+                 "read the values of the pixel under it here.</span>")
 _CLASS_JS = "return %s[Math.round(value)] || '';" % list(pl.CLASS_NAMES)
 
 
@@ -68,7 +70,7 @@ class MapGrid(Viewer):
         # one pair of ranges shared by all six figures: pan or zoom one and all follow
         self._x_range = Range1d(float(self._xs[0]) - 0.5, float(self._xs[-1]) + 0.5)
         self._y_range = Range1d(float(self._ys[-1]) + 0.5, float(self._ys[0]) - 0.5)  # row 0 at the top
-        self._readout = pn.pane.HTML("", css_classes=["cs-readout"], margin=(0, 10),
+        self._readout = pn.pane.HTML(_READOUT_HINT, css_classes=["cs-readout"], margin=(0, 10), height=20,
                                      visible=self.rasterized, sizing_mode="stretch_width")
         self._layout = self._build()
 
@@ -243,7 +245,7 @@ class MapGrid(Viewer):
         """Values under the cursor, read from the source arrays (rasterized maps aggregate)."""
         pix = self.focus.pixel_at(x, y)
         if pix is None:
-            self._readout.object = ""
+            self._readout.object = _READOUT_HINT
             return
         i, j = pix
         m = self.model

@@ -16,13 +16,16 @@ from ..errors import CloudsieveError
 log = logging.getLogger("cloudsieve.dashboard")
 
 
+_COMPACT = ":host(.alert) { padding: 6px 14px; } p { margin: 0; }"
+
+
 class Notices(Viewer):
     """One dismissible message line above the main area."""
 
     def __init__(self, **params):
         super().__init__(**params)
         self._alert = pn.pane.Alert("", alert_type="info", visible=False, sizing_mode="stretch_width",
-                                    margin=(0, 10, 6, 10), css_classes=["cs-notice"])
+                                    margin=(0, 10, 4, 10), css_classes=["cs-notice"], stylesheets=[_COMPACT])
         self._close = pn.widgets.Button(label="✕", color="light", width=36, height=32, margin=(0, 10),
                                         visible=False, description="Dismiss the message")
         self._close.on_click(lambda _e: self.clear())

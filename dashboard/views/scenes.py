@@ -5,6 +5,7 @@ inside the data folder; the upload box validates the uploaded bytes and hands ov
 checked :class:`dashboard.scene.Scene`.
 """
 import asyncio
+import functools
 import re
 import tempfile
 from pathlib import Path
@@ -34,6 +35,7 @@ class ScenePicker(Viewer):
         self.select.param.watch(self._picked, "value")
         self.refresh.on_click(lambda _e: self.update_options())
         self._ignore = False
+        self._extra = []
 
     def __panel__(self):
         folder = self.catalog.folder
@@ -43,7 +45,10 @@ class ScenePicker(Viewer):
             sizing_mode="stretch_width")
 
     def update_options(self, current=None, extra=None):
-        options = self.catalog.names() + list(extra or [])
+        """Re-list the data folder (plus ``extra`` names, e.g. uploads, kept for later calls)."""
+        if extra is not None:
+            self._extra = list(extra)
+        options = self.catalog.names() + [e for e in self._extra if e not in self.catalog.names()]
         self._ignore = True
         try:
             value = current if current is not None else self.select.value
@@ -51,10 +56,12 @@ class ScenePicker(Viewer):
         finally:
             self._ignore = False
 
-    async def _picked(self, event):
-        if self._ignore or event.new is None:
+    def _picked(self, event):
+        # a synchronous watcher, so that the _ignore guard of update_options holds; the opening
+        # itself is a coroutine scheduled on the session's event loop
+        if self._ignore or event.new is None or event.new == event.old:
             return
-        await self.on_open(event.new)
+        pn.state.execute(functools.partial(self.on_open, event.new))
 
 
 class UploadBox(Viewer):
