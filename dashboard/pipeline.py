@@ -347,18 +347,21 @@ def invert_all(scene, sim, config, bias=None):
             # invert, and drop the levels; blocks run on the configured threads
             column_sim = ColumnSimulator(scene, config)
 
-            def lean(k_blk):
+            def run_block(k_blk):
                 k, blk = k_blk
                 _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain,
                               notes if k == 0 else [], sigma_k, levels=column_sim.levels(sim.valid_index[blk]))
 
-            threads = max(1, int(config["simulation"].get("threads", 1)))
-            with ThreadPoolExecutor(threads) as pool:
-                list(pool.map(lean, enumerate(blocks)))
         else:
-            for k, blk in enumerate(blocks):
+            def run_block(k_blk):
+                k, blk = k_blk
                 _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, status, uncertain,
                               notes if k == 0 else [], sigma_k)
+
+        # blocks write disjoint pixels of the outputs, so they run on the configured threads
+        threads = max(1, int(config["simulation"].get("threads", 1)))
+        with ThreadPoolExecutor(threads) as pool:
+            list(pool.map(run_block, enumerate(blocks)))
     r2 = lambda a: a.reshape(ny, nx)  # noqa: E731
     return CloudLayer(out_eps.reshape(n_inv, ny, nx), r2(out["tau"]), r2(out["stau"]), r2(out["text"]), r2(out["pc"]),
                       r2(out["tc"]), r2(status), r2(uncertain), tuple(inv), method, notes)
