@@ -3,6 +3,7 @@
 The CLI and the dashboard both call :func:`result_dataset` and the writers here, so the
 same scene, configuration and edits give the same files from either.
 """
+import contextlib
 import datetime as _dt
 import json
 import os
@@ -171,43 +172,46 @@ def _commit(tmp, path):
         pass
 
 
-def write_csv(result, path):
-    """Write the result as CSV atomically (a temporary file renamed into place)."""
+@contextlib.contextmanager
+def atomic_write(path):
+    """Write through a temporary file in the target's folder, renamed into place on success.
+
+    Yields the temporary path. On success the file is fsynced and renamed over ``path`` (the
+    old file stays until then); on any failure the temporary is removed and OSErrors become
+    :class:`OutputError`. A killed process can leave only a ``.<name>.*.part`` file behind.
+    """
     path, tmp = _atomic_target(path)
     try:
-        table = result_table(result)
-        table.to_csv(tmp, index=False, float_format="%.4f")
+        yield tmp
         _commit(tmp, path)
     except OSError as exc:
         raise OutputError(f"could not write '{path}': {exc.strerror or exc}") from None
     finally:
         if tmp.exists():
             tmp.unlink()
-    return path
+
+
+def write_csv(result, path):
+    """Write the result as CSV atomically (a temporary file renamed into place)."""
+    with atomic_write(path) as tmp:
+        result_table(result).to_csv(tmp, index=False, float_format="%.4f")
+    return Path(path)
+
+
+def netcdf_encoding(result):
+    """Compression and fill values of every variable (NaN for floats, none for integers)."""
+    enc = {name: {"zlib": True, "complevel": 4,
+                  "_FillValue": np.float32(np.nan) if var.dtype.kind == "f" else None}
+           for name, var in result.data_vars.items()}
+    enc.update({name: {"_FillValue": None} for name in result.coords})
+    return enc
 
 
 def write_netcdf(result, path):
     """Write the result as compressed CF-NetCDF4 atomically."""
-    path, tmp = _atomic_target(path)
-    enc = {}
-    for name, var in result.data_vars.items():
-        e = {"zlib": True, "complevel": 4}
-        if var.dtype.kind == "f":
-            e["_FillValue"] = np.float32(np.nan)
-        else:
-            e["_FillValue"] = None
-        enc[name] = e
-    for name in result.coords:
-        enc[name] = {"_FillValue": None}
-    try:
-        result.to_netcdf(tmp, engine="netcdf4", encoding=enc)
-        _commit(tmp, path)
-    except OSError as exc:
-        raise OutputError(f"could not write '{path}': {exc.strerror or exc}") from None
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+    with atomic_write(path) as tmp:
+        result.to_netcdf(tmp, engine="netcdf4", encoding=netcdf_encoding(result))
+    return Path(path)
 
 
 def write_result(result, path, fmt=None):

@@ -502,15 +502,14 @@ def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2
     """
     import netCDF4
 
-    from .export import _atomic_target, _commit, result_dataset, result_table, OutputError
+    from .export import atomic_write, result_dataset, result_table
 
     out_path = Path(out_path)
     fmt = fmt or ("netcdf" if out_path.suffix.lower() in (".nc", ".nc4", ".netcdf") else "csv")
     result = result_dataset(scene, res, res, config, edits)
     blocks = _blocks(result, None)
-    target, tmp = _atomic_target(out_path)
     counts = np.zeros(len(pl.CLASS_NAMES))
-    try:
+    with atomic_write(out_path) as tmp:
         if fmt == "netcdf":
             nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
             try:
@@ -549,14 +548,8 @@ def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2
                         first = False
                         m = part["mask"].values
                         counts += [np.sum(m == k) for k in range(len(pl.CLASS_NAMES))]
-        _commit(tmp, target)
-    except OSError as exc:
-        raise OutputError(f"could not write '{target}': {exc.strerror or exc}") from None
-    finally:
-        if tmp.exists():
-            tmp.unlink()
     total = max(counts.sum(), 1)
-    return target, {name: round(float(c / total), 4) for name, c in zip(pl.CLASS_NAMES, counts)}
+    return out_path, {name: round(float(c / total), 4) for name, c in zip(pl.CLASS_NAMES, counts)}
 
 
 def screen_file_chunked(path, out_path, config, fmt=None, chunk_rows=DEFAULT_CHUNK_ROWS, use_edits=True):
