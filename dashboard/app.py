@@ -419,7 +419,7 @@ def serve(args):
         print("cloudsieve: --max-upload-mb must be a positive number of megabytes", file=sys.stderr)
         return 2
     try:
-        server_options(address, 1, args.allow_websocket_origin, max_mb)
+        server_options(address, args.port or 5006, args.allow_websocket_origin, max_mb)
     except _OriginError as exc:
         print(str(exc), file=sys.stderr)
         return exc.exit_code

@@ -61,7 +61,8 @@ class TuningPanel(Viewer):
             visible=pn.bind(lambda v: v == "fixed", model.param.cloud_top))
         self.top_pressure.param.watch(self._setter("top_pressure", "changing the cloud-top pressure"),
                                       "value_throttled")
-        self.remove_bias = pn.widgets.Switch.from_param(model.param.remove_bias, label="", width=40, margin=(8, 4, 0, 10))
+        self.remove_bias = pn.widgets.Switch.from_param(model.param.remove_bias, label="", width=40, margin=(8, 4, 0, 10),
+                                                     css_classes=["cs-switch-bias"])
         mp = model.param.marginal_fraction
         self.marginal = pn.widgets.FloatSlider(
             label="marginal band [fraction of threshold]", start=mp.bounds[0], end=mp.bounds[1],
