@@ -198,6 +198,7 @@ def test_bad_upload_gets_the_same_message_in_the_app(tmp_path, case):
     """The dashboard's upload check reports the problem in the page (same words as the CLI),
     opens nothing, and raises nothing."""
     import asyncio
+    import threading
 
     from dashboard.views.notices import Notices
     from dashboard.views.scenes import UploadBox
@@ -211,8 +212,19 @@ def test_bad_upload_gets_the_same_message_in_the_app(tmp_path, case):
         opened.append(scene)
 
     box = UploadBox(on_scene, Notices(), max_upload_mb=50)
+    errors = []
+
+    def run():  # a thread of its own: browser tests may leave an event loop running in this one
+        try:
+            asyncio.run(box._handle(name, src.read_bytes()))
+        except BaseException as exc:  # noqa: BLE001 — re-raised below
+            errors.append(exc)
+
     try:
-        asyncio.run(box._handle(name, src.read_bytes()))
+        worker = threading.Thread(target=run)
+        worker.start()
+        worker.join(timeout=300)
+        assert not errors, errors
         text = box.report.object
         assert not opened
         assert "cannot be used" in text or "not a scene file" in text
