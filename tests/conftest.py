@@ -24,6 +24,9 @@ NO_BROWSER = (f"{CHROMIUM} not found: install Debian's chromium (apt-get install
 
 
 def pytest_collection_modifyitems(config, items):
+    # Browser tests run last: Playwright's sync API keeps an event loop running in the main
+    # thread for the rest of the session, which breaks later tests that call asyncio.run().
+    items.sort(key=lambda item: "ui" in item.keywords)  # stable: order kept within each group
     if CHROMIUM.exists() or IN_CI:
         return
     skip = pytest.mark.skip(reason=NO_BROWSER)

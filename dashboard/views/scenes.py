@@ -6,6 +6,7 @@ checked :class:`dashboard.scene.Scene`.
 """
 import asyncio
 import functools
+import html
 import re
 import tempfile
 from pathlib import Path
@@ -19,6 +20,14 @@ from ..scene import check_scene
 UPLOAD_SUFFIXES = (".csv", ".parquet", ".nc")
 #: marker the browser-side size check puts in mime_type instead of sending an oversized file
 _TOO_LARGE = "x-cloudsieve/too-large"
+
+
+def _short(folder):
+    """The folder relative to the working directory when inside it, else the full path."""
+    try:
+        return str(Path(folder).relative_to(Path.cwd())) or "."
+    except ValueError:
+        return str(folder)
 
 
 class ScenePicker(Viewer):
@@ -41,7 +50,8 @@ class ScenePicker(Viewer):
         folder = self.catalog.folder
         return pn.Column(
             pn.Row(self.select, self.refresh, sizing_mode="stretch_width"),
-            pn.pane.HTML(f"<div class='cs-muted'>Data folder: <code>{folder}</code></div>", margin=(0, 10)),
+            pn.pane.HTML(f"<div class='cs-muted'>Data folder: <code title='{html.escape(str(folder))}'>"
+                         f"{html.escape(_short(folder))}</code></div>", margin=(0, 10)),
             sizing_mode="stretch_width")
 
     def update_options(self, current=None, extra=None):
