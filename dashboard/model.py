@@ -70,6 +70,7 @@ class ScreeningModel(param.Parameterized):
         self.sim = sim if sim is not None else pl.simulate(scene, self.config)
         self._cloud = None
         self._cloud_key = None
+        self._screen_cache = {}  # threshold-independent screening arrays of this scene (pipeline.screen)
         self.result = None
         self.timings = {"simulate_s": self.sim.seconds}
         self._update()
@@ -142,7 +143,7 @@ class ScreeningModel(param.Parameterized):
             t0 = time.perf_counter()
             cfg = self.effective_config()
             edits = self.journal.active() if self.journal is not None else []
-            res = pl.screen(self.scene, self.sim, cfg, edits=edits, cloud=_PENDING)
+            res = pl.screen(self.scene, self.sim, cfg, edits=edits, cloud=_PENDING, cache=self._screen_cache)
             bias_applied = {c: b for c, b in res.bias.items() if b.get("applied")}
             res.cloud = pl.mask_cloud_layer(self._cloud_layer(cfg, bias_applied), res.mask)
             self.result = res

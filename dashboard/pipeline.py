@@ -525,7 +525,7 @@ def _local_std(values, valid, window):
     return np.where(enough, mean, np.nan), np.where(enough, np.sqrt(var), np.nan)
 
 
-def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=None):
+def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=None, cache=None):
     """Margins [K] of every test (> 0 means the test fired), thresholds, notes.
 
     Parameters
@@ -538,6 +538,9 @@ def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=No
     night_any, day_any : bool, optional
         Whether the whole scene has night / daylight valid pixels (a block of a chunked
         scene cannot tell); computed from ``fields`` when omitted.
+    cache : dict, optional
+        Keeps the texture test's neighbourhood statistics, which depend on the departures
+        but not on any threshold (see :func:`screen`).
     """
     codes = fields["surface"]
     tests_cfg = config["tests"]
@@ -590,8 +593,14 @@ def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=No
         d = departure[window_ch]
         ok = valid & np.isfinite(d)
         win = int(t["window"])
-        _, std = _local_std(d, ok, win)
-        warmest = ndimage.maximum_filter(np.where(ok, d, -np.inf), size=win, mode="nearest")
+        key = ("texture", window_ch, win, cache.get("bias_key") if cache is not None else None)
+        if cache is not None and key in cache:
+            std, warmest = cache[key]
+        else:
+            _, std = _local_std(d, ok, win)
+            warmest = ndimage.maximum_filter(np.where(ok, d, -np.inf), size=win, mode="nearest")
+            if cache is not None:
+                cache[key] = (std, warmest)
         thr = per_surface(t["threshold"], codes)
         # A rough neighbourhood alone does not make the pixel cloudy: a clear pixel beside a
         # cloud sits in a rough window too, but it is the warmest there. The pixel must also be
@@ -738,7 +747,8 @@ def edits_grid(shape, edits):
     return grid.reshape(shape)
 
 
-def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, night_any=None, day_any=None):
+def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, night_any=None, day_any=None,
+                  cache=None):
     """Departures, test margins, classes and bits for a grid or a block of one (no global step).
 
     Parameters
@@ -752,18 +762,36 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, nig
         Analyst overrides (0 none, 1 clear, 2 cloud).
     night_any, day_any : bool, optional
         Scene-wide flags (see :func:`run_tests`).
+    cache : dict, optional
+        See :func:`screen`.
 
     Returns
     -------
     dict with departure, margins, thresholds, mask, bits, sigma, skipped, notes
     """
+    bias_key = tuple(sorted((c, b["a"], b["b"]) for c, b in bias.items())) if bias else None
+    sigma_key = ("sigma", json.dumps(config["clear_sky_uncertainty"], sort_keys=True))
+    if cache is not None:
+        cache["bias_key"] = bias_key
+        # keep the arrays of the raw departures and of the latest bias line only
+        for k in [k for k in cache if isinstance(k, tuple) and k[0] in ("departure", "texture")
+                  and k[-1] not in (None, bias_key)]:
+            del cache[k]
     # float64 throughout: a float32 field would keep float32 arithmetic (numpy promotion rules)
     fields = dict(fields, slant_path=np.asarray(fields["slant_path"], dtype=float))
-    departure = {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float)) for ch in bt_clear}
-    if bias:
-        departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * fields["slant_path"]) for ch, d in departure.items()}
-    sigma = sigma_from_path(fields["surface"], fields["slant_path"], config)
-    margins, thresholds, skipped, notes, night = run_tests(fields, config, departure, sigma, night_any, day_any)
+    if cache is not None and ("departure", bias_key) in cache and sigma_key in cache:
+        departure, sigma = cache[("departure", bias_key)], cache[sigma_key]
+    else:
+        departure = {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float))
+                     for ch in bt_clear}
+        if bias:
+            departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * fields["slant_path"])
+                         for ch, d in departure.items()}
+        sigma = sigma_from_path(fields["surface"], fields["slant_path"], config)
+        if cache is not None:
+            cache[("departure", bias_key)], cache[sigma_key] = departure, sigma
+    margins, thresholds, skipped, notes, night = run_tests(fields, config, departure, sigma, night_any, day_any,
+                                                           cache)
     mask, bits = classify(fields["valid"], margins, thresholds, config["screening"]["marginal_fraction"], night,
                           "3p9um" in departure, edit_codes)
     return {"departure": departure, "margins": margins, "thresholds": thresholds, "mask": mask, "bits": bits,
@@ -777,7 +805,7 @@ def screen_fields(scene, sim):
             "slant_path": sim.slant_path}
 
 
-def screen(scene, sim, config, edits=None, cloud=None):
+def screen(scene, sim, config, edits=None, cloud=None, cache=None):
     """Stage 3: departures, tests, classes, bias and the cloud layer for non-clear pixels.
 
     Parameters
@@ -789,6 +817,11 @@ def screen(scene, sim, config, edits=None, cloud=None):
     cloud : CloudLayer, optional
         From :func:`invert_all` for the same cloud settings; computed when omitted (and the
         simulation kept level data).
+    cache : dict, optional
+        An empty dict the caller keeps for this scene and simulation: the departures, the
+        clear-sky σ and the texture statistics (none depends on a threshold) are kept in it
+        and reused by the next call, so retuning redoes only the threshold arithmetic. The
+        arrays returned are shared with the cache: treat them as read-only.
 
     Returns
     -------
@@ -799,14 +832,14 @@ def screen(scene, sim, config, edits=None, cloud=None):
     obs = {ch: ds[f"bt_{ch}"].values for ch in sim.channels}
     clear = {ch: sim.bt_clear[i] for i, ch in enumerate(sim.channels)}
     edit_codes = edits_grid(fields["valid"].shape, edits) if edits else None
-    out = screen_arrays(obs, clear, fields, config, None, edit_codes)
+    out = screen_arrays(obs, clear, fields, config, None, edit_codes, cache=cache)
     bias = bias_from_sums(bias_sums(out["departure"], sim.slant_path, out["mask"], out["bits"], fields["valid"]),
                           config["bias"]["min_pixels"])
     applied = False
     notes = out["notes"]
     if config["bias"]["remove"]:
         if all(np.isfinite(b["a"]) for b in bias.values()):
-            out = screen_arrays(obs, clear, fields, config, bias, edit_codes)
+            out = screen_arrays(obs, clear, fields, config, bias, edit_codes, cache=cache)
             notes = out["notes"]
             applied = True
         else:

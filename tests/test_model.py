@@ -83,6 +83,28 @@ def test_retuning_never_reruns_the_clear_sky_simulation(model, monkeypatch):
     assert model.timings["simulate_s"] == simulate_s
 
 
+def test_cached_retuning_gives_the_same_screening_as_a_fresh_one(model):
+    """The model keeps threshold-independent arrays between retunes (pipeline.screen's
+    cache); every result must equal a screening computed from scratch."""
+    steps = [lambda: model.set_threshold("texture", 0.8), lambda: setattr(model, "remove_bias", True),
+             lambda: model.set_threshold("cold_departure", 2.5), lambda: model.set_enabled("texture", False),
+             lambda: setattr(model, "remove_bias", False), lambda: model.set_enabled("texture", True),
+             lambda: model.set_threshold("split_window_excess", 0.3)]
+    for step in steps:
+        step()
+        fresh = pl.screen(model.scene, model.sim, model.effective_config(), cloud=model._cloud)
+        np.testing.assert_array_equal(model.result.mask, fresh.mask)
+        np.testing.assert_array_equal(model.result.bits, fresh.bits)
+        assert set(model.result.margins) == set(fresh.margins)
+        for test, m in fresh.margins.items():
+            np.testing.assert_array_equal(model.result.margins[test], m)
+        for ch, d in fresh.departure.items():
+            np.testing.assert_array_equal(model.result.departure[ch], d)
+        assert model.result.counts == fresh.counts
+    # the cache holds the raw departures and those of the latest bias line only
+    assert sum(1 for k in model._screen_cache if isinstance(k, tuple) and k[0] == "departure") <= 2
+
+
 def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_it(model, monkeypatch):
     calls = []
     real = pl.invert_all
