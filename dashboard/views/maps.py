@@ -164,6 +164,7 @@ class MapGrid(Viewer):
 
     def _share_ranges(self, plot, element):
         fig = plot.state
+        fig.output_backend = "canvas"  # images gain nothing from WebGL, which is slow in software rendering
         fig.x_range, fig.y_range = self._x_range, self._y_range
         plot.handles["x_range"], plot.handles["y_range"] = self._x_range, self._y_range
 
