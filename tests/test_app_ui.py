@@ -291,3 +291,26 @@ def test_picking_another_scene_opens_it_with_its_own_settings(served_app, page):
     expect(page.get_by_role("button", name="Land").first).to_be_visible(timeout=TIMEOUT)
     # no 3.9 µm channel: the fog test cannot run, and the page says so
     page.get_by_text("not applied: needs 3p9um and 11um").first.wait_for(timeout=TIMEOUT)
+
+
+@pytest.mark.ui
+def test_lasso_selection_marks_the_pixels_inside(served_app, page):
+    journal = journal_path(served_app.data_dir / "night_front.nc")
+    open_dashboard(page, served_app.url)
+    title = "observed BT [K]"  # lasso on another map than the class map: all maps select
+    page.locator(".cs-map-0 .bk-tool-icon-lasso-select").first.click()
+    corners = [map_point(page, x, y, title) for x, y in ((100, 100), (160, 100), (160, 160), (100, 100))]
+    page.mouse.move(*corners[0])
+    page.mouse.down()
+    for corner in corners[1:]:
+        page.mouse.move(*corner, steps=8)
+    page.mouse.up()
+    selection = page.locator(".cs-selection div").first
+    expect(selection).to_contain_text(re.compile(r"pixel\(s\) — lasso"), timeout=TIMEOUT)
+    n = int(re.search(r"([\d,]+) pixel", selection.inner_text()).group(1).replace(",", ""))
+    assert 1500 <= n <= 2100  # the triangle's area is 1800 pixels
+    page.get_by_role("button", name="Mark cloud").click()
+    expect(page.locator(".cs-edits div").first).to_contain_text("marked cloud", timeout=TIMEOUT)
+    entry = read_journal(journal)[0]
+    rows, cols = np.divmod(np.asarray(entry["index"]), 300)
+    assert entry["count"] == n and np.all(rows <= cols + 1)  # inside the triangle above the diagonal
