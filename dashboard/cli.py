@@ -198,7 +198,11 @@ def _screen_one(path, out_path, cfg, fmt, use_edits, show_progress):
     try:
         from .model import _NoJournal
 
-        model = ScreeningModel(scene, cfg, journal=None if use_edits else _NoJournal())
+        # batch: the clear-sky pass keeps no per-level data, and only the flagged pixels'
+        # columns are simulated again with levels for the cloud inversion
+        sim = simulate_with_bar(scene, cfg, levels=False)
+        model = ScreeningModel(scene, cfg, journal=None if use_edits else _NoJournal(), sim=sim,
+                               invert_scope="flagged")
     finally:
         pl.simulate = orig
         if bar is not None:
@@ -288,8 +292,6 @@ def _use_chunks(args, path):
 
 
 def _screen_files(args, cfg, files, out, many, fmt, ext, client):
-    from . import scale
-
     rows, failed = [], []
     bar = None
     if many and not args.quiet:
@@ -307,6 +309,8 @@ def _screen_files(args, cfg, files, out, many, fmt, ext, client):
         target = out / f"{stem}_mask{ext}" if many else out
         try:
             if _use_chunks(args, path):
+                from . import scale  # imports dask (~2 s): only for the chunked path
+
                 rows.append(scale.screen_file_chunked(path, target, cfg, fmt, args.chunks or scale.DEFAULT_CHUNK_ROWS,
                                                       not args.no_edits))
             else:

@@ -48,6 +48,10 @@ class ScreeningModel(param.Parameterized):
     channel = param.Selector(default=None, objects=[], doc="Channel shown on the brightness-temperature maps")
     version = param.Integer(default=0, doc="Incremented after every update of the results")
     busy = param.Boolean(default=False, doc="An update is running")
+    invert_scope = param.Selector(
+        default="all", objects=["all", "flagged"], constant=True,
+        doc="Pixels the cloud inversion runs on: every valid pixel once (the dashboard, so that "
+            "retuning never waits for it) or only the pixels the screening flags (batch: one pass)")
     message = param.String(default="", doc="Last user-facing message (errors included)")
 
     def __init__(self, scene, config=None, journal=None, sim=None, **params):
@@ -126,13 +130,18 @@ class ScreeningModel(param.Parameterized):
         self._update()
 
     # ------------------------------------------------------------------ computing
-    def _cloud_layer(self, cfg, bias_applied):
+    def _cloud_layer(self, cfg, bias_applied, mask):
+        only = None
+        if self.invert_scope == "flagged":
+            only = (mask == pl.CLOUD) | (mask == pl.MARGINAL)
         key = (cfg["cloud"]["top"], cfg["cloud"]["top_pressure"] if cfg["cloud"]["top"] == "fixed" else None,
-               tuple(sorted((c, b["a"], b["b"]) for c, b in bias_applied.items())) if bias_applied else None)
+               tuple(sorted((c, b["a"], b["b"]) for c, b in bias_applied.items())) if bias_applied else None,
+               None if only is None else hash(np.packbits(only).tobytes()))
         if key != self._cloud_key:
             t0 = time.perf_counter()
             self._cloud = pl.invert_all(self.scene, self.sim, cfg,
-                                        {c: (b["a"], b["b"]) for c, b in bias_applied.items()} if bias_applied else None)
+                                        {c: (b["a"], b["b"]) for c, b in bias_applied.items()} if bias_applied else None,
+                                        only=only)
             self._cloud_key = key
             self.timings["invert_s"] = time.perf_counter() - t0
         return self._cloud
@@ -145,7 +154,7 @@ class ScreeningModel(param.Parameterized):
             edits = self.journal.active() if self.journal is not None else []
             res = pl.screen(self.scene, self.sim, cfg, edits=edits, cloud=_PENDING, cache=self._screen_cache)
             bias_applied = {c: b for c, b in res.bias.items() if b.get("applied")}
-            res.cloud = pl.mask_cloud_layer(self._cloud_layer(cfg, bias_applied), res.mask)
+            res.cloud = pl.mask_cloud_layer(self._cloud_layer(cfg, bias_applied, res.mask), res.mask)
             self.result = res
             self.timings["screen_s"] = time.perf_counter() - t0
             self.version += 1

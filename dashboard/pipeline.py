@@ -307,21 +307,26 @@ def _inversion_channels(sim, config):
     return wanted
 
 
-def invert_all(scene, sim, config, bias=None):
+def invert_all(scene, sim, config, bias=None, only=None):
     """Stage 2: the grey-cloud inversion for every valid pixel under the cloud settings.
 
     Parameters
     ----------
     scene : Scene
-    sim : Simulation (with levels)
+    sim : Simulation (with or without levels: without, the columns are simulated again)
     config : dict
     bias : dict channel -> (a, b), optional
         Clear-sky bias fit to add to the clear-sky radiance (when bias removal is on).
+    only : (y, x) bool array, optional
+        Invert just these pixels (the batch path passes the non-clear ones; the dashboard
+        inverts every valid pixel once so that retuning never waits for the inversion).
+        Pixels left out get status not_cloudy and NaN, as :func:`mask_cloud_layer` gives.
 
     Returns
     -------
     CloudLayer
-        Retrieval for every valid pixel; :func:`screen` masks it to the non-clear ones.
+        Retrieval for every valid (or chosen) pixel; :func:`screen` masks it to the
+        non-clear ones.
     """
     ds = scene.data
     cc = config["cloud"]
@@ -338,10 +343,14 @@ def invert_all(scene, sim, config, bias=None):
     status = np.full(shape2, pcloud.STATUS_NOT_CLOUDY, np.int8)
     uncertain = np.zeros(shape2, bool)
     method = cc["top"]
-    if idx.size:
+    # positions in the simulation's valid-pixel order of the pixels to invert
+    chosen = None if only is None else np.flatnonzero(np.asarray(only, bool).ravel()[idx])
+    n_todo = idx.size if chosen is None else chosen.size
+    if n_todo:
         chunk = max(1024, int(config["simulation"]["chunk_pixels"]) * 16)
         sigma_k = clear_sky_sigma(ds, sim, config).ravel()
-        blocks = [slice(start, min(start + chunk, idx.size)) for start in range(0, idx.size, chunk)]
+        blocks = [slice(start, min(start + chunk, n_todo)) if chosen is None else chosen[start:start + chunk]
+                  for start in range(0, n_todo, chunk)]
         if sim.level_pressure is None:
             # lean simulation (large scenes): simulate each block's columns again with levels,
             # invert, and drop the levels; blocks run on the configured threads
@@ -373,6 +382,7 @@ def _invert_block(blk, ds, sim, config, bias, inv, ci, chans, out_eps, out, stat
                   levels=None):
     """Invert one block of valid pixels of a Simulation; writes into the output arrays.
 
+    ``blk``: a slice or an index array into the simulation's valid-pixel order.
     ``levels``: (pressure, temperature, opaque radiance) of the block's columns when the
     simulation did not keep them.
     """

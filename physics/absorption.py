@@ -152,8 +152,12 @@ def layer_absorber_amounts(pressure, temperature, specific_humidity, continuum_t
     return np.moveaxis(_absorber_amounts_levels_first(p, t, q, continuum_t0, line_pressure_exponent), (0, 1), (-1, -2))
 
 
-def _absorber_amounts_levels_first(p, t, q, continuum_t0, line_pressure_exponent):
-    """(4, n_layers, ...) absorber amounts from level-first arrays (n_levels, ...)."""
+def _absorber_amounts_levels_first(p, t, q, continuum_t0, line_pressure_exponent, layout="term"):
+    """Absorber amounts from level-first arrays (n_levels, ...).
+
+    ``layout="term"`` → (4, n_layers, ...); ``layout="layer"`` → (n_layers, 4, ...), the
+    operand of the per-layer matrix product of :func:`layer_optical_depth_level_major`.
+    """
     dtype = np.result_type(p, t, q, np.float32)
     f = dtype.type
     p_lay = f(0.5) * (p[:-1] + p[1:])
@@ -164,11 +168,17 @@ def _absorber_amounts_levels_first(p, t, q, continuum_t0, line_pressure_exponent
     e = vapour_pressure_from_specific_humidity(q_lay, p_lay)
     inv_p0 = f(1.0 / STANDARD_PRESSURE_HPA)
     p_rel = p_lay * inv_p0
-    x = np.empty((4,) + p_lay.shape, dtype=dtype)
-    np.multiply(u * e * inv_p0, np.exp(f(continuum_t0) * (f(1.0) / t_lay - f(1.0 / CONTINUUM_REFERENCE_T))), out=x[0])
-    np.multiply(u, p_rel - e * inv_p0, out=x[1])
-    np.multiply(u, np.exp(f(line_pressure_exponent) * np.log(p_rel)), out=x[2])
-    np.multiply(f(2.0) * p_rel, dp * inv_p0, out=x[3])
+    if layout == "layer":
+        x = np.empty((p_lay.shape[0], 4) + p_lay.shape[1:], dtype=dtype)
+        terms = [x[:, i] for i in range(4)]
+    else:
+        x = np.empty((4,) + p_lay.shape, dtype=dtype)
+        terms = [x[i] for i in range(4)]
+    np.multiply(u * e * inv_p0, np.exp(f(continuum_t0) * (f(1.0) / t_lay - f(1.0 / CONTINUUM_REFERENCE_T))),
+                out=terms[0])
+    np.multiply(u, p_rel - e * inv_p0, out=terms[1])
+    np.multiply(u, np.exp(f(line_pressure_exponent) * np.log(p_rel)), out=terms[2])
+    np.multiply(f(2.0) * p_rel, dp * inv_p0, out=terms[3])
     return x
 
 
@@ -210,3 +220,19 @@ def layer_optical_depth_channel_major(pressure, temperature, specific_humidity, 
     )
     k = coefficients.matrix().astype(x.dtype)
     return (k.T @ x.reshape(4, -1)).reshape((k.shape[1],) + x.shape[1:])
+
+
+def layer_optical_depth_level_major(pressure, temperature, specific_humidity, coefficients):
+    """:func:`layer_optical_depth` on level-first arrays (n_levels, n_pix) → (n_layers, n_ch, n_pix).
+
+    The layout of the transfer hot path (physics.transfer.upwelling_level_major). The sum
+    over the four absorber terms is an ``einsum`` rather than a BLAS product: a batched BLAS
+    kernel's rounding depends on where a pixel falls in its block, and a pixel's optical
+    depth must not depend on how a scene is chunked (tested).
+    """
+    x = _absorber_amounts_levels_first(
+        np.asarray(pressure), np.asarray(temperature), np.asarray(specific_humidity),
+        coefficients.continuum_t0, coefficients.line_pressure_exponent, layout="layer",
+    )
+    k = coefficients.matrix().astype(x.dtype)  # (4, n_ch)
+    return np.einsum("ic,lip->lcp", k, x)

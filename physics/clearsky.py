@@ -9,9 +9,9 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .absorption import layer_optical_depth_channel_major
+from .absorption import layer_optical_depth_level_major
 from .constants import C1_RADIANCE, C2_CM_K
-from .transfer import upwelling_channel_major
+from .transfer import upwelling_level_major
 
 
 class ClearSky(NamedTuple):
@@ -47,9 +47,10 @@ def channel_planck(channels, temperature, channel_axis=-1):
     channels : sequence of Channel
     temperature : array_like
         [K]
-    channel_axis : {-1, 0}
+    channel_axis : {-1, 0, 1}
         Where the channel axis goes: last (``temperature.shape + (n_ch,)``, the public
-        layout) or first (``(n_ch,) + temperature.shape``, the channel-major hot path).
+        layout), first (``(n_ch,) + temperature.shape``, channel-major) or second
+        (``temperature.shape[:1] + (n_ch,) + temperature.shape[1:]``, the level-major hot path).
 
     Returns
     -------
@@ -68,6 +69,10 @@ def channel_planck(channels, temperature, channel_axis=-1):
         expand = (slice(None),) + (None,) * t.ndim
         nu, a, b = nu[expand], a[expand], b[expand]
         t_eff = a + b * t
+    elif channel_axis == 1:
+        expand = (None, slice(None)) + (None,) * (t.ndim - 1)
+        nu, a, b = nu[expand], a[expand], b[expand]
+        t_eff = a + b * t[:, None]
     else:
         t_eff = a + b * t[..., None]
     x = np.expm1((f(C2_CM_K) * nu) / t_eff)
@@ -168,13 +173,15 @@ def simulate_channel_major(pressure, temperature, specific_humidity, t_skin, emi
     ClearSky
         Channel-major: (n_ch, n_pix) and (n_ch, n_levels, n_pix).
     """
-    tau = layer_optical_depth_channel_major(pressure, temperature, specific_humidity, coefficients)
+    tau = layer_optical_depth_level_major(pressure, temperature, specific_humidity, coefficients)
     f = tau.dtype.type
     inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=tau.dtype)))
-    b_lev = channel_planck(channels, temperature, channel_axis=0)
+    b_lev = channel_planck(channels, temperature, channel_axis=1)
     b_s = channel_planck(channels, t_skin, channel_axis=0)
-    rad, trans, opaque, _ = upwelling_channel_major(tau, b_lev, b_s, emissivity.astype(tau.dtype, copy=False),
-                                                    inv_mu, levels=levels)
+    rad, trans, opaque, _ = upwelling_level_major(tau, b_lev, b_s, emissivity.astype(tau.dtype, copy=False),
+                                                  inv_mu, levels=levels)
     bt = channel_brightness_temperature(channels, rad, channel_axis=0)
-    surf_t = np.exp(-np.sum(tau, axis=1) * inv_mu)
+    surf_t = np.exp(-np.sum(tau, axis=0) * inv_mu)
+    if levels:  # channel-major views of the level-major arrays
+        trans, opaque = trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2)
     return ClearSky(rad, bt, trans, opaque, surf_t)
