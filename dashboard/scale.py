@@ -216,6 +216,34 @@ def _parquet_to_grid(path, chunk_rows):
 # ---------------------------------------------------------------------------------------
 # block kernels (numpy in, numpy out)
 # ---------------------------------------------------------------------------------------
+_ALLOCATOR_TUNED = False
+
+
+def _tune_allocator():
+    """Let glibc keep the physics' short-lived, MB-sized temporaries on the heap (once per process).
+
+    Dask's nanny starts workers with ``MALLOC_TRIM_THRESHOLD_=65536``, which also freezes
+    glibc's mmap threshold at 128 KiB: every temporary of a simulation block (≈1 MB) is then
+    mapped, zero-filled page by page and unmapped again, which halves the kernels' speed
+    (measured: 58 000 instead of 133 000 columns/s on one core). Here temporaries below
+    16 MiB come from the heap, and at most 64 MiB of free heap top is kept before it is
+    returned to the system. A no-op where the C library is not glibc.
+    """
+    global _ALLOCATOR_TUNED
+    if _ALLOCATOR_TUNED:
+        return
+    _ALLOCATOR_TUNED = True
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6")
+        m_trim_threshold, m_mmap_threshold = -1, -3  # <malloc.h>
+        libc.mallopt(m_mmap_threshold, 16 << 20)
+        libc.mallopt(m_trim_threshold, 64 << 20)
+    except (OSError, AttributeError):
+        pass
+
+
 def _columns(t_air, tcwv, p_surf, t_skin, zen, emis, chans, coeffs, sim_cfg, levels):
     """Simulate pixel columns (1-D inputs, emis (n_ch, n)) chunk by chunk, like pipeline.simulate."""
     f32 = np.float32
@@ -249,6 +277,7 @@ def _inputs_f32(t_air, tcwv, p_surf, t_skin, zen, idx):
 
 def _clear_kernel(t_air, tcwv, p_surf, t_skin, zen, valid, emis, *, chans, coeffs, sim_cfg):
     """apply_ufunc kernel: clear-sky brightness temperature (..., n_ch) [K] of a block."""
+    _tune_allocator()
     shape = t_air.shape
     idx = np.flatnonzero(valid.ravel())
     out = np.full((len(chans), t_air.size), np.nan, np.float32)
@@ -266,6 +295,7 @@ def _cloud_kernel(t_air, tcwv, p_surf, t_skin, zen, valid, mask, obs, clear, emi
 
     Returns (..., n_inv + 7): emissivities, τ, σ_τ, τ_ext, p_top, T_top, status, uncertain.
     """
+    _tune_allocator()
     shape = t_air.shape
     n_inv = len(inv)
     out = np.full((t_air.size, n_inv + 7), np.nan)
