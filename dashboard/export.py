@@ -153,9 +153,42 @@ def _atomic_target(path):
         raise OutputError(f"'{path}' is a folder; give a file name for the output")
     if not os.access(folder, os.W_OK):
         raise OutputError(f"cannot write into '{folder}' (no permission); choose another --out")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
+    _sweep_stale_parts(folder, path.name)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".part", dir=folder)
     os.close(fd)
     return path, Path(tmp)
+
+
+def _pid_alive(pid):
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # exists but belongs to someone else
+        return True
+    return True
+
+
+def _sweep_stale_parts(folder, name):
+    """Remove temporaries of ``name`` left by writers that no longer run (killed mid-write).
+
+    A temporary is named ``.<name>.<pid>.<random>.part``; one whose writer process is gone is
+    an incomplete file nobody will finish. Temporaries of live writers are left alone.
+    """
+    prefix = f".{name}."
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return
+    for entry in entries:
+        if not (entry.name.startswith(prefix) and entry.name.endswith(".part")):
+            continue
+        pid = entry.name[len(prefix):].split(".", 1)[0]
+        if pid.isdigit() and int(pid) != os.getpid() and not _pid_alive(int(pid)):
+            try:
+                os.unlink(entry.path)
+            except OSError:
+                pass
 
 
 def _commit(tmp, path):
@@ -178,7 +211,8 @@ def atomic_write(path):
 
     Yields the temporary path. On success the file is fsynced and renamed over ``path`` (the
     old file stays until then); on any failure the temporary is removed and OSErrors become
-    :class:`OutputError`. A killed process can leave only a ``.<name>.*.part`` file behind.
+    :class:`OutputError`. A killed process can leave only a ``.<name>.<pid>.*.part`` file
+    behind; the next write of the same file removes it.
     """
     path, tmp = _atomic_target(path)
     try:

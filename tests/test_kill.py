@@ -59,6 +59,26 @@ def test_export_killed_at_random_moments(tmp_path, reference):
     leftovers = [p.name for p in tmp_path.iterdir() if p.name != "mask.nc"]
     assert all(p.startswith(".mask.nc.") and p.endswith(".part") for p in leftovers)
     print("outcomes:", outcomes)
+    # the next complete write of the same file sweeps the dead writers' temporaries
+    subprocess.run([str(EXE), "screen", str(scene), "--out", str(target), "--quiet"], check=True, timeout=600)
+    assert [p.name for p in tmp_path.iterdir()] == ["mask.nc"]
+
+
+def test_stale_temporaries_of_dead_writers_are_swept_live_ones_kept(tmp_path):
+    from dashboard.export import atomic_write
+
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True,
+                          check=True)
+    dead_pid = int(dead.stdout)  # that process has exited
+    stale = tmp_path / f".out.csv.{dead_pid}.abc123.part"
+    live = tmp_path / f".out.csv.{os.getppid()}.def456.part"  # the test runner's parent is alive
+    other = tmp_path / f".other.csv.{dead_pid}.xyz.part"  # another file's temporary: not ours to judge
+    for p in (stale, live, other):
+        p.write_text("partial")
+    with atomic_write(tmp_path / "out.csv") as tmp:
+        tmp.write_text("row,col\n")
+    names = sorted(p.name for p in tmp_path.iterdir())
+    assert names == sorted(["out.csv", live.name, other.name])
 
 
 WRITER = """
