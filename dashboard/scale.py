@@ -3,21 +3,25 @@
 The in-memory path (:mod:`dashboard.pipeline`) holds a whole scene and, for the dashboard,
 the per-level arrays of every pixel. Here nothing of the size of the scene times the number
 of levels ever exists: scenes load lazily (NetCDF through xarray with chunks along y;
-Parquet row group by row group), the physics kernels run block by block through
-``xarray.apply_ufunc(..., dask="parallelized")``, the texture test sees its neighbours
-across block borders through an overlap of half its window, and results are written chunk
+Parquet row group by row group), the physics kernels run block by block as Dask tasks
+(``map_blocks`` over row blocks overlapped by half the texture window, so the texture test
+sees its neighbours across block borders; ``xarray.apply_ufunc(..., dask="parallelized")``
+for the clear-sky and cloud passes when the bias is removed), and results are written chunk
 by chunk. The per-pixel arithmetic is the in-memory path's own (``pipeline.screen_arrays``,
 ``pipeline.invert_columns``, ``physics.clearsky.simulate_channel_major``), so both paths give
 the same numbers (tested to 1e-6 K).
 
-Passes over a scene:
+Passes over a scene (default, no bias removal): one. Each row block, with the halo rows the
+texture test needs, is simulated once in slabs of rows, screened, and its non-clear pixels
+inverted from the level data of the same simulation, which is then dropped; the bias-fit sums
+come out of the same task and the fit is added to the file's attributes at the end. With
+``[bias] remove = true`` the fit is needed before the final screening: clear sky first
+(persisted: 4 bytes × channels per pixel), a screening for the fit, a second with it, and the
+non-clear columns simulated again with levels for the cloud layer.
 
-1. clear-sky brightness temperatures (persisted: 4 bytes × channels per pixel);
-2. screening of every block (with halo rows) → additive sums for the clear-sky bias fit;
-3. if bias removal is on, screening again with the fitted line;
-4. grey-cloud inversion of the non-clear pixels of every block (their columns are simulated
-   again with levels, inside the block, and dropped);
-5. writing, block by block.
+Writing: the block tasks also convert their block to the exported variables and deflate them
+as HDF5 stores a chunk; the client only places finished chunks in the file, so neither the
+big intermediate arrays nor the compression pass through it.
 
 Schedulers: the default is Dask's threaded scheduler (numpy releases the GIL); a
 ``dask.distributed`` client (``--workers N`` starts a local cluster, ``--scheduler ADDRESS``
@@ -42,7 +46,6 @@ from .errors import SceneError
 from .scene import _RANGES, _open_netcdf, known_channel_names, scene_format
 
 DEFAULT_CHUNK_ROWS = 256
-_INPUTS = ("t_skin", "t_air", "tcwv", "sat_zenith", "sol_zenith", "p_surf", "surface")
 
 
 # ---------------------------------------------------------------------------------------
@@ -357,6 +360,131 @@ def _screen_block(block, *, channels, config, bias, night_any, day_any, n_ch, ha
     return np.stack(layers)
 
 
+def _fused_block(block, *, block_info=None, nk, half, names, chans, coeffs, sim_cfg, config, inv, ci, night_any,
+                 day_any, has_edits, layout):
+    """One row block, start to finish: clear sky, screening, cloud layer and bias-fit sums.
+
+    ``block`` is the (field, rows, x) input stack of the block with ``half`` halo rows on
+    each side that has a neighbour. Its columns are simulated once, in slabs of rows, with
+    the per-level data kept only until the slab's rows are screened (the texture test needs
+    ``half`` rows on either side) and its non-clear pixels inverted; so no column is
+    simulated twice and level data never exist for more than a slab and its halo.
+
+    Returns the (layer, core rows, x) float64 output stack (see :func:`_layout`).
+    """
+    _tune_allocator()
+    k = block_info[0]["chunk-location"][1]
+    top, bot = (half if k > 0 else 0), (half if k < nk - 1 else 0)
+    n_ch, n_inv = len(names), len(inv)
+    _, n_rows, nx = block.shape
+    f = {name: block[i] for i, name in enumerate(layout["inputs"])}
+    valid = f["valid"] > 0.5
+    emis = np.stack([f[f"emis_{c}"] for c in names])
+    obs = {c: f[f"bt_{c}"] for c in names}
+    user = {c: f[f"user_{c}"].astype(np.float32) for c in names}
+    fields = {"surface": f["surface"].astype(np.int8), "valid": valid, "sol_zenith": f["sol_zenith"],
+              "slant_path": f["slant"]}
+    edits = f["edits"].astype(np.int8) if has_edits else None
+    core0, core1 = top, n_rows - bot
+    out = np.full((layout["n_out"], core1 - core0, nx), np.nan)
+    L = layout
+    out[L["status"]] = pl.pcloud.STATUS_NOT_CLOUDY
+    out[L["uncertain"]] = 0.0
+    clear = np.full((n_ch, n_rows, nx), np.nan, np.float32)
+    slab = max(1, int(sim_cfg["chunk_pixels"]) * 16 // max(nx, 1))
+    kept = []  # (first row, last row + 1, pixel position in the slab's columns or -1, p, T, opaque radiance)
+    done = core0
+    for s0 in range(0, n_rows, slab):
+        s1 = min(s0 + slab, n_rows)
+        flat = np.flatnonzero(valid[s0:s1].ravel())
+        pos = np.full((s1 - s0) * nx, -1, np.int64)
+        pos[flat] = np.arange(flat.size)
+        lv = None
+        if flat.size:
+            idx = flat + s0 * nx
+            args = _inputs_f32(f["t_air"], f["tcwv"], f["p_surf"], f["t_skin"], f["sat_zenith"], idx)
+            e = emis.reshape(n_ch, -1)[:, idx].astype(np.float32)
+            want_levels = s1 > core0 and s0 < core1  # halo-only slabs need no level data
+            bt, _, lp, lt, opq = _columns(*args, e, chans, coeffs, sim_cfg, levels=want_levels)
+            rows_clear = clear[:, s0:s1].reshape(n_ch, -1)
+            rows_clear[:, flat] = bt
+            for i, c in enumerate(names):  # the user's clear-sky values replace the simulation where given
+                u = user[c][s0:s1].ravel()
+                use = np.isfinite(u) & valid[s0:s1].ravel()
+                rows_clear[i, use] = u[use]
+            if want_levels:
+                lv = (lp, lt, opq[:, :, ci])
+        kept.append((s0, s1, pos, lv))
+        ready = core1 if s1 == n_rows else min(s1 - half, core1)
+        if ready <= done:
+            continue
+        w0, w1 = max(done - half, 0), min(ready + half, n_rows)
+        win = slice(w0, w1)
+        scr = pl.screen_arrays({c: obs[c][win] for c in names}, {c: clear[i, win] for i, c in enumerate(names)},
+                               {key: v[win] for key, v in fields.items()}, config, None,
+                               None if edits is None else edits[win], night_any, day_any)
+        r = slice(done - w0, ready - w0)  # the rows finished now, within the window
+        o = slice(done - core0, ready - core0)  # the same rows in the output
+        for i, c in enumerate(names):
+            out[L["departure"][i], o] = scr["departure"][c][r]
+            out[L["bt_clear"][i], o] = clear[i, done:ready]
+        for j, t in enumerate(pl.TESTS):
+            if t in scr["margins"]:
+                out[L["margins"][j], o] = scr["margins"][t][r]
+        mask = scr["mask"][r]
+        out[L["mask"], o] = mask
+        out[L["bits"], o] = scr["bits"][r]
+        sigma = scr["sigma"][r]
+        todo = valid[done:ready] & ((mask == pl.CLOUD) | (mask == pl.MARGINAL))
+        for s0_, s1_, pos_, lv_ in kept:
+            a, b = max(s0_, done), min(s1_, ready)
+            if a >= b or lv_ is None:
+                continue
+            sel = todo[a - done:b - done]
+            ry, rx = np.nonzero(sel)
+            if not ry.size:
+                continue
+            p = pos_[(ry + a - s0_) * nx + rx]
+            gy = ry + a  # block rows
+            obs_bt = np.stack([obs[inv[q]][gy, rx] for q in range(n_inv)], axis=-1)
+            clr_bt = np.stack([clear[ci[q], gy, rx] for q in range(n_inv)], axis=-1).astype(float)
+            res = pl.invert_columns(obs_bt, clr_bt, lv_[0][p], lv_[1][p], lv_[2][p], f["sat_zenith"][gy, rx],
+                                    sigma[gy - done, rx], [chans[q] for q in ci], inv, config)
+            oy = gy - core0
+            for q in range(n_inv):
+                out[L["cloud"][q], oy, rx] = res["emissivity"][:, q]
+            for key in ("optical_depth", "optical_depth_sigma", "extinction_optical_depth", "top_pressure",
+                        "top_temperature", "status", "uncertain"):
+                out[L[key], oy, rx] = res[key]
+        done = ready
+        kept = [kk for kk in kept if kk[1] > done]
+    sums = pl.bias_sums({c: out[L["departure"][i]] for i, c in enumerate(names)}, f["slant"][core0:core1],
+                        out[L["mask"]].astype(np.int8), out[L["bits"]].astype(np.uint16), valid[core0:core1])
+    flat_sums = np.concatenate([sums[c] for c in names])
+    out[L["sums"]].ravel()[:flat_sums.size] = flat_sums
+    return out
+
+
+def _layout(names, inv, edits):
+    """Positions of the fields in the input stack and of the layers in the output stack."""
+    n_ch, n_t, n_inv = len(names), len(pl.TESTS), len(inv)
+    inputs = ["t_air", "tcwv", "p_surf", "t_skin", "sat_zenith", "valid"] + [f"emis_{c}" for c in names] + \
+        [f"bt_{c}" for c in names] + [f"user_{c}" for c in names] + ["surface", "sol_zenith", "slant"] + \
+        (["edits"] if edits else [])
+    L = {"inputs": inputs, "departure": list(range(n_ch)), "margins": list(range(n_ch, n_ch + n_t)),
+         "mask": n_ch + n_t, "bits": n_ch + n_t + 1}
+    b0 = n_ch + n_t + 2
+    L["bt_clear"] = list(range(b0, b0 + n_ch))
+    c0 = b0 + n_ch
+    L["cloud"] = list(range(c0, c0 + n_inv))
+    for j, key in enumerate(("optical_depth", "optical_depth_sigma", "extinction_optical_depth", "top_pressure",
+                             "top_temperature", "status", "uncertain")):
+        L[key] = c0 + n_inv + j
+    L["sums"] = c0 + n_inv + 7
+    L["n_out"] = L["sums"] + 1
+    return L
+
+
 @dataclass
 class ChunkedResult:
     """Duck-types the Simulation/Screening pair for :func:`dashboard.export.result_dataset`."""
@@ -373,15 +501,38 @@ class ChunkedResult:
     skipped: dict
     cloud: object
     counts: dict = field(default_factory=dict)
+    stack: object = None  # (layer, y, x) dask array of every output layer (see _layout)
+    layout: dict = None
+    bias_pending: bool = False  # the bias fit is summed up while writing (one pass)
+
+
+def _result_from_stack(stack, L, names, inv, method, source, bias, notes, skipped):
+    """A ChunkedResult whose fields are layers of ``stack`` (dask for the whole scene, numpy for a block)."""
+    n_inv = len(inv)
+    cloud = pl.CloudLayer(stack[L["cloud"][0]:L["cloud"][0] + n_inv], stack[L["optical_depth"]],
+                          stack[L["optical_depth_sigma"]], stack[L["extinction_optical_depth"]],
+                          stack[L["top_pressure"]], stack[L["top_temperature"]], stack[L["status"]].astype(np.int8),
+                          stack[L["uncertain"]] > 0.5, tuple(inv), method, [])
+    return ChunkedResult(names, stack[L["bt_clear"][0]:L["bt_clear"][0] + len(names)], source,
+                         {c: stack[L["departure"][i]] for i, c in enumerate(names)},
+                         {t: stack[L["margins"][j]] for j, t in enumerate(pl.TESTS) if t not in skipped},
+                         stack[L["mask"]].astype(np.int8), stack[L["bits"]].astype(np.uint16), bias, notes, skipped,
+                         cloud)
 
 
 def screen_chunked(scene, config, edits=None):
-    """Build the lazy result of a :class:`LazyScene` (passes 1–4; writing is left to the caller).
+    """Build the lazy result of a :class:`LazyScene` (writing is left to :func:`write_chunked`).
+
+    Without bias removal (the default) every row block is done in one task
+    (:func:`_fused_block`: each column simulated once) and the bias fit is summed while
+    writing. With bias removal the fit must be known before the final screening: the clear
+    sky is simulated and kept first, the scene screened for the fit, screened again with it,
+    and the non-clear columns simulated again with levels for the cloud layer.
 
     Returns
     -------
     ChunkedResult
-        mask, bits, departures, margins and the cloud layer as dask arrays.
+        mask, bits, departures, margins and the cloud layer as layers of one dask array.
     """
     ds = scene.data
     names = scene.channels
@@ -392,74 +543,87 @@ def screen_chunked(scene, config, edits=None):
     rows = ds.chunks["y"]
     nx = ds.sizes["x"]
     emis = _emissivity(ds, names, config).chunk({"y": rows, "x": -1, "channel": -1})
-    # pass 1: clear sky
-    clear = xr.apply_ufunc(
-        _clear_kernel, ds["t_air"], ds["tcwv"], ds["p_surf"], ds["t_skin"], ds["sat_zenith"], ds["valid"], emis,
-        input_core_dims=[[]] * 6 + [["channel"]], output_core_dims=[["channel"]], dask="parallelized",
-        output_dtypes=[np.float32], dask_gufunc_kwargs={"output_sizes": {"channel": n_ch}},
-        kwargs={"chans": chans, "coeffs": coeffs, "sim_cfg": sim_cfg},
-    )
-    source = {}
-    layers = []
-    for i, ch in enumerate(names):
-        c = clear.isel(channel=i)
-        if f"bt_clear_{ch}" in ds:
-            user = ds[f"bt_clear_{ch}"].astype(np.float32)
-            c = xr.where(np.isfinite(user) & ds["valid"], user, c)
-            source[ch] = "user"
-        else:
-            source[ch] = "simulated"
-        layers.append(c.data)
-    bt_clear = da.stack(layers).persist()  # (n_ch, y, x) float32: the one persisted product
     mu = np.cos(np.deg2rad(ds["sat_zenith"].data))
     slant = (ds["tcwv"].data / mu).astype(np.float32)
     night = np.isfinite(ds["sol_zenith"].data) & (ds["sol_zenith"].data > config["screening"]["night_sun_zenith"])
     night_any, day_any = dask.compute(night.any(), (~night & ds["valid"].data).any())
     night_any, day_any = bool(night_any), bool(day_any)
     edit_grid = pl.edits_grid(scene.shape, edits) if edits else None
-    inputs = [ds[f"bt_{c}"].data for c in names] + [bt_clear[i] for i in range(n_ch)] + \
-             [ds["surface"].data, ds["valid"].data, ds["sol_zenith"].data, slant]
-    if edit_grid is not None:
-        inputs.append(da.from_array(edit_grid, chunks=(rows, nx)))
-    stack = _stack(inputs).rechunk((len(inputs), rows, nx))
     half = int(config["tests"]["texture"]["window"]) // 2
-    n_out = n_ch + len(pl.TESTS) + 3
-
-    def screened(bias):
-        g = da.overlap.overlap(stack, depth={0: 0, 1: half, 2: 0}, boundary="none")
-        out = g.map_blocks(_screen_block, dtype=np.float64, chunks=(n_out,) + g.chunks[1:],
-                           channels=names, config=config, bias=bias, night_any=night_any, day_any=day_any,
-                           n_ch=n_ch, has_edits=edit_grid is not None)
-        return da.overlap.trim_internal(out, {0: 0, 1: half, 2: 0}, boundary="none")
-
+    inv = pl._inversion_channels(type("S", (), {"channels": names})(), config)
+    ci = [names.index(c) for c in inv]
+    L = _layout(names, inv, edit_grid is not None)
+    source = {ch: "user" if f"bt_clear_{ch}" in ds else "simulated" for ch in names}
     # probe one small block for the notes and skipped tests (scene-wide flags passed in)
     probe = pl.screen_arrays({c: np.full((1, 1), 280.0) for c in names}, {c: np.full((1, 1), 280.0) for c in names},
                              {"surface": np.zeros((1, 1), np.int8), "valid": np.ones((1, 1), bool),
                               "sol_zenith": np.full((1, 1), 120.0 if night_any else 30.0),
                               "slant_path": np.ones((1, 1))}, config, None, None, night_any, day_any)
     notes, skipped = list(probe["notes"]), dict(probe["skipped"])
-    out = screened(None)
-    mask_i, bits_i = n_ch + len(pl.TESTS), n_ch + len(pl.TESTS) + 1
+    method = config["cloud"]["top"]
+    if not config["bias"]["remove"]:
+        nan = da.full((ds.sizes["y"], nx), np.nan, chunks=(rows, nx))
+        parts = {"t_air": ds["t_air"].data, "tcwv": ds["tcwv"].data, "p_surf": ds["p_surf"].data,
+                 "t_skin": ds["t_skin"].data, "sat_zenith": ds["sat_zenith"].data, "valid": ds["valid"].data,
+                 "surface": ds["surface"].data, "sol_zenith": ds["sol_zenith"].data, "slant": slant}
+        for i, c in enumerate(names):
+            parts[f"emis_{c}"] = emis.data[..., i]
+            parts[f"bt_{c}"] = ds[f"bt_{c}"].data
+            parts[f"user_{c}"] = ds[f"bt_clear_{c}"].data if f"bt_clear_{c}" in ds else nan
+        if edit_grid is not None:
+            parts["edits"] = da.from_array(edit_grid, chunks=(rows, nx))
+        stack = _stack([parts[name] for name in L["inputs"]]).rechunk((len(L["inputs"]), rows, nx))
+        g = da.overlap.overlap(stack, depth={0: 0, 1: half, 2: 0}, boundary="none")
+        out = g.map_blocks(_fused_block, dtype=np.float64, chunks=((L["n_out"],), rows, (nx,)), nk=len(rows), half=half,
+                           names=names, chans=chans, coeffs=coeffs, sim_cfg=sim_cfg, config=config, inv=inv, ci=ci,
+                           night_any=night_any, day_any=day_any, has_edits=edit_grid is not None, layout=L)
+        bias = {c: {"a": float("nan"), "b": float("nan"), "n": 0, "rms": float("nan"), "applied": False}
+                for c in names}  # summed up while writing
+        res = _result_from_stack(out, L, names, inv, method, source, bias, notes, skipped)
+        res.stack, res.layout, res.bias_pending = out, L, True
+        return res
+    # bias removal: clear sky first (persisted: 4 bytes × channels per pixel)
+    clear = xr.apply_ufunc(
+        _clear_kernel, ds["t_air"], ds["tcwv"], ds["p_surf"], ds["t_skin"], ds["sat_zenith"], ds["valid"], emis,
+        input_core_dims=[[]] * 6 + [["channel"]], output_core_dims=[["channel"]], dask="parallelized",
+        output_dtypes=[np.float32], dask_gufunc_kwargs={"output_sizes": {"channel": n_ch}},
+        kwargs={"chans": chans, "coeffs": coeffs, "sim_cfg": sim_cfg},
+    )
+    layers = []
+    for i, ch in enumerate(names):
+        c = clear.isel(channel=i)
+        if f"bt_clear_{ch}" in ds:
+            user = ds[f"bt_clear_{ch}"].astype(np.float32)
+            c = xr.where(np.isfinite(user) & ds["valid"], user, c)
+        layers.append(c.data)
+    bt_clear = da.stack(layers).persist()  # (n_ch, y, x) float32
+    inputs = [ds[f"bt_{c}"].data for c in names] + [bt_clear[i] for i in range(n_ch)] + \
+             [ds["surface"].data, ds["valid"].data, ds["sol_zenith"].data, slant]
+    if edit_grid is not None:
+        inputs.append(da.from_array(edit_grid, chunks=(rows, nx)))
+    stack = _stack(inputs).rechunk((len(inputs), rows, nx))
+    n_scr = n_ch + len(pl.TESTS) + 3
 
-    sums = _bias_sums_dask(out, slant, ds["valid"].data, names, mask_i, bits_i)
+    def screened(bias):
+        g = da.overlap.overlap(stack, depth={0: 0, 1: half, 2: 0}, boundary="none")
+        o = g.map_blocks(_screen_block, dtype=np.float64, chunks=(n_scr,) + g.chunks[1:],
+                         channels=names, config=config, bias=bias, night_any=night_any, day_any=day_any,
+                         n_ch=n_ch, has_edits=edit_grid is not None)
+        return da.overlap.trim_internal(o, {0: 0, 1: half, 2: 0}, boundary="none")
+
+    scr = screened(None)
+    mask_i, bits_i = n_ch + len(pl.TESTS), n_ch + len(pl.TESTS) + 1
+    sums = _bias_sums_dask(scr, slant, ds["valid"].data, names, mask_i, bits_i)
     bias = pl.bias_from_sums(sums, config["bias"]["min_pixels"])
-    applied = False
-    if config["bias"]["remove"]:
-        if all(np.isfinite(b["a"]) for b in bias.values()):
-            out = screened(bias)
-            applied = True
-        else:
-            notes.append(f"bias not removed: fewer than {config['bias']['min_pixels']} clear pixels to fit it")
+    applied = all(np.isfinite(b["a"]) for b in bias.values())
+    if applied:
+        scr = screened(bias)
+    else:
+        notes.append(f"bias not removed: fewer than {config['bias']['min_pixels']} clear pixels to fit it")
     for b in bias.values():
         b["applied"] = applied
-    mask = out[mask_i].astype(np.int8)
-    bits = out[bits_i].astype(np.uint16)
-    departure = {ch: out[i] for i, ch in enumerate(names)}
-    margins = {t: out[n_ch + k] for k, t in enumerate(pl.TESTS) if t not in skipped}
-    sigma = out[n_out - 1]
-    # pass 4: cloud layer of the non-clear pixels
-    inv = pl._inversion_channels(type("S", (), {"channels": names})(), config)
-    ci = [names.index(c) for c in inv]
+    mask = scr[mask_i].astype(np.int8)
+    sigma = scr[n_scr - 1]
     obs_da = xr.concat([ds[f"bt_{c}"] for c in names], dim="channel").transpose("y", "x", "channel")
     clr_bt = bt_clear
     if applied:
@@ -467,21 +631,20 @@ def screen_chunked(scene, config, edits=None):
         clr_bt = da.stack([bt_clear[i].astype(np.float64) + (bias[ch]["a"] + bias[ch]["b"] * slant64)
                            for i, ch in enumerate(names)])
     clr_da = xr.DataArray(da.moveaxis(clr_bt, 0, -1), dims=("y", "x", "channel"))
-    mask_da = xr.DataArray(mask, dims=("y", "x"))
-    sig_da = xr.DataArray(sigma, dims=("y", "x"))
     cl = xr.apply_ufunc(
-        _cloud_kernel, ds["t_air"], ds["tcwv"], ds["p_surf"], ds["t_skin"], ds["sat_zenith"], ds["valid"], mask_da,
-        obs_da.chunk({"channel": -1}), clr_da.chunk({"y": rows, "channel": -1}), emis, sig_da,
+        _cloud_kernel, ds["t_air"], ds["tcwv"], ds["p_surf"], ds["t_skin"], ds["sat_zenith"], ds["valid"],
+        xr.DataArray(mask, dims=("y", "x")), obs_da.chunk({"channel": -1}), clr_da.chunk({"y": rows, "channel": -1}),
+        emis, xr.DataArray(sigma, dims=("y", "x")),
         input_core_dims=[[]] * 7 + [["channel"]] * 3 + [[]], output_core_dims=[["cfield"]], dask="parallelized",
         output_dtypes=[np.float64], dask_gufunc_kwargs={"output_sizes": {"cfield": len(inv) + 7}},
         kwargs={"chans": chans, "coeffs": coeffs, "sim_cfg": sim_cfg, "config": config, "inv": inv, "ci": ci},
     ).data
-    n_inv = len(inv)
-    cloud = pl.CloudLayer(da.moveaxis(cl[..., :n_inv], -1, 0), cl[..., n_inv], cl[..., n_inv + 1],
-                          cl[..., n_inv + 2], cl[..., n_inv + 3], cl[..., n_inv + 4],
-                          cl[..., n_inv + 5].astype(np.int8), cl[..., n_inv + 6] > 0.5, tuple(inv),
-                          config["cloud"]["top"], [])
-    return ChunkedResult(names, bt_clear, source, departure, margins, mask, bits, bias, notes, skipped, cloud)
+    out = da.concatenate([scr[:n_ch + len(pl.TESTS) + 2], bt_clear.astype(np.float64), da.moveaxis(cl, -1, 0),
+                          da.full((1, ds.sizes["y"], nx), np.nan, chunks=(1, rows, nx))], axis=0)
+    out = out.rechunk((L["n_out"], rows, nx))
+    res = _result_from_stack(out, L, names, inv, method, source, bias, notes, skipped)
+    res.stack, res.layout = out, L
+    return res
 
 
 def _bias_sums_dask(out, slant, valid, names, mask_i, bits_i):
@@ -504,26 +667,92 @@ def _bias_sums_dask(out, slant, valid, names, mask_i, bits_i):
     return {ch: total[i] for i, ch in enumerate(names)}
 
 
-def _blocks(ds, rows_per_block):
-    starts = np.cumsum((0,) + tuple(ds.chunks["y"])) if ds.chunks else np.array([0, ds.sizes["y"]])
-    edges = list(starts)
-    if rows_per_block:
-        edges = list(range(0, ds.sizes["y"], rows_per_block)) + [ds.sizes["y"]]
-    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+# ---------------------------------------------------------------------------------------
+# writing
+# ---------------------------------------------------------------------------------------
+def _hdf5_chunk(values, chunk_rows, fill, complevel, shuffle):
+    """One (chunk_rows, x) chunk as HDF5 stores it: padded, byte-shuffled, zlib-deflated."""
+    import zlib
+
+    values = np.ascontiguousarray(values)
+    if values.shape[0] < chunk_rows:  # the last block: pad to the full chunk (never read back)
+        pad = np.full((chunk_rows - values.shape[0],) + values.shape[1:], fill, values.dtype)
+        values = np.concatenate([values, pad])
+    raw = values.view(np.uint8)
+    size = values.dtype.itemsize
+    if shuffle and size > 1:  # HDF5's shuffle filter: byte j of every element together
+        raw = raw.reshape(-1, size).T
+    return zlib.compress(np.ascontiguousarray(raw).tobytes(), complevel)
 
 
-def _compute_window(result, window):
-    """Compute a few row blocks of the lazy result at once (threads or the active cluster)."""
-    parts = [result.isel(y=slice(a, b)) for a, b in window]
-    return dask.compute(*parts)
+def _encode_block(stack, a, b, meta):
+    """Worker side of writing: one block's output variables (final dtypes), deflated for NetCDF.
+
+    Returns (block start, {variable: bytes or array}, class counts, bias-fit sums).
+    """
+    L = meta["layout"]
+    names = meta["names"]
+    res = _result_from_stack(stack, L, names, meta["inv"], meta["method"], meta["source"], meta["bias"],
+                             meta["notes"], meta["skipped"])
+    scene = type("BlockScene", (), {"name": meta["scene_name"],
+                                     "data": xr.Dataset(coords={"row": ("y", meta["row"][a:b]),
+                                                                "col": ("x", meta["col"])})})()
+    part = result_dataset_for(scene, res, meta)
+    variables = {}
+    for name in meta["variables"]:
+        v = part[name].values
+        if meta["fmt"] == "netcdf":
+            enc = meta["encoding"][name]
+            variables[name] = _hdf5_chunk(v, meta["chunk_rows"], enc["fill"], enc["complevel"], enc["shuffle"])
+        else:
+            variables[name] = v
+    m = part["mask"].values
+    counts = np.array([np.sum(m == k) for k in range(len(pl.CLASS_NAMES))])
+    n = len(names)
+    sums = stack[L["sums"]].ravel()[:6 * n].reshape(n, 6)
+    return a, variables, counts, sums
+
+
+def result_dataset_for(scene, res, meta):
+    from .export import result_dataset
+
+    return result_dataset(scene, res, res, meta["config"], meta["edits"])
+
+
+def _active_client():
+    try:
+        from distributed import get_client
+
+        return get_client()
+    except (ImportError, ValueError):
+        return None
+
+
+def _blocks_done(tasks, parallel):
+    """Yield the results of the block tasks as they finish, with at most ``parallel`` in flight
+    on the threaded scheduler; on a dask.distributed cluster all go in one graph and the
+    workers keep only the small encoded results until the client takes them."""
+    client = _active_client()
+    if client is not None:
+        from distributed import as_completed
+
+        futures = client.compute(tasks)
+        for fut in as_completed(futures):
+            yield fut.result()
+            fut.release()
+        return
+    for w in range(0, len(tasks), parallel):
+        yield from dask.compute(*tasks[w:w + parallel])
 
 
 def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2):
     """Write a chunked result block of rows by block of rows, atomically.
 
-    Only ``parallel`` blocks are computed at a time and each is written as soon as it is
-    computed, so memory stays bounded whatever the scene size. NetCDF is written with the
-    same variables and CF attributes as the in-memory export; CSV block by block.
+    The workers (or the local threads) compute each block, convert it to the exported
+    variables and, for NetCDF, deflate each variable's block exactly as HDF5 would store it
+    (shuffle + zlib, one chunk per block); the client only places the ready chunks in the file
+    (HDF5 direct chunk writes) or appends CSV rows. Memory stays bounded whatever the scene
+    size. NetCDF gets the same variables and CF attributes as the in-memory export.
 
     Returns
     -------
@@ -532,52 +761,91 @@ def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2
     """
     import netCDF4
 
-    from .export import atomic_write, result_dataset, result_table
+    from .export import atomic_write, netcdf_encoding, result_dataset, result_table
 
     out_path = Path(out_path)
     fmt = fmt or ("netcdf" if out_path.suffix.lower() in (".nc", ".nc4", ".netcdf") else "csv")
-    result = result_dataset(scene, res, res, config, edits)
-    blocks = _blocks(result, None)
+    meta_ds = result_dataset(scene, res, res, config, edits)  # lazy: names, dtypes, attributes
+    variables = [n for n in meta_ds.data_vars]
+    stack = res.stack
+    rows = stack.chunks[1]
+    chunk_rows = max(rows)
+    ny, nx = meta_ds.sizes["y"], meta_ds.sizes["x"]
+    enc_all = netcdf_encoding(meta_ds)
+    encoding = {}
+    for name in variables:
+        e = enc_all.get(name, {})
+        is_float = meta_ds[name].dtype.kind == "f"
+        encoding[name] = {"complevel": int(e.get("complevel", 1)), "shuffle": bool(e.get("shuffle", True)),
+                          "fill": np.nan if is_float else 0}
+    meta = {"layout": res.layout, "names": res.channels, "inv": res.cloud.channels, "method": res.cloud.method,
+            "source": res.source, "bias": res.bias, "notes": res.notes, "skipped": res.skipped,
+            "scene_name": scene.name, "row": meta_ds["row"].values, "col": meta_ds["col"].values,
+            "config": config, "edits": edits, "variables": variables, "fmt": fmt, "encoding": encoding,
+            "chunk_rows": chunk_rows}
+    starts = np.cumsum((0,) + rows)
+    blocks = stack.to_delayed().ravel()
+    tasks = [dask.delayed(_encode_block)(blk, int(starts[k]), int(starts[k + 1]), meta)
+             for k, blk in enumerate(blocks)]
     counts = np.zeros(len(pl.CLASS_NAMES))
+    sums = np.zeros((len(res.channels), 6))
+    ordered_sums = {}
     with atomic_write(out_path) as tmp:
         if fmt == "netcdf":
-            nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
-            try:
-                ny, nx = result.sizes["y"], result.sizes["x"]
+            import h5py
+
+            with netCDF4.Dataset(tmp, "w", format="NETCDF4") as nc:
                 nc.createDimension("y", ny)
                 nc.createDimension("x", nx)
-                for name in ("row", "col"):
-                    var = nc.createVariable(name, "i4", result[name].dims)
-                    var.setncatts(result[name].attrs)
-                    var[:] = result[name].values
-                layers = [n for n in result.variables if n not in ("row", "col")]
-                for name in layers:
-                    v = result[name]
-                    is_float = v.dtype.kind == "f"
-                    var = nc.createVariable(name, v.dtype, v.dims, zlib=True, complevel=4,
-                                            fill_value=np.array(np.nan, v.dtype) if is_float else False,
-                                            chunksizes=(min(max(b - a for a, b in blocks), ny), nx))
-                    var.setncatts({k: val for k, val in v.attrs.items()})
-                nc.setncatts({k: val for k, val in result.attrs.items()})
-                for w in range(0, len(blocks), parallel):
-                    window = blocks[w:w + parallel]
-                    for (a, b), part in zip(window, _compute_window(result, window)):
-                        for name in layers:
-                            nc[name][a:b, :] = part[name].values
-                        m = part["mask"].values
-                        counts += [np.sum(m == k) for k in range(len(pl.CLASS_NAMES))]
-            finally:
-                nc.close()
+                for name in meta_ds.coords:
+                    v = meta_ds[name]
+                    var = nc.createVariable(name, v.dtype, v.dims)
+                    var.setncatts(v.attrs)
+                    var[:] = v.values
+                for name in variables:
+                    v, e = meta_ds[name], encoding[name]
+                    var = nc.createVariable(name, v.dtype, v.dims, zlib=True, complevel=e["complevel"],
+                                            shuffle=e["shuffle"],
+                                            fill_value=np.array(np.nan, v.dtype) if v.dtype.kind == "f" else False,
+                                            chunksizes=(min(chunk_rows, ny), nx))
+                    var.setncatts(v.attrs)
+            with h5py.File(tmp, "r+") as h5:
+                dsets = {name: h5[name] for name in variables}
+                for a, enc, cnt, s in _blocks_done(tasks, parallel):
+                    for name, data in enc.items():
+                        dsets[name].id.write_direct_chunk((a, 0), data)
+                    counts += cnt
+                    ordered_sums[a] = s
         else:
+            lat = meta_ds["lat"].values if "lat" in meta_ds.coords else None
+            lon = meta_ds["lon"].values if "lon" in meta_ds.coords else None
             with open(tmp, "w", newline="") as fh:
-                first = True
-                for w in range(0, len(blocks), parallel):
-                    window = blocks[w:w + parallel]
-                    for part in _compute_window(result, window):
-                        result_table(part).to_csv(fh, index=False, header=first, float_format="%.4f")
-                        first = False
-                        m = part["mask"].values
-                        counts += [np.sum(m == k) for k in range(len(pl.CLASS_NAMES))]
+                pending = {}
+                nxt = 0
+                for a, enc, cnt, s in _blocks_done(tasks, parallel):
+                    pending[a] = enc
+                    counts += cnt
+                    ordered_sums[a] = s
+                    while nxt < len(rows) and int(starts[nxt]) in pending:  # rows in order
+                        a0, b0 = int(starts[nxt]), int(starts[nxt + 1])
+                        part = xr.Dataset({k: (("y", "x"), v) for k, v in pending.pop(a0).items()},
+                                          coords={"row": ("y", meta["row"][a0:b0]), "col": ("x", meta["col"])})
+                        if lat is not None:
+                            part = part.assign_coords(lat=(("y", "x"), lat[a0:b0]), lon=(("y", "x"), lon[a0:b0]))
+                        result_table(part).to_csv(fh, index=False, header=nxt == 0, float_format="%.4f")
+                        nxt += 1
+        if res.bias_pending:  # one pass: the fit is known now; add it to the file's attributes
+            for a in sorted(ordered_sums):
+                sums += ordered_sums[a]
+            res.bias.update(pl.bias_from_sums({c: sums[i] for i, c in enumerate(res.channels)},
+                                              config["bias"]["min_pixels"]))
+            for b in res.bias.values():
+                b["applied"] = False
+            res.bias_pending = False
+        if fmt == "netcdf":
+            attrs = result_dataset(scene, res, res, config, edits).attrs
+            with netCDF4.Dataset(tmp, "a") as nc:
+                nc.setncatts({k: val for k, val in attrs.items()})
     total = max(counts.sum(), 1)
     return out_path, {name: round(float(c / total), 4) for name, c in zip(pl.CLASS_NAMES, counts)}
 
