@@ -10,12 +10,21 @@
 3. Checks the chunked result against the in-memory one on ``night_front`` → ``matches_in_memory``
    (≤ 1e-6 in every variable).
 
-    python tests/benchmarks/bench_scale.py [--size 4000] [--scaling-size 2000]
+Control for step 2: on a 2-core machine the client and scheduler share the cores with the two
+workers, and other work may be running. Before each 1-worker/2-worker pair the same clear-sky
+kernel work (a fixed number of 2048-column blocks, no Dask) runs in one process and then in
+two processes at once; ``control_efficiency`` = time of one / time of two (1.0 when two cores
+are free for two processes, 0.5 when only one is). The Dask figure cannot beat it; the ratio
+``scaling_vs_control`` says how much of what the machine offered the cluster used. The pair is
+repeated ``--repeats`` times; the reported figures are the medians, every run is printed.
+
+    python tests/benchmarks/bench_scale.py [--size 4000] [--scaling-size 2000] [--repeats 2]
 
 The last line printed is one JSON object.
 """
 import argparse
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -84,6 +93,47 @@ def run_tree(cmd):
     return wall, peak[0]
 
 
+def control_job(blocks):
+    """Clear-sky kernel on ``blocks`` synthetic 2048-column blocks in this process; prints its seconds."""
+    from dashboard import pipeline as pl
+    from dashboard import scale
+    from dashboard.config import absorption_table, load_config
+    from physics.absorption import channel_coefficients
+
+    scale._tune_allocator()  # as the block kernels do
+    cfg = load_config()
+    names = ("3p9um", "8p6um", "11um", "12um")
+    chans = pl.scene_channels(cfg, names)
+    coeffs = channel_coefficients(chans, absorption_table(cfg))
+    rng = np.random.default_rng(0)
+    n = 2048
+    f32 = np.float32
+    t_air = rng.uniform(270, 300, n).astype(f32)
+    args = (t_air, rng.uniform(5, 50, n).astype(f32), np.full(n, 1013.25, f32), t_air + 1,
+            rng.uniform(0, 60, n).astype(f32))
+    emis = np.full((4, n), 0.98, f32)
+    sim_cfg = dict(cfg["simulation"], chunk_pixels=n)
+    t0 = time.perf_counter()
+    for _ in range(blocks):
+        scale._columns(*args, emis, chans, coeffs, sim_cfg, levels=False)
+    print(time.perf_counter() - t0)
+
+
+def process_control(blocks=400):
+    """Time of the fixed kernel work in one process / in each of two processes at once."""
+    cmd = [sys.executable, __file__, "--control-job", str(blocks)]
+
+    def run(k):
+        t0 = time.perf_counter()
+        procs = [subprocess.Popen(cmd, stdout=subprocess.PIPE, text=True) for _ in range(k)]
+        for p in procs:
+            p.communicate()
+        return time.perf_counter() - t0
+
+    one, two = run(1), run(2)
+    return one, two, one / two
+
+
 def matches_in_memory():
     import dask
 
@@ -113,32 +163,61 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--size", type=int, default=4000)
     ap.add_argument("--scaling-size", type=int, default=2000)
+    ap.add_argument("--repeats", type=int, default=2)
+    ap.add_argument("--skip-big", action="store_true", help="only the scaling part")
+    ap.add_argument("--control-job", type=int, default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
+    if args.control_job is not None:
+        control_job(args.control_job)
+        return
     exe = str(Path(sys.executable).with_name("cloudsieve"))
     result = {}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        big = tmp / "big.nc"
-        t = time.perf_counter()
-        write_tiled(args.size, big)
-        print(f"wrote {args.size} × {args.size} scene ({big.stat().st_size / 2**20:.0f} MB) in {time.perf_counter() - t:.0f} s")
-        wall, peak = run_tree([exe, "screen", str(big), "--out", str(tmp / "big_mask.nc"), "--chunks", "256", "--quiet"])
-        n = args.size**2
-        print(f"{args.size}²: {wall:.1f} s, {n / wall:,.0f} pixels/s, peak RSS of the process tree {peak:.0f} MB "
-              "(target ≤ 4096)")
-        result.update(peak_rss_mb=round(peak), big_pixels=n, big_wall_s=round(wall, 1))
+        if not args.skip_big:
+            big = tmp / "big.nc"
+            t = time.perf_counter()
+            write_tiled(args.size, big)
+            print(f"wrote {args.size} × {args.size} scene ({big.stat().st_size / 2**20:.0f} MB) in "
+                  f"{time.perf_counter() - t:.0f} s")
+            wall, peak = run_tree([exe, "screen", str(big), "--out", str(tmp / "big_mask.nc"), "--chunks", "256",
+                                   "--quiet"])
+            big.unlink()
+            n = args.size**2
+            print(f"{args.size}²: {wall:.1f} s, {n / wall:,.0f} pixels/s, peak RSS of the process tree {peak:.0f} MB "
+                  "(target ≤ 4096)")
+            result.update(peak_rss_mb=round(peak), big_pixels=n, big_wall_s=round(wall, 1))
         mid = tmp / "mid.nc"
         write_tiled(args.scaling_size, mid)
         m = args.scaling_size**2
-        rates = {}
-        for workers in (1, 2):
-            wall, peak = run_tree([exe, "screen", str(mid), "--out", str(tmp / f"mid_{workers}.nc"),
-                                   "--workers", str(workers), "--chunks", "200", "--quiet"])
-            rates[workers] = m / wall
-            print(f"{args.scaling_size}² with {workers} worker(s): {wall:.1f} s, {m / wall:,.0f} pixels/s, "
-                  f"peak {peak:.0f} MB")
-        result.update(pixels_per_s_1worker=round(rates[1]), pixels_per_s_2workers=round(rates[2]),
-                      scaling_efficiency=round(rates[2] / (2 * rates[1]), 3))
+        runs = []
+        for rep in range(args.repeats):
+            one, two, ctrl = process_control()
+            print(f"control {rep + 1}: kernel work {one:.1f} s in one process, {two:.1f} s in each of two at once "
+                  f"-> control efficiency {ctrl:.2f}")
+            rates = {}
+            for workers in (1, 2):
+                wall, peak = run_tree([exe, "screen", str(mid), "--out", str(tmp / f"mid_{workers}.nc"),
+                                       "--workers", str(workers), "--chunks", "200", "--quiet"])
+                rates[workers] = m / wall
+                print(f"{args.scaling_size}² with {workers} worker(s): {wall:.1f} s, {m / wall:,.0f} pixels/s, "
+                      f"peak {peak:.0f} MB")
+            eff = rates[2] / (2 * rates[1])
+            print(f"run {rep + 1}: scaling efficiency {eff:.2f} (control {ctrl:.2f}, ratio {eff / ctrl:.2f}); "
+                  f"load average {os.getloadavg()[0]:.1f}")
+            runs.append({"pixels_per_s_1worker": rates[1], "pixels_per_s_2workers": rates[2],
+                         "scaling_efficiency": eff, "control_efficiency": ctrl})
+
+        def med(key):
+            return float(np.median([r[key] for r in runs]))
+
+        result.update(pixels_per_s_1worker=round(med("pixels_per_s_1worker")),
+                      pixels_per_s_2workers=round(med("pixels_per_s_2workers")),
+                      scaling_efficiency=round(med("scaling_efficiency"), 3),
+                      control_efficiency=round(med("control_efficiency"), 3),
+                      scaling_vs_control=round(float(np.median([r["scaling_efficiency"] / r["control_efficiency"]
+                                                                for r in runs])), 3),
+                      scaling_runs=[{k: round(v, 3) for k, v in r.items()} for r in runs])
     same, worst = matches_in_memory()
     print(f"chunked vs in-memory on night_front: largest difference {worst:.2e} (≤ 1e-6 required)")
     result.update(matches_in_memory=bool(same), max_abs_difference=worst)
