@@ -83,13 +83,18 @@ def result_dataset(scene, sim, res, config, edits=None):
     if cl is not None:
         for k, ch in enumerate(cl.channels):
             put(f"cloud_emissivity_{ch}", cl.emissivity[k],
-                {"long_name": f"slant emissivity of a single grey cloud layer, {ch}", "units": "1"})
+                {"long_name": f"emissivity of channel {ch} at the retrieved cloud top, unclipped: "
+                              f"(L_obs - L_clear)/(L_opaque - L_clear); departures from cloud_emissivity "
+                              f"show noise or a cloud that is not grey", "units": "1"})
         ref = config["cloud"]["reference_channel"]
         k_ref = cl.channels.index(ref) if ref in cl.channels else 0
-        put("cloud_emissivity", cl.emissivity[k_ref],
-            {"long_name": f"slant emissivity of a single grey cloud layer ({cl.channels[k_ref]})", "units": "1"})
+        put("cloud_emissivity", np.clip(cl.emissivity[k_ref], 0.0, 1.0),
+            {"long_name": f"slant emissivity of the single grey cloud layer ({cl.channels[k_ref]}), clipped to "
+                          f"[0, 1]; 1 where inversion_status is opaque (cloud_optical_depth then a lower bound)",
+             "units": "1"})
         put("cloud_optical_depth", cl.optical_depth,
-            {"long_name": "vertical infrared absorption optical depth of a single grey cloud layer", "units": "1"})
+            {"long_name": "vertical infrared absorption optical depth of a single grey cloud layer "
+                          "(a lower bound where inversion_status is opaque)", "units": "1"})
         put("cloud_optical_depth_uncertainty", cl.optical_depth_sigma,
             {"long_name": "1-sigma uncertainty of cloud_optical_depth (inf: opaque, lower bound)", "units": "1"})
         put("cloud_extinction_optical_depth", cl.extinction_optical_depth,

@@ -20,12 +20,13 @@ Cloud-top choices
 -----------------
 fixed   a pressure given by the user;
 opaque  the level where L_opq equals the observation in a reference channel: the cloud-top
-        pressure of a thick (ε = 1) cloud;
+        pressure of a thick (ε = 1) cloud. The reference channel is black there by
+        construction, so such pixels get status ``opaque`` and τ only as a lower bound;
 grey    the level where two window channels give the same emissivity, i.e. where the ratio
         of their cloud signals equals the ratio of (L_opq − L_clr): the radiance-ratio idea
         of Smith & Platt (1978) and Menzel et al. (1983), applied to a grey cloud. Where that
         two-channel problem is ill-conditioned (no crossing, or a top-pressure uncertainty
-        beyond a limit), the opaque level is used instead.
+        beyond a limit), the opaque level is used instead (status ``opaque``).
 
 Beyond absorption: scattering reduces the infrared extinction that absorption sees. The
 similarity relation τ_abs ≈ (1 − ω₀ g) τ_ext (van de Hulst 1974, J. Atmos. Sci. 31, 2077;
@@ -356,8 +357,13 @@ def invert_grey_cloud(
         if fixed_pressure is None:
             raise ValueError("method 'fixed' needs fixed_pressure [hPa]")
         p_top = np.broadcast_to(np.asarray(fixed_pressure, dtype=float), shape).copy()
+        placed_opaque = np.zeros(shape, bool)
     elif method in ("opaque", "grey"):
-        p_top, _ = opaque_top_pressure(obs[..., reference], lo[..., reference], lp, top_limit)
+        p_top, found = opaque_top_pressure(obs[..., reference], lo[..., reference], lp, top_limit)
+        # where the opaque top holds, the reference channel is black there by construction:
+        # the observation then bounds τ from below and says nothing more about it (the other
+        # channels' emissivities at that top measure non-greyness, not optical depth)
+        placed_opaque = found
         if method == "grey":
             i, j = pair
             sig_signal = np.hypot(s_obs, s_clr)
@@ -366,6 +372,7 @@ def invert_grey_cloud(
                 max_sigma_pressure,
             )
             p_top = np.where(ok, p_grey, p_top)
+            placed_opaque = found & ~ok
     else:
         raise ValueError(f"unknown cloud-top method {method!r}; use 'fixed', 'opaque' or 'grey'")
     p_top = np.clip(p_top, lp[..., -1], lp[..., 0])
@@ -395,7 +402,7 @@ def invert_grey_cloud(
     status = np.full(shape, STATUS_INVERTED, dtype=np.int8)
     any_cond = conditioned.any(axis=-1)
     all_opaque = (opaque_ch | beyond_ch | ~conditioned).all(axis=-1) & (opaque_ch.any(axis=-1))
-    status = np.where(all_opaque, STATUS_OPAQUE, status)
+    status = np.where(all_opaque | (placed_opaque & conditioned[..., reference]), STATUS_OPAQUE, status)
     status = np.where((n_valid == 0) & beyond_ch.any(axis=-1) & ~opaque_ch.any(axis=-1), STATUS_BEYOND_OPAQUE, status)
     status = np.where((n_valid == 0) & warmer_ch.any(axis=-1) & ~opaque_ch.any(axis=-1)
                       & ~beyond_ch.any(axis=-1), STATUS_WARMER_THAN_CLEAR, status)
