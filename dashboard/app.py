@@ -23,7 +23,7 @@ from . import CAUTION, __version__
 from . import pipeline as pl
 from .config import config_json, load_config
 from .errors import CloudsieveError, PathError, SceneError
-from .model import ScreeningModel
+from .model import ScreeningModel, compact_scene
 from .scene import load_scene
 from .views import (ClassCounts, Diagnostics, ExportPanel, Focus, MapGrid, Notices, PixelInspector, QAPanel,
                     TuningPanel)
@@ -110,7 +110,7 @@ def load_cached(path, config):
         if key in _CACHE:
             _CACHE.move_to_end(key)
             return _CACHE[key]
-        scene = load_scene(path, config=config)
+        scene = compact_scene(load_scene(path, config=config))  # large scenes: float32 where lossless
         sim = pl.simulate(scene, config)
         _CACHE[key] = (scene, sim)
         while len(_CACHE) > _CACHE_SIZE:

@@ -58,6 +58,7 @@ class ScreeningModel(param.Parameterized):
         """``sim``: a Simulation of this scene under this configuration, to reuse (the
         dashboard caches one per file); computed when omitted."""
         super().__init__(**params)
+        compact_scene(scene)
         self.scene = scene
         self.config = copy.deepcopy(config) if config is not None else load_config()
         cc = self.config["cloud"]
@@ -72,6 +73,8 @@ class ScreeningModel(param.Parameterized):
         if self.journal is not None and self.journal.problems:
             self.message = "; ".join(self.journal.problems)
         self.sim = sim if sim is not None else pl.simulate(scene, self.config)
+        #: large scene: no level data kept (pipeline.LEVELS_PIXEL_LIMIT); results held in float32
+        self.lean = self.sim.level_pressure is None
         self._cloud = None
         self._cloud_key = None
         self._screen_cache = {}  # threshold-independent screening arrays of this scene (pipeline.screen)
@@ -142,6 +145,8 @@ class ScreeningModel(param.Parameterized):
             self._cloud = pl.invert_all(self.scene, self.sim, cfg,
                                         {c: (b["a"], b["b"]) for c, b in bias_applied.items()} if bias_applied else None,
                                         only=only)
+            if self.lean:
+                self._cloud = _cloud_f32(self._cloud)
             self._cloud_key = key
             self.timings["invert_s"] = time.perf_counter() - t0
         return self._cloud
@@ -155,6 +160,9 @@ class ScreeningModel(param.Parameterized):
             res = pl.screen(self.scene, self.sim, cfg, edits=edits, cloud=_PENDING, cache=self._screen_cache)
             bias_applied = {c: b for c, b in res.bias.items() if b.get("applied")}
             res.cloud = pl.mask_cloud_layer(self._cloud_layer(cfg, bias_applied, res.mask), res.mask)
+            if self.lean:  # exports write float32 anyway; the departures and σ stay shared with the cache
+                res.margins = {t: m.astype(np.float32) for t, m in res.margins.items()}
+                res.thresholds = {t: np.asarray(v).astype(np.float32) for t, v in res.thresholds.items()}
             self.result = res
             self.timings["screen_s"] = time.perf_counter() - t0
             self.version += 1
@@ -288,6 +296,41 @@ class ScreeningModel(param.Parameterized):
             out["model"][ch] = chan.brightness_temperature(rad).tolist()
             out["observed"][ch] = _num(self.scene.data[f"bt_{ch}"].values[row, col])
         return out
+
+
+def compact_scene(scene):
+    """Large scenes (lean mode): hold float64 scene variables as float32 where that loses nothing.
+
+    Scene files store float32 brightness temperatures and background fields; the loader
+    widens them to float64, which for a 4000 × 4000 scene costs 750 MB more. Each variable
+    (and lat/lon) is narrowed only if every value survives the round trip, so results and
+    exports do not change. Small scenes are left alone. Idempotent; the dashboard shares a
+    scene between sessions, which is safe because nothing else changes.
+    """
+    ds = scene.data
+    if ds.sizes.get("y", 0) * ds.sizes.get("x", 0) <= pl.LEVELS_PIXEL_LIMIT:
+        return scene
+    for name in list(ds.data_vars) + [c for c in ("lat", "lon") if c in ds.coords]:
+        v = ds[name]
+        if v.dtype != np.float64:
+            continue
+        narrow = v.values.astype(np.float32)
+        with np.errstate(invalid="ignore"):
+            same = np.array_equal(narrow.astype(np.float64), v.values, equal_nan=True)
+        if same:
+            if name in ds.coords:
+                ds.coords[name] = (v.dims, narrow, v.attrs)
+            else:
+                ds[name] = (v.dims, narrow, v.attrs)
+    return scene
+
+
+def _cloud_f32(cloud):
+    """The cloud layer with its float arrays in float32 (what the exports write)."""
+    f = lambda a: np.asarray(a).astype(np.float32) if np.asarray(a).dtype.kind == "f" else a  # noqa: E731
+    return pl.CloudLayer(f(cloud.emissivity), f(cloud.optical_depth), f(cloud.optical_depth_sigma),
+                         f(cloud.extinction_optical_depth), f(cloud.top_pressure), f(cloud.top_temperature),
+                         cloud.status, cloud.uncertain, cloud.channels, cloud.method, list(cloud.notes))
 
 
 def _num(v):
