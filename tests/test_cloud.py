@@ -108,6 +108,22 @@ def test_round_trip_opaque_limit(columns):
     assert np.all(np.isinf(r.optical_depth_sigma))
 
 
+def test_opaque_top_of_a_thin_cloud_gives_only_a_lower_bound(columns):
+    """A semi-transparent cloud placed by the opaque method: its reference channel is black at
+    that (too low) top by construction, so the pixel is opaque with τ a lower bound — never an
+    'inverted' τ taken from the other channels' ratios at the wrong top (model consistency)."""
+    chans, prof, sky, mu = columns
+    obs = _observe(columns, np.full(TAUS.size, 300.0))  # thin to thick grey clouds at 300 hPa
+    r = _invert(columns, obs, "opaque")
+    assert np.all(r.top_pressure > 300.0)  # a black cloud explaining 11 µm sits lower
+    assert np.all(r.status == pc.STATUS_OPAQUE)
+    np.testing.assert_allclose(r.emissivity[:, 1], 1.0, atol=1e-6)
+    np.testing.assert_allclose(r.optical_depth, -mu * np.log(1 - 0.99))
+    # the grey top of the same observations recovers τ (where it is well conditioned)
+    g = _invert(columns, obs, "grey")
+    assert (g.status == pc.STATUS_INVERTED).any()
+
+
 def test_mu_dependence(columns):
     """The same vertical τ seen more obliquely has a larger slant emissivity; τ is recovered."""
     chans, prof, sky, mu = columns
