@@ -23,7 +23,7 @@ from physics import cloud as pcloud
 from . import pipeline as pl
 from .config import SURFACES, TOP_METHODS, load_config, merge_config
 from .export import result_dataset, result_table, write_result
-from .journal import Journal, journal_path
+from .journal import Journal, StaleEditsError, journal_path
 from .scene import load_scene
 
 #: per test: (config key of the tunable threshold, unit label)
@@ -157,6 +157,7 @@ class ScreeningModel(param.Parameterized):
             t0 = time.perf_counter()
             cfg = self.effective_config()
             edits = self.journal.active() if self.journal is not None else []
+            self._shown_latest_edit = edits[-1]["id"] if edits else None
             res = pl.screen(self.scene, self.sim, cfg, edits=edits, cloud=_PENDING, cache=self._screen_cache)
             bias_applied = {c: b for c, b in res.bias.items() if b.get("applied")}
             res.cloud = pl.mask_cloud_layer(self._cloud_layer(cfg, bias_applied, res.mask), res.mask)
@@ -177,7 +178,14 @@ class ScreeningModel(param.Parameterized):
         return entry
 
     def undo(self):
-        entry = self.journal.undo()
+        """Undo the latest edit in force — the one this model last showed. If another session
+        changed the scene's edits meanwhile, rescreen with them and raise StaleEditsError
+        (nothing undone)."""
+        try:
+            entry = self.journal.undo(expected=self._shown_latest_edit)
+        except StaleEditsError:
+            self._update()
+            raise
         self._update()
         return entry
 

@@ -174,6 +174,24 @@ def test_two_sessions_on_one_scene_keep_journal_ids_unique(scene_path):
     assert [e["id"] for e in ScreeningModel.open(scene_path).journal.active()] == [ea["id"]]
 
 
+def test_undo_never_cancels_an_edit_the_session_has_not_seen(scene_path):
+    from dashboard.journal import StaleEditsError
+
+    a = ScreeningModel.open(scene_path)
+    b = ScreeningModel.open(scene_path)
+    eb = b.mark("clear", [10, 11])
+    ea = a.mark("cloud", [0, 1, 2])  # b's page does not show this edit yet
+    with pytest.raises(StaleEditsError, match="another session"):
+        b.undo()
+    # nothing was undone, and b now shows both edits ...
+    assert [e["id"] for e in b.journal.active()] == [eb["id"], ea["id"]]
+    assert b.result.mask.ravel()[0] == pl.CLOUD
+    # ... so a second undo, informed, cancels the latest one
+    assert b.undo()["id"] == ea["id"]
+    with pytest.raises(StaleEditsError):  # a's view is now stale in turn
+        a.undo()
+
+
 def test_label_scores_against_the_analyst_labels(model):
     cloudy = _pixels_of(model, pl.CLOUD, 50, seed=3)
     clear = _pixels_of(model, pl.CLEAR, 60, seed=4)

@@ -7,6 +7,7 @@ import numpy as np
 import panel as pn
 from panel.viewable import Viewer
 
+from ..journal import StaleEditsError
 from .style import TEST_LABELS
 
 
@@ -66,7 +67,11 @@ class QAPanel(Viewer):
         return cb
 
     def _undo(self, _event=None):
-        entry = self.model.undo()
+        try:
+            entry = self.model.undo()
+        except StaleEditsError as exc:
+            self.notices.show(f"Nothing undone: {exc}.", "warning")
+            return
         if entry is None:
             self.notices.show("Nothing to undo: no edits in force.", "info")
         else:
