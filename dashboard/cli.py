@@ -36,7 +36,7 @@ Typical use:
   cloudsieve check  scene.csv                      validate a scene, list every problem
   cloudsieve screen scene.nc --out mask.nc         mask + cloud layer (CSV or CF-NetCDF)
   cloudsieve simulate scene.csv --out clear.nc     clear-sky brightness temperatures only
-  cloudsieve serve                                 open the dashboard on a sample scene
+  cloudsieve serve                                 serve the dashboard on a sample scene
   cloudsieve config --show > my.toml               start a configuration of your own
 """
 
@@ -91,13 +91,14 @@ def build_parser():
 
     m = sub.add_parser("simulate", help="write clear-sky brightness temperatures and departures only",
                        description="Simulate the clear-sky brightness temperature of every pixel and channel.")
-    m.add_argument("scene", metavar="SCENE")
+    m.add_argument("scene", metavar="SCENE", help="scene file: .csv, .parquet or .nc")
     m.add_argument("--out", required=True, metavar="PATH", help="output file (.nc or .csv)")
-    m.add_argument("--config", metavar="FILE")
-    m.add_argument("--format", choices=("csv", "netcdf"))
+    m.add_argument("--config", metavar="FILE", help="TOML configuration overriding the defaults")
+    m.add_argument("--format", choices=("csv", "netcdf"), help="output format (default: from the --out extension)")
 
-    v = sub.add_parser("serve", help="start the dashboard in your browser (127.0.0.1)",
-                       description="Serve the dashboard. With no scene it opens the bundled sample scene.")
+    v = sub.add_parser("serve", help="serve the dashboard on 127.0.0.1; open the address it prints in a browser",
+                       description="Serve the dashboard and print its address (open it in a browser, or pass "
+                                   "--show). With no scene it opens the bundled sample scene.")
     v.add_argument("scenes", nargs="*", metavar="SCENE", help="scene file(s) to open")
     v.add_argument("--data-dir", metavar="DIR", help="folder whose scene files the scene picker lists "
                                                       "(default: the bundled sample scenes)")
@@ -105,9 +106,10 @@ def build_parser():
     v.add_argument("--address", default="127.0.0.1", help="address to bind (default 127.0.0.1, this machine only)")
     v.add_argument("--allow-websocket-origin", action="append", default=[], metavar="HOST:PORT",
                    help="origins allowed to connect; required when --address is not 127.0.0.1/localhost")
-    v.add_argument("--config", metavar="FILE")
-    v.add_argument("--show", action="store_true", help="open a browser tab")
-    v.add_argument("--max-upload-mb", type=float, default=200.0, help="largest scene upload accepted (MB)")
+    v.add_argument("--config", metavar="FILE", help="TOML configuration overriding the defaults")
+    v.add_argument("--show", action="store_true", help="also open a browser tab")
+    v.add_argument("--max-upload-mb", type=float, default=200.0,
+                   help="largest scene upload accepted, in MB (default 200)")
     v.add_argument("--basic-auth", metavar="PASSWORD_OR_FILE",
                    help="require a login (Panel's basic authentication): one password, or a JSON file of "
                         "{user: password}; also read from CLOUDSIEVE_BASIC_AUTH")
@@ -122,16 +124,39 @@ def build_parser():
 
 
 def _expand(patterns):
+    """Scene files of the arguments; patterns skip the sample scenes' truth files (say so)."""
     files = []
     for pat in patterns:
         if any(ch in pat for ch in "*?["):
             hits = sorted(glob.glob(pat))
             if not hits:
                 raise SceneError(f"no files match '{pat}'; check the folder and the pattern")
-            files += hits
+            truth = [h for h in hits if Path(h).stem.endswith("_truth")]
+            if truth:  # a warning, printed even with --quiet
+                print(f"cloudsieve: skipping {len(truth)} truth file(s) of sample scenes matched by '{pat}' "
+                      f"(they hold the answers for skill tests, not scenes): "
+                      + ", ".join(Path(t).name for t in truth), file=sys.stderr)
+            files += [h for h in hits if h not in truth]
         else:
             files.append(pat)
+    if not files:
+        raise SceneError("no scene files left to screen (the pattern matched only truth files)")
     return files
+
+
+_FORMAT_OF_SUFFIX = {".nc": "netcdf", ".nc4": "netcdf", ".netcdf": "netcdf", ".csv": "csv"}
+
+
+def _output_format(out, fmt):
+    """The format of a single output file from --format and the file name; they must agree."""
+    by_name = _FORMAT_OF_SUFFIX.get(Path(out).suffix.lower())
+    if fmt and by_name and fmt != by_name:
+        raise SceneError(f"--format {fmt} but --out '{out}' ends in {Path(out).suffix}; make them agree "
+                         f"(e.g. --out {Path(out).with_suffix('.nc' if fmt == 'netcdf' else '.csv')})")
+    if not fmt and not by_name:
+        raise SceneError(f"cannot tell the output format from '{Path(out).name}'; end --out in .nc (CF-NetCDF) "
+                         f"or .csv, or give --format netcdf|csv")
+    return fmt or by_name
 
 
 def _progress(enabled, total, desc):
@@ -221,7 +246,10 @@ def cmd_screen(args):
     cfg = load_config(args.config)
     files = _expand(args.scenes)
     out = Path(args.out)
-    many = len(files) > 1 or out.is_dir()
+    pattern = any(ch in a for a in args.scenes for ch in "*?[")  # a pattern means an archive: --out is a folder
+    many = len(files) > 1 or out.is_dir() or pattern
+    if not many:
+        args.format = _output_format(out, args.format)
     if many:
         if out.exists() and not out.is_dir():
             raise SceneError(f"several scenes need --out to be a folder; '{out}' is a file")
@@ -356,11 +384,12 @@ def cmd_simulate(args):
     from .scene import load_scene
 
     cfg = load_config(args.config)
+    fmt = _output_format(args.out, args.format)
     scene = load_scene(args.scene, config=cfg)
     sim = pl.simulate(scene, cfg, levels=False)
-    write_simulation(scene, sim, args.out, args.format)
+    write_simulation(scene, sim, args.out, fmt)
     print(f"clear-sky simulation of {scene.name} ({len(sim.channels)} channel(s), "
-          f"{sim.valid_index.size} pixels, {sim.seconds:.1f} s) written to {args.out}")
+          f"{sim.valid_index.size:,} pixels, {sim.seconds:.2f} s) written to {args.out}")
     return EXIT_OK
 
 
@@ -383,6 +412,12 @@ def main(argv=None):
     except CloudsieveError as exc:
         print(f"cloudsieve: {exc}", file=sys.stderr)
         return exc.exit_code
+    except BrokenPipeError:
+        # the reader of our output stopped early (e.g. `cloudsieve config --show | head`): not an
+        # error; keep Python from complaining again when it flushes stdout at exit
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
     except KeyboardInterrupt:
         print("cloudsieve: interrupted; no partial output was left under a final name", file=sys.stderr)
         return EXIT_INTERRUPTED

@@ -6,6 +6,7 @@ lists every problem with what to do. The absorption coefficients (``physics/data
 can be overridden in an ``[absorption]`` table of the same layout.
 """
 import copy
+import difflib
 import json
 import tomllib
 from importlib import resources
@@ -50,6 +51,7 @@ def _merge(base, override, path, problems):
                 base[key] = value
                 continue
             close = [k for k in base if k.lower() == key.lower() or k.replace("_", "") == key.replace("_", "")]
+            close = close or difflib.get_close_matches(key, [str(k) for k in base], n=1, cutoff=0.75)
             hint = f" Did you mean '{'.'.join(path + (close[0],))}'?" if close else ""
             problems.append(f"unknown key '{dotted}'.{hint} Remove it or check the spelling against the defaults "
                             "(`cloudsieve config --show` prints them).")

@@ -196,7 +196,28 @@ def _sweep_stale_parts(folder, name):
                 pass
 
 
+def _umask():
+    """The process umask, read without changing it (Linux /proc), else by a set-and-restore."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _commit(tmp, path):
+    # a temporary file is private (0600); the result gets the mode a new file would get
+    # (0666 less the umask), or keeps the mode of the file it replaces
+    try:
+        mode = path.stat().st_mode & 0o777
+    except FileNotFoundError:
+        mode = 0o666 & ~_umask()
+    os.chmod(tmp, mode)
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
     os.replace(tmp, path)

@@ -381,6 +381,15 @@ def _grid_from_netcdf(path, report):
 _CH_RE = re.compile(r"^(bt|bt_clear|emis)_(.+)$")
 
 
+def is_truth_table(names):
+    """True for the truth files of the sample scenes (``*_true`` fields and a cloud fraction,
+    but no observed channel of their own)."""
+    names = [str(n) for n in names]
+    has_true = any(n.endswith("_true") for n in names)
+    observed = any(n.startswith("bt_") and not n.endswith("_true") for n in names)
+    return has_true and "cloud_fraction" in names and not observed
+
+
 def _validate_grid(grid, known_channels, report):
     names = [k for k in grid if not k.startswith("_")]
     n_inf = 0
@@ -585,6 +594,12 @@ def check_scene(path, channels=None, config=None):
     if built is None:
         return Scene(None, (), report, path, path.stem)
     grid, rows, cols = built
+    if is_truth_table(grid):
+        stem = path.stem[:-len("_truth")] if path.stem.endswith("_truth") else None
+        raise SceneError(
+            f"'{path.name}' holds the truth of a sample scene (cloud fraction, optical depth, true background), "
+            f"for skill tests; it is not a scene to screen"
+            + (f" — screen '{stem}{path.suffix}' instead" if stem else "") + ".")
     chans = _validate_grid(grid, known, report)
     report.channels = chans
     report.shape = (len(rows), len(cols))

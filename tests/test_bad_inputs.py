@@ -163,7 +163,7 @@ def test_nan_and_inf_cells_become_no_data(tmp_path, capsys):
 
 CONFIG_CASES = [
     ("config with wrong type", "[tests.texture]\nwindow = \"big\"\n", ["tests.texture.window", "must be"]),
-    ("config with unknown key", "[tests.texture]\ntreshold = 1.0\n", ["unknown key", "treshold"]),
+    ("config with unknown key", "[tests.texture]\ntreshold = 1.0\n", ["unknown key", "treshold", "Did you mean 'tests.texture.threshold'"]),
     ("config unknown table", "[screning]\nmarginal_fraction = 0.2\n", ["unknown key 'screning'"]),
     ("config not TOML", "this is = = not toml", ["not valid TOML"]),
     ("config impossible value", "[cloud]\ntop = \"sideways\"\n", ["cloud.top", "fixed, opaque, grey"]),

@@ -106,3 +106,38 @@ def test_qa_journal_applied_by_cli(tmp_path):
     df = pd.read_csv(tmp_path / "m.csv")
     assert (df["mask"].iloc[:3] == "cloud").all()
     assert main(["screen", str(scene), "--out", str(tmp_path / "n.csv"), "--quiet", "--no-edits"]) == 0
+
+
+def test_a_reader_that_stops_early_is_not_an_error():
+    # `cloudsieve config --show | head -1`: the pipe closes under us (common Unix practice:
+    # the writer stops quietly)
+    proc = subprocess.Popen([str(EXE), "config", "--show"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()  # nobody reads: the first write breaks the pipe
+    err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) == 0
+    assert "internal error" not in err and "Traceback" not in err
+
+
+def test_format_and_file_name_must_agree(tmp_path):
+    out = run("screen", SMALL, "--out", tmp_path / "x.csv", "--format", "netcdf", "--quiet")
+    assert out.returncode == 2 and "make them agree" in out.stderr
+    out = run("screen", SMALL, "--out", tmp_path / "x.txt", "--quiet")
+    assert out.returncode == 2 and "cannot tell the output format" in out.stderr
+    assert not list(tmp_path.iterdir())
+    out = run("simulate", SMALL, "--out", tmp_path / "c.csv", "--format", "netcdf")
+    assert out.returncode == 2 and "make them agree" in out.stderr
+
+
+def test_patterns_skip_truth_files_and_say_so(tmp_path):
+    data = tmp_path / "scenes"
+    data.mkdir()
+    for name in ("polar_ice.nc", "polar_ice_truth.nc"):
+        (data / name).write_bytes((SAMPLES / name).read_bytes())
+    out = run("screen", str(data / "*.nc"), "--out", tmp_path / "out", "--quiet")
+    assert out.returncode == 0, out.stderr
+    assert "skipping 1 truth file" in out.stderr
+    assert [p.name for p in (tmp_path / "out").iterdir()] == ["polar_ice_mask.nc"]
+    # named explicitly, a truth file is refused with what to do instead
+    out = run("check", data / "polar_ice_truth.nc")
+    assert out.returncode == 2 and "truth of a sample scene" in out.stdout + out.stderr
+    assert "polar_ice.nc" in out.stdout + out.stderr

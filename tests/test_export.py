@@ -92,3 +92,24 @@ def test_interrupted_write_leaves_old_file(tmp_path, result, monkeypatch):
 def test_missing_output_folder(tmp_path, result):
     with pytest.raises(export.OutputError, match="does not exist"):
         export.write_netcdf(result, tmp_path / "nope" / "mask.nc")
+
+
+def test_outputs_get_the_usual_file_mode_not_the_temporary_ones(tmp_path):
+    # mkstemp makes private 0600 files; a result must be readable as any new file would be
+    # (0666 less the umask, POSIX), and a replaced file keeps its mode
+    import os
+    import stat
+
+    from dashboard.export import atomic_write
+
+    old = os.umask(0o022)
+    try:
+        with atomic_write(tmp_path / "a.csv") as tmp:
+            tmp.write_text("x\n")
+        assert stat.S_IMODE((tmp_path / "a.csv").stat().st_mode) == 0o644
+        (tmp_path / "a.csv").chmod(0o640)
+        with atomic_write(tmp_path / "a.csv") as tmp:
+            tmp.write_text("y\n")
+        assert stat.S_IMODE((tmp_path / "a.csv").stat().st_mode) == 0o640
+    finally:
+        os.umask(old)
