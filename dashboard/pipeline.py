@@ -628,7 +628,11 @@ def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=No
     else:
         thr = per_surface(t["threshold"], codes) + per_surface(t["per_path"], codes) * path
         m = -(departure["3p9um"] - departure["11um"]) - thr
-        margins["night_fog_contrast"] = np.where(night, m, np.nan)
+        # fog and low water cloud have tops near the surface temperature; a pixel much colder
+        # than clear at 11 µm is a high (often ice) cloud, for which a 3.9 µm deficit is no
+        # fog signature (the cold-departure test classes it): not applicable there
+        low = departure["11um"] >= -per_surface(t["max_cold_11um"], codes)
+        margins["night_fog_contrast"] = np.where(night & low, m, np.nan)
         thresholds["night_fog_contrast"] = -thr
     if "3p9um" in departure and day_any:
         notes.append("3.9 µm not used on daylight pixels: by day it carries reflected sunlight that the "

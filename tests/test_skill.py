@@ -65,3 +65,22 @@ def test_daylight_scene_skips_night_only_test(screened):
         assert "split_window_excess" not in model.result.skipped
     else:
         assert model.result.skipped == {}
+
+
+def test_night_fog_contrast_means_low_cloud():
+    """The fog test's bit is read as "fog or low water cloud": on the night scene it fires on
+    the invented fog patch and never on cold high cloud (truth top colder than 260 K)."""
+    model = ScreeningModel.open(SAMPLES / "night_front.nc", load_config(), journal=False)
+    truth = xr.open_dataset(SAMPLES / "night_front_truth.nc")
+    fired = np.nan_to_num(model.result.margins["night_fog_contrast"], nan=-1.0) > 0
+    top_t = truth["cloud_top_temperature"].values
+    cold_high = (truth["cloud_fraction"].values > 0) & (top_t < 260.0)
+    assert cold_high.sum() > 500
+    assert not fired[cold_high].any()
+    meanings = truth["cloud_feature"].attrs["flag_meanings"].split()
+    fog = truth["cloud_feature"].values == meanings.index("fog_low_stratus")
+    thick_fog = fog & (truth["cloud_fraction"].values >= 0.5) & (truth["cloud_optical_depth"].values >= 1.0)
+    assert thick_fog.sum() > 200
+    hit = fired[thick_fog].mean()
+    print(f"night_fog_contrast: fires on {hit:.3f} of thick fog pixels, on {fired[cold_high].mean():.3f} of cold high cloud")
+    assert hit >= 0.8
