@@ -60,6 +60,11 @@ class Problem:
         return f"{self.severity.upper()}: {self.what} → {self.fix}"
 
 
+def _count(n, noun):
+    """'1 pixel', '2 pixels' (with thousands separators)."""
+    return f"{n:,} {noun}" + ("" if n == 1 else "s")
+
+
 @dataclass
 class Report:
     """Everything the validation found in a scene."""
@@ -92,10 +97,11 @@ class Report:
     def text(self):
         head = f"Scene {self.source}: "
         if self.ok:
-            head += (f"usable. {self.shape[0]} × {self.shape[1]} grid, {self.n_pixels} pixels, channels "
-                     f"{', '.join(self.channels) or 'none'}; {self.n_no_data} pixels without complete data (no_data).")
+            head += (f"usable. {self.shape[0]} × {self.shape[1]} grid, {self.n_pixels:,} pixels, channels "
+                     f"{', '.join(self.channels) or 'none'}; {_count(self.n_no_data, 'pixel')} without complete "
+                     f"data (no_data).")
         else:
-            head += f"NOT usable: {len(self.errors)} error(s) to fix."
+            head += f"NOT usable: {_count(len(self.errors), 'error')} to fix."
         lines = [head]
         for p in self.errors + self.warnings:
             lines.append(f"  {p}")
