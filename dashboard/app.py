@@ -110,7 +110,7 @@ def load_cached(path, config):
         if key in _CACHE:
             _CACHE.move_to_end(key)
             return _CACHE[key]
-        scene = compact_scene(load_scene(path, config=config))  # large scenes: float32 where lossless
+        scene = compact_scene(load_scene(path, config=config))  # large scenes: lat/lon in float32 where lossless
         sim = pl.simulate(scene, config)
         _CACHE[key] = (scene, sim)
         while len(_CACHE) > _CACHE_SIZE:

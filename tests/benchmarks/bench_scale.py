@@ -10,6 +10,10 @@
 3. Checks the chunked result against the in-memory one on ``night_front`` → ``matches_in_memory``
    (≤ 1e-6 in every variable).
 
+Each run also reports the cores its own process tree used and the cores every other process
+used meanwhile (``other_cores``, from /proc/stat): a 2-worker run during which other work took
+half a core cannot reach 0.7 on a 2-core machine.
+
 Control for step 2: on a 2-core machine the client and scheduler share the cores with the two
 workers, and other work may be running. Before each 1-worker/2-worker pair the same clear-sky
 kernel work (a fixed number of 2048-column blocks, no Dask) runs in one process and then in
@@ -25,6 +29,7 @@ The last line printed is one JSON object.
 import argparse
 import json
 import os
+import resource
 import subprocess
 import sys
 import tempfile
@@ -66,8 +71,33 @@ def write_tiled(size, path, block=500):
             surf[start:start + rows.size, :] = np.zeros((rows.size, size), np.int8)
 
 
+def _busy_cpu_s():
+    """CPU seconds the whole machine has spent busy since boot (/proc/stat), or None."""
+    try:
+        with open("/proc/stat") as fh:
+            f = [int(v) for v in fh.readline().split()[1:]]
+    except OSError:
+        return None
+    idle = f[3] + (f[4] if len(f) > 4 else 0)
+    return (sum(f[:8]) - idle) / os.sysconf("SC_CLK_TCK")
+
+
+def _children_cpu_s():
+    r = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return r.ru_utime + r.ru_stime
+
+
+LAST_RUN = {}
+
+
 def run_tree(cmd):
-    """Run a command; sample the summed RSS of it and all its descendants. Returns (wall_s, peak_mb)."""
+    """Run a command; sample the summed RSS of it and all its descendants. Returns (wall_s, peak_mb).
+
+    Also notes in LAST_RUN the CPU the command's process tree used and the CPU every other
+    process of the machine used meanwhile (busy time from /proc/stat minus ours), as average
+    cores over the run: ``other_cores`` says how much of the machine was taken by other work.
+    """
+    busy0, ours0 = _busy_cpu_s(), _children_cpu_s()
     t0 = time.perf_counter()
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     peak = [0.0]
@@ -87,6 +117,10 @@ def run_tree(cmd):
     out, err = proc.communicate()
     th.join()
     wall = time.perf_counter() - t0
+    ours = _children_cpu_s() - ours0
+    LAST_RUN.update(our_cores=ours / wall)
+    if busy0 is not None:
+        LAST_RUN.update(other_cores=max(0.0, (_busy_cpu_s() - busy0 - ours) / wall))
     if proc.returncode != 0:
         print(out, err)
         raise SystemExit(f"command failed ({proc.returncode}): {' '.join(map(str, cmd))}")
@@ -165,6 +199,7 @@ def main():
     ap.add_argument("--scaling-size", type=int, default=2000)
     ap.add_argument("--repeats", type=int, default=2)
     ap.add_argument("--skip-big", action="store_true", help="only the scaling part")
+    ap.add_argument("--skip-scaling", action="store_true", help="only the large-scene part")
     ap.add_argument("--control-job", type=int, default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.control_job is not None:
@@ -188,36 +223,41 @@ def main():
                   "(target ≤ 4096)")
             result.update(peak_rss_mb=round(peak), big_pixels=n, big_wall_s=round(wall, 1))
         mid = tmp / "mid.nc"
-        write_tiled(args.scaling_size, mid)
+        if not args.skip_scaling:
+            write_tiled(args.scaling_size, mid)
         m = args.scaling_size**2
         runs = []
-        for rep in range(args.repeats):
+        for rep in range(0 if args.skip_scaling else args.repeats):
             one, two, ctrl = process_control()
             print(f"control {rep + 1}: kernel work {one:.1f} s in one process, {two:.1f} s in each of two at once "
                   f"-> control efficiency {ctrl:.2f}")
-            rates = {}
+            rates, other = {}, {}
             for workers in (1, 2):
                 wall, peak = run_tree([exe, "screen", str(mid), "--out", str(tmp / f"mid_{workers}.nc"),
                                        "--workers", str(workers), "--chunks", "200", "--quiet"])
                 rates[workers] = m / wall
+                other[workers] = LAST_RUN.get("other_cores", float("nan"))
                 print(f"{args.scaling_size}² with {workers} worker(s): {wall:.1f} s, {m / wall:,.0f} pixels/s, "
-                      f"peak {peak:.0f} MB")
+                      f"peak {peak:.0f} MB; cores used: ours {LAST_RUN['our_cores']:.2f}, other processes "
+                      f"{other[workers]:.2f}")
             eff = rates[2] / (2 * rates[1])
             print(f"run {rep + 1}: scaling efficiency {eff:.2f} (control {ctrl:.2f}, ratio {eff / ctrl:.2f}); "
                   f"load average {os.getloadavg()[0]:.1f}")
             runs.append({"pixels_per_s_1worker": rates[1], "pixels_per_s_2workers": rates[2],
-                         "scaling_efficiency": eff, "control_efficiency": ctrl})
+                         "scaling_efficiency": eff, "control_efficiency": ctrl,
+                         "other_cores_1worker": other[1], "other_cores_2workers": other[2]})
 
         def med(key):
             return float(np.median([r[key] for r in runs]))
 
-        result.update(pixels_per_s_1worker=round(med("pixels_per_s_1worker")),
-                      pixels_per_s_2workers=round(med("pixels_per_s_2workers")),
-                      scaling_efficiency=round(med("scaling_efficiency"), 3),
-                      control_efficiency=round(med("control_efficiency"), 3),
-                      scaling_vs_control=round(float(np.median([r["scaling_efficiency"] / r["control_efficiency"]
-                                                                for r in runs])), 3),
-                      scaling_runs=[{k: round(v, 3) for k, v in r.items()} for r in runs])
+        if runs:
+            result.update(pixels_per_s_1worker=round(med("pixels_per_s_1worker")),
+                          pixels_per_s_2workers=round(med("pixels_per_s_2workers")),
+                          scaling_efficiency=round(med("scaling_efficiency"), 3),
+                          control_efficiency=round(med("control_efficiency"), 3),
+                          scaling_vs_control=round(float(np.median([r["scaling_efficiency"] / r["control_efficiency"]
+                                                                    for r in runs])), 3),
+                          scaling_runs=[{k: round(v, 3) for k, v in r.items()} for r in runs])
     same, worst = matches_in_memory()
     print(f"chunked vs in-memory on night_front: largest difference {worst:.2e} (≤ 1e-6 required)")
     result.update(matches_in_memory=bool(same), max_abs_difference=worst)
