@@ -120,9 +120,10 @@ def open_lazy(path, config, chunk_rows=DEFAULT_CHUNK_ROWS):
     data = {}
     for name in [f"bt_{c}" for c in order] + [f"emis_{c}" for c in order if f"emis_{c}" in ds] + \
             [f"bt_clear_{c}" for c in order if f"bt_clear_{c}" in ds] + ["t_skin", "t_air", "tcwv", "sat_zenith"]:
-        data[name] = ds[name].astype(np.float64)
-    data["sol_zenith"] = ds["sol_zenith"].astype(np.float64) if "sol_zenith" in ds else \
-        xr.DataArray(da.full((ny, nx), np.nan, chunks=(chunk_rows, nx)), dims=("y", "x"))
+        data[name] = _widened(ds[name])
+    data["sol_zenith"] = _widened(ds["sol_zenith"]) if "sol_zenith" in ds else \
+        xr.DataArray(da.full((ny, nx), np.nan, chunks=(chunk_rows, nx)), dims=("y", "x"),
+                     attrs={"cloudsieve_float32_exact": 1})
     data["p_surf"] = ds["p_surf"].astype(np.float64) if "p_surf" in ds else \
         xr.DataArray(da.full((ny, nx), 1013.25, chunks=(chunk_rows, nx)), dims=("y", "x"))
     if "surface" in ds:
@@ -145,6 +146,16 @@ def open_lazy(path, config, chunk_rows=DEFAULT_CHUNK_ROWS):
     _check_ranges(out, order, path.name, problems)
     out.attrs["channels"] = " ".join(order)
     return LazyScene(out, tuple(order), path.stem, path)
+
+
+def _widened(var):
+    """float64 copy of a scene variable, noting whether float32 holds its values exactly
+    (float32 or narrower integers in the file), so blocks can travel as float32."""
+    dt = var.dtype
+    exact = (dt.kind == "f" and dt.itemsize <= 4) or (dt.kind in "iub" and dt.itemsize <= 2)
+    out = var.astype(np.float64)
+    out.attrs = dict(var.attrs, cloudsieve_float32_exact=int(exact))
+    return out
 
 
 def _check_ranges(ds, channels, name, problems):
@@ -360,27 +371,31 @@ def _screen_block(block, *, channels, config, bias, night_any, day_any, n_ch, ha
     return np.stack(layers)
 
 
-def _fused_block(block, *, block_info=None, nk, half, names, chans, coeffs, sim_cfg, config, inv, ci, night_any,
+def _fused_block(*blocks, block_info=None, nk, half, names, chans, coeffs, sim_cfg, config, inv, ci, night_any,
                  day_any, has_edits, layout):
     """One row block, start to finish: clear sky, screening, cloud layer and bias-fit sums.
 
-    ``block`` is the (field, rows, x) input stack of the block with ``half`` halo rows on
-    each side that has a neighbour. Its columns are simulated once, in slabs of rows, with
+    ``blocks`` are the (rows, x) input fields of the block (in ``layout["inputs"]`` order)
+    with ``half`` halo rows on each side that has a neighbour. Its columns are simulated once, in slabs of rows, with
     the per-level data kept only until the slab's rows are screened (the texture test needs
     ``half`` rows on either side) and its non-clear pixels inverted; so no column is
     simulated twice and level data never exist for more than a slab and its halo.
 
-    Returns the (layer, core rows, x) float64 output stack (see :func:`_layout`).
+    Returns the (layer, core rows, x) float32 output stack (see :func:`_layout`): every layer
+    is written as float32 (or is exact in it); the float64 bias-fit sums travel bit for bit
+    in the last layer (:func:`_pack_sums`).
     """
     _tune_allocator()
-    k = block_info[0]["chunk-location"][1]
+    k = block_info[0]["chunk-location"][0]
     top, bot = (half if k > 0 else 0), (half if k < nk - 1 else 0)
     n_ch, n_inv = len(names), len(inv)
-    _, n_rows, nx = block.shape
-    f = {name: block[i] for i, name in enumerate(layout["inputs"])}
+    n_rows, nx = blocks[0].shape
+    f = dict(zip(layout["inputs"], blocks))
+    for name in ("sat_zenith", "sol_zenith"):  # float64 arithmetic as in memory (widening is exact)
+        f[name] = f[name].astype(np.float64, copy=False)
     valid = f["valid"] > 0.5
     emis = np.stack([f[f"emis_{c}"] for c in names])
-    obs = {c: f[f"bt_{c}"] for c in names}
+    obs = {c: f[f"bt_{c}"].astype(np.float64, copy=False) for c in names}
     user = {c: f[f"user_{c}"].astype(np.float32) for c in names}
     fields = {"surface": f["surface"].astype(np.int8), "valid": valid, "sol_zenith": f["sol_zenith"],
               "slant_path": f["slant"]}
@@ -460,9 +475,27 @@ def _fused_block(block, *, block_info=None, nk, half, names, chans, coeffs, sim_
         kept = [kk for kk in kept if kk[1] > done]
     sums = pl.bias_sums({c: out[L["departure"][i]] for i, c in enumerate(names)}, f["slant"][core0:core1],
                         out[L["mask"]].astype(np.int8), out[L["bits"]].astype(np.uint16), valid[core0:core1])
-    flat_sums = np.concatenate([sums[c] for c in names])
-    out[L["sums"]].ravel()[:flat_sums.size] = flat_sums
-    return out
+    out32 = out.astype(np.float32)
+    _pack_sums(out32[L["sums"]], np.stack([sums[c] for c in names]))
+    return out32
+
+
+def _pack_sums(layer, sums):
+    """Store float64 sums bit for bit in the first cells of a float32 (or float64) layer."""
+    flat = np.ascontiguousarray(sums, np.float64).ravel()
+    view = layer.reshape(-1)
+    if layer.dtype == np.float32:
+        view[:2 * flat.size] = flat.view(np.float32)
+    else:
+        view[:flat.size] = flat
+
+
+def _unpack_sums(layer, n_ch):
+    """The (n_ch, 6) float64 sums stored by :func:`_pack_sums`."""
+    flat = np.ascontiguousarray(layer).reshape(-1)
+    if flat.dtype == np.float32:
+        return flat[:12 * n_ch].copy().view(np.float64).reshape(n_ch, 6)
+    return flat[:6 * n_ch].reshape(n_ch, 6)
 
 
 def _layout(names, inv, edits):
@@ -562,21 +595,31 @@ def screen_chunked(scene, config, edits=None):
     notes, skipped = list(probe["notes"]), dict(probe["skipped"])
     method = config["cloud"]["top"]
     if not config["bias"]["remove"]:
-        nan = da.full((ds.sizes["y"], nx), np.nan, chunks=(rows, nx))
-        parts = {"t_air": ds["t_air"].data, "tcwv": ds["tcwv"].data, "p_surf": ds["p_surf"].data,
-                 "t_skin": ds["t_skin"].data, "sat_zenith": ds["sat_zenith"].data, "valid": ds["valid"].data,
-                 "surface": ds["surface"].data, "sol_zenith": ds["sol_zenith"].data, "slant": slant}
+        f32 = np.float32
+        nan = da.full((ds.sizes["y"], nx), np.nan, dtype=f32, chunks=(rows, nx))
+
+        def exact_or_wide(name):  # float32 only where it holds the file's values exactly
+            v = ds[name]
+            return v.data.astype(f32) if v.attrs.get("cloudsieve_float32_exact") else v.data
+
+        # fields the kernel uses only in float32 (the simulation, emissivities, user clear sky) go
+        # as float32; observations and angles as in the file
+        parts = {"t_air": ds["t_air"].data.astype(f32), "tcwv": ds["tcwv"].data.astype(f32),
+                 "p_surf": ds["p_surf"].data.astype(f32), "t_skin": ds["t_skin"].data.astype(f32),
+                 "sat_zenith": exact_or_wide("sat_zenith"), "valid": ds["valid"].data,
+                 "surface": ds["surface"].data, "sol_zenith": exact_or_wide("sol_zenith"), "slant": slant}
         for i, c in enumerate(names):
-            parts[f"emis_{c}"] = emis.data[..., i]
-            parts[f"bt_{c}"] = ds[f"bt_{c}"].data
-            parts[f"user_{c}"] = ds[f"bt_clear_{c}"].data if f"bt_clear_{c}" in ds else nan
+            parts[f"emis_{c}"] = emis.data[..., i].astype(f32)
+            parts[f"bt_{c}"] = exact_or_wide(f"bt_{c}")
+            parts[f"user_{c}"] = ds[f"bt_clear_{c}"].data.astype(f32) if f"bt_clear_{c}" in ds else nan
         if edit_grid is not None:
             parts["edits"] = da.from_array(edit_grid, chunks=(rows, nx))
-        stack = _stack([parts[name] for name in L["inputs"]]).rechunk((len(L["inputs"]), rows, nx))
-        g = da.overlap.overlap(stack, depth={0: 0, 1: half, 2: 0}, boundary="none")
-        out = g.map_blocks(_fused_block, dtype=np.float64, chunks=((L["n_out"],), rows, (nx,)), nk=len(rows), half=half,
-                           names=names, chans=chans, coeffs=coeffs, sim_cfg=sim_cfg, config=config, inv=inv, ci=ci,
-                           night_any=night_any, day_any=day_any, has_edits=edit_grid is not None, layout=L)
+        arrays = [parts[name].rechunk((rows, nx)) for name in L["inputs"]]
+        out = da.map_overlap(_fused_block, *arrays, depth={0: half, 1: 0}, boundary="none", trim=False,
+                             align_arrays=False, dtype=np.float32, chunks=((L["n_out"],), rows, (nx,)), new_axis=0,
+                             meta=np.array((), np.float32), nk=len(rows), half=half, names=names, chans=chans,
+                             coeffs=coeffs, sim_cfg=sim_cfg, config=config, inv=inv, ci=ci, night_any=night_any,
+                             day_any=day_any, has_edits=edit_grid is not None, layout=L)
         bias = {c: {"a": float("nan"), "b": float("nan"), "n": 0, "rms": float("nan"), "applied": False}
                 for c in names}  # summed up while writing
         res = _result_from_stack(out, L, names, inv, method, source, bias, notes, skipped)
@@ -708,8 +751,7 @@ def _encode_block(stack, a, b, meta):
             variables[name] = v
     m = part["mask"].values
     counts = np.array([np.sum(m == k) for k in range(len(pl.CLASS_NAMES))])
-    n = len(names)
-    sums = stack[L["sums"]].ravel()[:6 * n].reshape(n, 6)
+    sums = _unpack_sums(stack[L["sums"]], len(names))
     return a, variables, counts, sums
 
 

@@ -62,6 +62,25 @@ def test_one_pass_slabs_and_edits_equal_in_memory(tmp_path):
     _compare(mem, xr.open_dataset(out))
 
 
+def test_float32_scene_equals_in_memory(tmp_path):
+    """A scene stored in float32 (as the benchmark's and most satellite files are): its fields
+    travel between tasks as float32, which holds them exactly, and the results still equal
+    the in-memory path's."""
+    ds = xr.open_dataset(SAMPLES / "night_front.nc").load()
+    for name, var in ds.data_vars.items():
+        if var.dtype == np.float64:
+            ds[name] = var.astype(np.float32)
+    path = tmp_path / "night_front32.nc"
+    ds.to_netcdf(path)
+    cfg = load_config()
+    mem = ScreeningModel.open(path, cfg, journal=False).result_dataset()
+    with dask.config.set(scheduler="threads"):
+        lazy = scale.open_lazy(path, cfg, chunk_rows=41)
+        assert lazy.data["bt_11um"].attrs["cloudsieve_float32_exact"] == 1
+        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.nc")
+    _compare(mem, xr.open_dataset(out))
+
+
 def test_chunked_parquet_matches_csv_output(tmp_path):
     cfg = load_config()
     pq = SAMPLES / "day_coast.parquet"
