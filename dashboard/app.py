@@ -172,8 +172,15 @@ class Session:
         footer = pn.pane.HTML(f"<div class='cs-muted' style='padding:6px 10px;border-top:1px solid #e3e7ea'>"
                               f"cloudsieve {__version__} · {CAUTION}</div>", sizing_mode="stretch_width",
                               css_classes=["cs-footer"])
+        # the caution also sits on the first screen, not only at the foot of the sidebar
+        banner = pn.pane.HTML(f"<div class='cs-caution'><b>Not a certified operational product.</b> For "
+                              f"fog, aviation and other hazards defer to official services and local "
+                              f"practice.</div>", sizing_mode="stretch_width", margin=(0, 10, 4, 10),
+                              css_classes=["cs-caution-banner"],
+                              stylesheets=[".cs-caution { font-size: 0.9em; color: #5b4a1f; background: #fbf4e4; "
+                                           "border-left: 3px solid #eaa221; padding: 5px 10px; border-radius: 3px; }"])
         return pn.template.FastListTemplate(
-            title="cloudsieve", sidebar=sidebar, main=[self.notices, self.counts, self.tabs, footer],
+            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.counts, self.tabs, footer],
             accent=ACCENT, header_background=ACCENT, sidebar_width=360, theme_toggle=False, main_layout=None,
             raw_css=[PAGE_CSS], main_max_width="", collapsed_sidebar=False)
 
@@ -287,11 +294,14 @@ class Session:
                     sizing_mode="stretch_width", css_classes=["cs-qa-card"]),
             pn.Card(PixelInspector(model, focus, self.notices), title="Pixel inspector", collapsible=False,
                     sizing_mode="stretch_width", css_classes=["cs-inspector-card"]),
-            sizing_mode="stretch_width", min_width=380, margin=(0, 0, 0, 10))
+            sizing_mode="stretch_width", min_width=380, margin=(0, 0, 0, 10), styles={"flex": "1 1 380px"})
         self.counts[:] = [ClassCounts(model)]
-        self.maps[:] = [pn.Row(pn.Column(
+        # a flex box: on a laptop-width window the QA and inspector column wraps below the maps
+        # instead of being cut off at the right edge
+        self.maps[:] = [pn.FlexBox(pn.Column(
             pn.Row(pn.pane.HTML("<b>Channel of the temperature maps</b>", margin=(12, 0, 0, 10)), channel),
-            maps), side, sizing_mode="stretch_width")]
+            maps, styles={"flex": "0 0 auto"}), side, flex_wrap="wrap", align_items="flex-start",
+            sizing_mode="stretch_width")]
         self.diagnostics[:] = [Diagnostics(model)]
         self.tuning[:] = [TuningPanel(model, self.notices)]
         self.exports[:] = [ExportPanel(model, self.notices)]

@@ -91,8 +91,11 @@ class UploadBox(Viewer):
             if (typeof v === 'string' && v.length * 0.75 > {self.limit}) {{
                 cb_obj.setv({{value: '', mime_type: '{_TOO_LARGE};' + Math.round(v.length * 0.75)}});
             }}""")
+        # the report is preformatted text: wrap its long lines inside the narrow sidebar
         self.report = pn.pane.Alert("", alert_type="light", visible=False, sizing_mode="stretch_width",
-                                    css_classes=["cs-upload-report"], margin=(4, 10))
+                                    css_classes=["cs-upload-report"], margin=(4, 10),
+                                    stylesheets=["pre, code { white-space: pre-wrap; overflow-wrap: anywhere; "
+                                                 "font-size: 0.92em; }"])
         self.input.param.watch(self._uploaded, ["value", "mime_type"])
         self._tmp = tempfile.TemporaryDirectory(prefix="cloudsieve-upload-")
         self._busy = False
