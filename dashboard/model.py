@@ -163,7 +163,9 @@ class ScreeningModel(param.Parameterized):
             res.cloud = pl.mask_cloud_layer(self._cloud_layer(cfg, bias_applied, res.mask), res.mask)
             if self.lean:  # exports write float32 anyway; the departures and σ stay shared with the cache
                 res.margins = {t: m.astype(np.float32) for t, m in res.margins.items()}
-                res.thresholds = {t: np.asarray(v).astype(np.float32) for t, v in res.thresholds.items()}
+                # the dashboard shows each threshold as its median over valid pixels: keep just that
+                valid = self.scene.data["valid"].values
+                res.thresholds = {t: _median_over(v, valid) for t, v in res.thresholds.items()}
             self.result = res
             self.timings["screen_s"] = time.perf_counter() - t0
             self.version += 1
@@ -327,6 +329,12 @@ def compact_scene(scene):
         if np.array_equal(narrow.astype(np.float64), v.values, equal_nan=True):
             ds.coords[name] = (v.dims, narrow, v.attrs)
     return scene
+
+
+def _median_over(values, valid):
+    """Median of a (y, x) threshold over valid pixels, as a 0-d array (lean mode)."""
+    v = np.broadcast_to(np.asarray(values, float), valid.shape)[valid]
+    return np.asarray(np.nanmedian(v) if v.size and np.isfinite(v).any() else np.nan)
 
 
 def _cloud_f32(cloud):

@@ -72,15 +72,20 @@ def _assert_same(a, b, tol=1e-6):
 
 
 def test_lean_model_holds_float32_and_exports_the_same(models):
-    """Lean mode keeps no level data, holds lat/lon, margins, thresholds and the cloud layer in
-    float32, and still writes the very file the normal path writes (exports are float32;
-    tolerance 1e-6, the chunked-path standard)."""
+    """Lean mode keeps no level data, holds lat/lon, margins and the cloud layer in float32 and
+    each threshold as its median (what the diagnostics show), and still writes the very file
+    the normal path writes (exports are float32; tolerance 1e-6, the chunked-path standard)."""
     full, lean = models
     assert not full.lean and lean.lean and lean.sim.level_pressure is None
     assert lean.scene.data["lat"].dtype == np.float32 and full.scene.data["lat"].dtype == np.float64
     assert lean.result.margins["cold_departure"].dtype == np.float32
     assert lean.result.cloud.optical_depth.dtype == np.float32
     assert lean.result.cloud.status.dtype == np.int8
+    valid = full.scene.data["valid"].values
+    for test, thr in full.result.thresholds.items():
+        assert lean.result.thresholds[test].ndim == 0
+        assert float(lean.result.thresholds[test]) == pytest.approx(
+            float(np.nanmedian(np.broadcast_to(thr, valid.shape)[valid])), abs=1e-12)
     _assert_same(full.result_dataset(), lean.result_dataset())
 
 

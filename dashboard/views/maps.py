@@ -34,8 +34,19 @@ _READOUT_HINT = ("<span class='cs-muted'>Large scene: the maps are rasterized; m
 _CLASS_JS = "return %s[Math.round(value)] || '';" % list(pl.CLASS_NAMES)
 
 
+#: colour ranges of larger grids come from an even sample of this many pixels per array
+RANGE_SAMPLE = 1_000_000
+
+
 def _robust_range(arrays, lo=1.0, hi=99.0, pad=0.0):
-    vals = np.concatenate([np.asarray(a, float).ravel() for a in arrays])
+    """Percentile range over the arrays; above RANGE_SAMPLE pixels over an evenly strided
+    sample (a 4000 × 4000 scene would otherwise copy every channel in float64 to set colours)."""
+    def sample(a):
+        flat = np.asarray(a).reshape(-1)
+        step = max(1, flat.size // RANGE_SAMPLE)
+        return flat[::step].astype(float)
+
+    vals = np.concatenate([sample(a) for a in arrays])
     vals = vals[np.isfinite(vals)]
     if vals.size == 0:
         return 0.0, 1.0
@@ -62,7 +73,9 @@ class MapGrid(Viewer):
         # colour ranges are fixed per scene (so retuning never rescales a map), over all channels
         self._obs_clim = _robust_range([ds[f"bt_{c}"].values for c in sim.channels], 0.5, 99.5)
         self._clear_clim = _robust_range([sim.bt_clear[i] for i in range(len(sim.channels))], 0.5, 99.5)
-        raw = [np.abs(ds[f"bt_{c}"].values - sim.bt_clear[i]) for i, c in enumerate(sim.channels)]
+        step = max(1, (ny * nx) // RANGE_SAMPLE)
+        raw = [np.abs(ds[f"bt_{c}"].values.reshape(-1)[::step] - sim.bt_clear[i].reshape(-1)[::step])
+               for i, c in enumerate(sim.channels)]
         lim = max(2.0, _robust_range(raw, 0, 99.0)[1])
         self._dep_clim = (-lim, lim)
         p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
