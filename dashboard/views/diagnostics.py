@@ -81,7 +81,7 @@ class DepartureHistogram(Viewer):
         return hv.Overlay(layers).opts(
             title=f"Window-channel departures by class · {outside:,} beyond the range are in the end bins",
             frame_width=520, frame_height=260, legend_position="right", ylim=(0, ymax * 1.15), xlim=(lo, hi),
-            show_grid=True, toolbar="above", fontscale=0.9)
+            show_grid=True, toolbar="above", active_tools=["pan"], fontscale=0.9)
 
 
 class SplitWindowScatter(Viewer):
@@ -122,7 +122,7 @@ class SplitWindowScatter(Viewer):
         shown = f"{idx.size:,} pixels" + (" (random sample)" if valid.sum() > MAX_POINTS else "")
         return hv.Overlay(layers).opts(
             title=f"Split window by class · {shown}", frame_width=420, frame_height=260, bgcolor=_DARK,
-            legend_position="top_left", show_grid=False, toolbar="above")
+            legend_position="top_left", show_grid=False, toolbar="above", active_tools=["pan"])
 
 
 class BiasFitPlot(Viewer):
@@ -163,7 +163,7 @@ class BiasFitPlot(Viewer):
             layers.append(hv.Points([], kdims=[xd, yd]))
         return hv.Overlay(layers).opts(
             title=f"Clear-sky bias fit · {idx.size:,} clear pixels shown", frame_width=520, frame_height=260,
-            legend_position="right", show_grid=True, toolbar="above", legend_limit=20)
+            legend_position="right", show_grid=True, toolbar="above", active_tools=["pan"], legend_limit=20)
 
     def table(self, version=None):
         rows = ["| channel | a [K] | b [K per kg m⁻²] | pixels | rms [K] | removed |", "|---|---|---|---|---|---|"]

@@ -37,6 +37,7 @@ class QAPanel(Viewer):
         self.deselect.visible = has_sel
         self.deselect.on_click(lambda _e: self.focus.clear_selection())
         self.undo_button.on_click(notices.guard("undoing the last edit")(self._undo))
+        self.undo_button.disabled = pn.bind(lambda _v: not self.model.edit_listing(), model.param.version)
         self.edits = pn.pane.Markdown(pn.bind(self._edits_text, model.param.version), sizing_mode="stretch_width",
                                       css_classes=["cs-edits"], margin=(0, 10))
         self._scores = pn.pane.Markdown(pn.bind(self._scores_text, model.param.version),
