@@ -421,6 +421,16 @@ class _OriginError(CloudsieveError):
     exit_code = 2
 
 
+def _quiet_closed_connections(loop, context):
+    """asyncio exception handler: a browser tab closed while the server was still sending to
+    it is routine, not an error worth a traceback in the terminal; anything else is reported
+    as usual."""
+    exc = context.get("exception")
+    if exc is not None and type(exc).__name__ in ("WebSocketClosedError", "StreamClosedError"):
+        return
+    loop.default_exception_handler(context)
+
+
 def serve(args):
     """``cloudsieve serve``: run the dashboard until Ctrl-C (returns the exit code)."""
     address = getattr(args, "address", None) or "127.0.0.1"
@@ -462,6 +472,7 @@ def serve(args):
             print(f"cloudsieve: {exc}", file=sys.stderr)
             print("cloudsieve dashboard: the page will show this problem; pick another scene there.", file=sys.stderr)
     server = pn.serve(app, show=False, start=False, verbose=False, threaded=False, **opts)
+    server.io_loop.asyncio_loop.set_exception_handler(_quiet_closed_connections)
     print(f"cloudsieve dashboard: http://{host}:{port}/ (Ctrl-C to stop)", flush=True)
     if args.show:
         server.io_loop.add_callback(server.show, "/")
