@@ -251,10 +251,36 @@ def atomic_write(path):
             tmp.unlink()
 
 
+def write_table_csv(table, fh, header=True):
+    """Write a per-pixel table (pandas DataFrame) as CSV to a binary file object.
+
+    Floats are rounded to 4 decimals (0.1 mK, far below any signal) and written in their
+    shortest form, missing values as empty cells, text unquoted (class and status names have
+    no commas). pyarrow's writer does this about ten times faster than pandas' ``to_csv``
+    with a float format, which matters for million-pixel scenes.
+    """
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    arrays = {}
+    for name in table.columns:
+        values = table[name].to_numpy()
+        if values.dtype.kind == "f":
+            arrays[name] = pa.array(np.round(values.astype(np.float64), 4), from_pandas=True)
+        elif values.dtype.kind in "biu":
+            arrays[name] = pa.array(values)
+        else:
+            arrays[name] = pa.array(values.astype(str))
+    if header:
+        fh.write((",".join(map(str, table.columns)) + "\n").encode("utf-8"))
+    pacsv.write_csv(pa.table(arrays), fh, pacsv.WriteOptions(include_header=False, quoting_style="none"))
+
+
 def write_csv(result, path):
     """Write the result as CSV atomically (a temporary file renamed into place)."""
     with atomic_write(path) as tmp:
-        result_table(result).to_csv(tmp, index=False, float_format="%.4f")
+        with open(tmp, "wb") as fh:
+            write_table_csv(result_table(result), fh)
     return Path(path)
 
 

@@ -803,7 +803,7 @@ def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2
     """
     import netCDF4
 
-    from .export import atomic_write, netcdf_encoding, result_dataset, result_table
+    from .export import atomic_write, netcdf_encoding, result_dataset, result_table, write_table_csv
 
     out_path = Path(out_path)
     fmt = fmt or ("netcdf" if out_path.suffix.lower() in (".nc", ".nc4", ".netcdf") else "csv")
@@ -861,7 +861,7 @@ def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2
         else:
             lat = meta_ds["lat"].values if "lat" in meta_ds.coords else None
             lon = meta_ds["lon"].values if "lon" in meta_ds.coords else None
-            with open(tmp, "w", newline="") as fh:
+            with open(tmp, "wb") as fh:
                 pending = {}
                 nxt = 0
                 for a, enc, cnt, s in _blocks_done(tasks, parallel):
@@ -874,7 +874,7 @@ def write_chunked(scene, res, config, out_path, fmt=None, edits=None, parallel=2
                                           coords={"row": ("y", meta["row"][a0:b0]), "col": ("x", meta["col"])})
                         if lat is not None:
                             part = part.assign_coords(lat=(("y", "x"), lat[a0:b0]), lon=(("y", "x"), lon[a0:b0]))
-                        result_table(part).to_csv(fh, index=False, header=nxt == 0, float_format="%.4f")
+                        write_table_csv(result_table(part), fh, header=nxt == 0)
                         nxt += 1
         if res.bias_pending:  # one pass: the fit is known now; add it to the file's attributes
             for a in sorted(ordered_sums):

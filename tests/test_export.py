@@ -77,12 +77,11 @@ def test_interrupted_write_leaves_old_file(tmp_path, result, monkeypatch):
     target = tmp_path / "mask.csv"
     target.write_text("old content\n")
 
-    def boom(self, *a, **k):
-        with open(a[0], "w") as fh:
-            fh.write("row,col\n0,")  # partial content, then the process "dies"
+    def boom(table, fh, header=True):
+        fh.write(b"row,col\n0,")  # partial content, then the disk is full
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(pd.DataFrame, "to_csv", boom)
+    monkeypatch.setattr(export, "write_table_csv", boom)
     with pytest.raises(export.OutputError, match="No space left"):
         export.write_csv(result, target)
     assert target.read_text() == "old content\n"
