@@ -338,10 +338,11 @@ def _median_over(values, valid):
 
 
 def _cloud_f32(cloud):
-    """The cloud layer with its float arrays in float32 (what the exports write)."""
+    """The cloud layer with its float arrays in float32 (what the exports write), except the
+    top pressure: the inspector's BT–τ curve is drawn at it and stays the normal model's."""
     f = lambda a: np.asarray(a).astype(np.float32) if np.asarray(a).dtype.kind == "f" else a  # noqa: E731
     return pl.CloudLayer(f(cloud.emissivity), f(cloud.optical_depth), f(cloud.optical_depth_sigma),
-                         f(cloud.extinction_optical_depth), f(cloud.top_pressure), f(cloud.top_temperature),
+                         f(cloud.extinction_optical_depth), cloud.top_pressure, f(cloud.top_temperature),
                          cloud.status, cloud.uncertain, cloud.channels, cloud.method, list(cloud.notes))
 
 
