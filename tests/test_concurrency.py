@@ -63,13 +63,19 @@ def test_eight_sessions_stay_apart(serve_app, tmp_path, browser, artifacts):
         # each session marks a different box of its own scene as cloud
         for k, page in enumerate(pages):
             page.locator(".cs-map-3 .bk-tool-icon-box-select").first.click()
-            p0, p1 = map_point(page, 10.2 + 10 * k, 10.2), map_point(page, 14.8 + 10 * k, 14.8)
-            page.mouse.move(*p0)
-            page.mouse.down()
-            page.mouse.move(*p1, steps=6)
-            page.mouse.up()
-            expect(page.locator(".cs-selection div").first).to_contain_text(re.compile(r"pixel\(s\)"),
-                                                                             timeout=TIMEOUT)
+            selection = page.locator(".cs-selection div").first
+            for attempt in range(3):  # on a loaded machine a drag can outrun the tool switch: drag again
+                p0, p1 = map_point(page, 10.2 + 10 * k, 10.2), map_point(page, 14.8 + 10 * k, 14.8)
+                page.mouse.move(*p0)
+                page.mouse.down()
+                page.mouse.move(*p1, steps=6)
+                page.mouse.up()
+                try:
+                    expect(selection).to_contain_text(re.compile(r"pixel\(s\)"), timeout=TIMEOUT // 3)
+                    break
+                except AssertionError:
+                    if attempt == 2:
+                        raise
             page.get_by_role("button", name="Mark cloud").click()
         for k, page in enumerate(pages):
             expect(page.locator(".cs-edits div").first).to_contain_text("marked cloud", timeout=TIMEOUT)
