@@ -93,6 +93,20 @@ def bench_retune(size, repeats, tmp):
     return statistics.median(times)
 
 
+def wait_listening(server, url, t0, limit_s=120.0):
+    """Poll the served address until it answers; fail if the server exits or takes too long."""
+    while True:
+        try:
+            urllib.request.urlopen(url + "favicon.ico", timeout=2).close()
+            return
+        except OSError:
+            if server.poll() is not None:
+                raise RuntimeError("cloudsieve serve exited:\n" + server.stdout.read())
+            if time.perf_counter() - t0 > limit_s:
+                raise RuntimeError(f"cloudsieve serve did not start within {limit_s:.0f} s")
+            time.sleep(0.05)
+
+
 def _free_port():
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -115,16 +129,7 @@ def bench_first_render(tmp):
                                   stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
         try:
             url = f"http://127.0.0.1:{port}/"
-            while True:
-                try:
-                    urllib.request.urlopen(url + "favicon.ico", timeout=2).close()
-                    break
-                except OSError:
-                    if server.poll() is not None:
-                        raise RuntimeError("cloudsieve serve exited:\n" + server.stdout.read())
-                    if time.perf_counter() - t0 > 120:
-                        raise RuntimeError("cloudsieve serve did not start within 120 s")
-                    time.sleep(0.05)
+            wait_listening(server, url, t0)
             t_listen = time.perf_counter() - t0
             page.goto(url)
             page.wait_for_function(RENDERED, arg=6, timeout=120_000, polling=50)

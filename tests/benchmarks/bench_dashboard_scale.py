@@ -28,7 +28,6 @@ import sys
 import tempfile
 import threading
 import time
-import urllib.request
 from pathlib import Path
 
 import psutil
@@ -36,18 +35,7 @@ import psutil
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_scale import write_tiled  # noqa: E402
 
-CHROMIUM = "/usr/bin/chromium"
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
-RENDERED = """(n) => {
-  if (!window.Bokeh || !Bokeh.index) return false;
-  const views = [...Bokeh.index.all_views()];
-  const figs = views.filter(v => v.model.type === 'Figure');
-  if (figs.length < n || !figs.every(v => v.has_finished())) return false;
-  const imgs = views.filter(v => v.model.type === 'GlyphRenderer' && v.model.glyph.type === 'Image');
-  return imgs.length >= n && imgs.every(v => {
-    const d = v.model.data_source.data.image; return d && d.length > 0; });
-}"""
+from bench_dashboard import CHROMIUM, CHROMIUM_ARGS, RENDERED, wait_listening  # noqa: E402  (one copy of the browser set-up)
 #: per map (by colour-bar title): visible x range and the first image's extent and raster size
 MAP_STATE = """() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure').map(fig => {
   const cb = fig.model.right.find(r => r.type === 'ColorBar');
@@ -130,14 +118,7 @@ def main():
             mem = TreeMemory(server.pid)
             try:
                 url = f"http://127.0.0.1:{port}/"
-                while True:
-                    try:
-                        urllib.request.urlopen(url + "favicon.ico", timeout=2).close()
-                        break
-                    except OSError:
-                        if server.poll() is not None:
-                            raise RuntimeError("cloudsieve serve exited:\n" + server.stdout.read())
-                        time.sleep(0.1)
+                wait_listening(server, url, t0, limit_s=args.timeout)
                 page.goto(url, timeout=args.timeout * 1000)
                 page.wait_for_function(RENDERED, arg=6, timeout=args.timeout * 1000, polling=200)
                 result["first_render_s"] = round(time.perf_counter() - t0, 1)
