@@ -12,12 +12,11 @@ from pathlib import Path
 
 import pytest
 
+from browser_js import CHROMIUM, CHROMIUM_ARGS
+
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLES = ROOT / "sample_scenes"
 ARTIFACTS = ROOT / "test-artifacts"
-CHROMIUM = Path("/usr/bin/chromium")
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
 IN_CI = os.environ.get("CI", "").lower() == "true"
 NO_BROWSER = (f"{CHROMIUM} not found: install Debian's chromium (apt-get install chromium) to run the "
               "browser tests")

@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 from playwright.sync_api import expect
 
+from browser_js import RENDERED, SCREEN_XY
 from dashboard import cli
 from dashboard.app import SceneCatalog, is_scene_file, serve, server_options
 from dashboard.errors import PathError
@@ -24,26 +25,6 @@ from dashboard.journal import journal_path
 SAMPLES = Path(__file__).resolve().parents[1] / "sample_scenes"
 
 TIMEOUT = 60_000  # ms; the first page of a fresh server prepares the scene
-
-#: every map drawn: all figures finished and every image glyph has data
-RENDERED = """(n) => {
-  if (!window.Bokeh || !Bokeh.index) return false;
-  const views = [...Bokeh.index.all_views()];
-  const figs = views.filter(v => v.model.type === 'Figure');
-  if (figs.length < n || !figs.every(v => v.has_finished())) return false;
-  const imgs = views.filter(v => v.model.type === 'GlyphRenderer' && v.model.glyph.type === 'Image');
-  return imgs.length >= n && imgs.every(v => {
-    const d = v.model.data_source.data.image; return d && d.length > 0; });
-}"""
-
-#: screen position of data coordinate (x, y) on the map whose colour bar has this title
-SCREEN_XY = """([title, x, y]) => {
-  const fig = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure').find(
-      v => v.model.right.some(r => r.type === 'ColorBar' && r.title === title));
-  if (!fig) return null;
-  const r = fig.canvas_view.el.getBoundingClientRect();
-  return [r.left + fig.frame.x_scale.compute(x), r.top + fig.frame.y_scale.compute(y)];
-}"""
 
 MASK_TITLE = "class"
 

@@ -14,7 +14,8 @@ from dashboard.config import load_config
 from dashboard.journal import journal_path
 from dashboard.model import ScreeningModel, _NoJournal
 from dashboard.scene import load_scene
-from test_app_ui import RENDERED, TIMEOUT, cloud_percent, map_point
+from browser_js import RENDERED
+from test_app_ui import TIMEOUT, cloud_percent, map_point
 
 SAMPLES = Path(__file__).resolve().parents[1] / "sample_scenes"
 N_SESSIONS = 8

@@ -143,13 +143,6 @@ def test_large_scene_maps_rasterize_and_reaggregate_a_zoomed_view(models, monkey
 # ---------------------------------------------------------------------------------------
 # the same path in a real browser (limits moved down, so the sample scene takes it)
 # ---------------------------------------------------------------------------------------
-_COVERS = """([x0, x1]) => {
-  const figs = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure');
-  return figs.length >= 6 && figs.every(v => v.has_finished()) && figs.slice(0, 6).every(fig => {
-    const img = fig.model.renderers.find(r => r.glyph && r.glyph.type === 'Image');
-    const d = img.data_source.data;
-    return d.x && Math.abs(d.x[0] - x0) <= 1.5 && Math.abs(d.x[0] + d.dw[0] - x1) <= 1.5; });
-}"""
 _CLASS_MAP = """() => {
   const fig = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure').find(
       v => v.model.right.some(r => r.type === 'ColorBar' && r.title === 'class'));
@@ -164,7 +157,8 @@ def test_large_scene_path_in_the_browser(serve_app, scene_dir, page, artifacts, 
     """Lean model and rasterized maps in chromium: the maps draw, a wheel zoom over the class
     map makes every map aggregate the zoomed range again (the raster spans just the view), and
     a click still fills the inspector, BT–τ curve included."""
-    from test_app_ui import RENDERED, TIMEOUT, map_point, open_dashboard
+    from browser_js import COVERS, RENDERED
+    from test_app_ui import TIMEOUT, map_point, open_dashboard
 
     monkeypatch.setattr(pl, "LEVELS_PIXEL_LIMIT", 10_000)
     monkeypatch.setattr(maps_module, "RASTERIZE_ABOVE", 10_000)
@@ -179,7 +173,7 @@ def test_large_scene_path_in_the_browser(serve_app, scene_dir, page, artifacts, 
                            " return f && (f.model.x_range.end - f.model.x_range.start) < 0.9 * w; }",
                            arg=before["x1"] - before["x0"], timeout=TIMEOUT)
     zoom = page.evaluate(_CLASS_MAP)
-    page.wait_for_function(_COVERS, arg=[zoom["x0"], zoom["x1"]], timeout=TIMEOUT, polling=100)
+    page.wait_for_function(COVERS, arg=[zoom["x0"], zoom["x1"], 1.5], timeout=TIMEOUT, polling=100)
     after = page.evaluate(_CLASS_MAP)
     assert after["idw"] == pytest.approx(after["x1"] - after["x0"], abs=1.5)
     assert after["idw"] < 0.9 * before["idw"]

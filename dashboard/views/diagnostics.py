@@ -31,8 +31,8 @@ def _median_threshold(thr, valid):
     return float(np.nanmedian(np.broadcast_to(np.asarray(thr, float), valid.shape)[valid]))
 
 
-class DepartureHistogram(Viewer):
-    """Window-channel departures stacked by class, with the test thresholds as lines."""
+class _ModelPlot(Viewer):
+    """A HoloViews plot of the model, redrawn by ``plot`` whenever the results change."""
 
     def __init__(self, model, **params):
         super().__init__(**params)
@@ -41,6 +41,10 @@ class DepartureHistogram(Viewer):
 
     def __panel__(self):
         return self._pane
+
+
+class DepartureHistogram(_ModelPlot):
+    """Window-channel departures stacked by class, with the test thresholds as lines."""
 
     def plot(self, version=None):
         m = self.model
@@ -84,16 +88,8 @@ class DepartureHistogram(Viewer):
             show_grid=True, toolbar="above", active_tools=["pan"], fontscale=0.9)
 
 
-class SplitWindowScatter(Viewer):
+class SplitWindowScatter(_ModelPlot):
     """BT11 against BT11 − BT12 (or the two window channels present), coloured by class."""
-
-    def __init__(self, model, **params):
-        super().__init__(**params)
-        self.model = model
-        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version)))
-
-    def __panel__(self):
-        return self._pane
 
     def _pair(self):
         chans = self.model.sim.channels
@@ -125,13 +121,11 @@ class SplitWindowScatter(Viewer):
             legend_position="top_left", show_grid=False, toolbar="above", active_tools=["pan"])
 
 
-class BiasFitPlot(Viewer):
+class BiasFitPlot(_ModelPlot):
     """Departure against slant water-vapour path W·secθ over clear pixels, with each fit line."""
 
     def __init__(self, model, **params):
-        super().__init__(**params)
-        self.model = model
-        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version)))
+        super().__init__(model, **params)
         self._table = pn.pane.Markdown(pn.bind(self.table, version=model.param.version), width=520,
                                        css_classes=["cs-bias-table"])
 

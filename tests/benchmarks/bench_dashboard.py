@@ -32,18 +32,8 @@ import xarray as xr
 
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLE = ROOT / "sample_scenes" / "night_front.nc"
-CHROMIUM = "/usr/bin/chromium"
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
-RENDERED = """(n) => {
-  if (!window.Bokeh || !Bokeh.index) return false;
-  const views = [...Bokeh.index.all_views()];
-  const figs = views.filter(v => v.model.type === 'Figure');
-  if (figs.length < n || !figs.every(v => v.has_finished())) return false;
-  const imgs = views.filter(v => v.model.type === 'GlyphRenderer' && v.model.glyph.type === 'Image');
-  return imgs.length >= n && imgs.every(v => {
-    const d = v.model.data_source.data.image; return d && d.length > 0; });
-}"""
+sys.path.insert(0, str(ROOT / "tests"))
+from browser_js import CHROMIUM, CHROMIUM_ARGS, RENDERED  # noqa: E402  (shared with the browser tests)
 
 
 def tiled_scene(size, path):

@@ -22,7 +22,6 @@ The last line printed is one JSON object.
 import argparse
 import json
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -35,7 +34,8 @@ import psutil
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_scale import write_tiled  # noqa: E402
 
-from bench_dashboard import CHROMIUM, CHROMIUM_ARGS, RENDERED, wait_listening  # noqa: E402  (one copy of the browser set-up)
+from bench_dashboard import _free_port, wait_listening  # noqa: E402
+from browser_js import CHROMIUM, CHROMIUM_ARGS, COVERS, RENDERED, SCREEN_XY  # noqa: E402
 #: per map (by colour-bar title): visible x range and the first image's extent and raster size
 MAP_STATE = """() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure').map(fig => {
   const cb = fig.model.right.find(r => r.type === 'ColorBar');
@@ -47,27 +47,6 @@ MAP_STATE = """() => [...Bokeh.index.all_views()].filter(v => v.model.type === '
           y0: fig.model.y_range.start, y1: fig.model.y_range.end,
           ix: d && d.x ? d.x[0] : null, idw: d && d.dw ? d.dw[0] : null, shape: shape};
 })"""
-SCREEN_XY = """([title, x, y]) => {
-  const fig = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure').find(
-      v => v.model.right.some(r => r.type === 'ColorBar' && r.title === title));
-  if (!fig) return null;
-  const r = fig.canvas_view.el.getBoundingClientRect();
-  return [r.left + fig.frame.x_scale.compute(x), r.top + fig.frame.y_scale.compute(y)];
-}"""
-#: every map's image covers the given x range (within a pixel) and all figures finished
-COVERS = """([x0, x1]) => {
-  const figs = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure');
-  return figs.length >= 6 && figs.every(v => v.has_finished()) && figs.slice(0, 6).every(fig => {
-    const img = fig.model.renderers.find(r => r.glyph && r.glyph.type === 'Image');
-    const d = img.data_source.data;
-    return d.x && Math.abs(d.x[0] - x0) <= 2 && Math.abs(d.x[0] + d.dw[0] - x1) <= 2; });
-}"""
-
-
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 class TreeMemory:
@@ -138,7 +117,7 @@ def main():
                     v => v.model.type === 'Figure'); return f && (f.model.x_range.end - f.model.x_range.start) < w * 0.9; }""",
                                        arg=cls["x1"] - cls["x0"], timeout=60_000)
                 zoomed = page.evaluate(MAP_STATE)[0]
-                page.wait_for_function(COVERS, arg=[zoomed["x0"], zoomed["x1"]], timeout=120_000, polling=100)
+                page.wait_for_function(COVERS, arg=[zoomed["x0"], zoomed["x1"], 2], timeout=120_000, polling=100)
                 result["zoom_rerender_s"] = round(time.perf_counter() - t, 2)
                 after = {m["title"]: m for m in page.evaluate(MAP_STATE)}
                 z = after["class"]
@@ -161,7 +140,7 @@ def main():
                     v => v.model.type === 'Figure'); return f && Math.abs(f.model.x_range.start - x0) > 1; }""",
                                        arg=z["x0"], timeout=60_000)
                 panned = page.evaluate(MAP_STATE)[0]
-                page.wait_for_function(COVERS, arg=[panned["x0"], panned["x1"]], timeout=120_000, polling=100)
+                page.wait_for_function(COVERS, arg=[panned["x0"], panned["x1"], 2], timeout=120_000, polling=100)
                 result["pan_rerender_s"] = round(time.perf_counter() - t, 2)
                 print(f"pan: x {panned['x0']:.0f}–{panned['x1']:.0f}, new rasters in {result['pan_rerender_s']} s")
                 page.screenshot(path=str(shots / "scale_panned.png"))
