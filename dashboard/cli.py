@@ -200,38 +200,28 @@ def cmd_config(args):
 
 def _screen_one(path, out_path, cfg, fmt, use_edits, show_progress):
     from . import pipeline as pl
-    from .model import ScreeningModel
+    from .model import ScreeningModel, _NoJournal
     from .scene import load_scene
 
     t0 = time.perf_counter()
     scene = load_scene(path, config=cfg)
     n = int(scene.data["valid"].values.sum())
     bar = _progress(show_progress, n, Path(path).name)
-    orig = pl.simulate
+    last = [0]
 
-    def simulate_with_bar(sc, c, progress=None, levels=True):
-        last = [0]
+    def tick(done, total):
+        if bar is not None:
+            bar.update(done - last[0])
+            last[0] = done
 
-        def tick(done, total):
-            if bar is not None:
-                bar.update(done - last[0])
-                last[0] = done
-
-        return orig(sc, c, progress=tick, levels=levels)
-
-    pl.simulate = simulate_with_bar
     try:
-        from .model import _NoJournal
-
         # batch: the clear-sky pass keeps no per-level data, and only the flagged pixels'
         # columns are simulated again with levels for the cloud inversion
-        sim = simulate_with_bar(scene, cfg, levels=False)
-        model = ScreeningModel(scene, cfg, journal=None if use_edits else _NoJournal(), sim=sim,
-                               invert_scope="flagged")
+        sim = pl.simulate(scene, cfg, progress=tick, levels=False)
     finally:
-        pl.simulate = orig
         if bar is not None:
             bar.close()
+    model = ScreeningModel(scene, cfg, journal=None if use_edits else _NoJournal(), sim=sim, invert_scope="flagged")
     model.write(out_path, fmt)
     summ = model.summary()
     summ["seconds"] = round(time.perf_counter() - t0, 2)

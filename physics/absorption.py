@@ -156,7 +156,7 @@ def _absorber_amounts_levels_first(p, t, q, continuum_t0, line_pressure_exponent
     """Absorber amounts from level-first arrays (n_levels, ...).
 
     ``layout="term"`` → (4, n_layers, ...); ``layout="layer"`` → (n_layers, 4, ...), the
-    operand of the per-layer matrix product of :func:`layer_optical_depth_level_major`.
+    operand of the per-layer sum of :func:`layer_optical_depth_level_major`.
     """
     dtype = np.result_type(p, t, q, np.float32)
     f = dtype.type
@@ -199,31 +199,18 @@ def layer_optical_depth(pressure, temperature, specific_humidity, coefficients):
     Notes
     -----
     τ = Σ_i X_i K_i over the four absorber terms of :func:`layer_absorber_amounts`,
-    evaluated as one matrix product (the channel-effective coefficients do not depend on
-    the pixel).
+    evaluated per layer by :func:`layer_optical_depth_level_major` (the channel-effective
+    coefficients do not depend on the pixel).
     """
     p = np.moveaxis(np.asarray(pressure), -1, 0)
     t = np.moveaxis(np.asarray(temperature), -1, 0)
     q = np.moveaxis(np.asarray(specific_humidity), -1, 0)
-    tau = layer_optical_depth_channel_major(p, t, q, coefficients)
-    return np.moveaxis(tau, (0, 1), (-1, -2))
-
-
-def layer_optical_depth_channel_major(pressure, temperature, specific_humidity, coefficients):
-    """:func:`layer_optical_depth` on level-first arrays (n_levels, ...) → (n_ch, n_layers, ...).
-
-    The hot path: one (n_ch × 4) by (4 × n_layers·n_pix) matrix product.
-    """
-    x = _absorber_amounts_levels_first(
-        np.asarray(pressure), np.asarray(temperature), np.asarray(specific_humidity),
-        coefficients.continuum_t0, coefficients.line_pressure_exponent,
-    )
-    k = coefficients.matrix().astype(x.dtype)
-    return (k.T @ x.reshape(4, -1)).reshape((k.shape[1],) + x.shape[1:])
+    tau = layer_optical_depth_level_major(p, t, q, coefficients)
+    return np.moveaxis(tau, (0, 1), (-2, -1))
 
 
 def layer_optical_depth_level_major(pressure, temperature, specific_humidity, coefficients):
-    """:func:`layer_optical_depth` on level-first arrays (n_levels, n_pix) → (n_layers, n_ch, n_pix).
+    """:func:`layer_optical_depth` on level-first arrays (n_levels, ...) → (n_layers, n_ch, ...).
 
     The layout of the transfer hot path (physics.transfer.upwelling_level_major). The sum
     over the four absorber terms is an ``einsum`` rather than a BLAS product: a batched BLAS
@@ -235,4 +222,4 @@ def layer_optical_depth_level_major(pressure, temperature, specific_humidity, co
         coefficients.continuum_t0, coefficients.line_pressure_exponent, layout="layer",
     )
     k = coefficients.matrix().astype(x.dtype)  # (4, n_ch)
-    return np.einsum("ic,lip->lcp", k, x)
+    return np.einsum("ic,li...->lc...", k, x)

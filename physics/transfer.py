@@ -181,33 +181,6 @@ def schwarzschild_upwelling(
     return TransferResult(back(rad), back_levels(trans), back_levels(opaque), back(down))
 
 
-def upwelling_channel_major(tau, level_radiance, surface_radiance, emissivity, inv_mu, diffusivity=DIFFUSIVITY_FACTOR,
-                            levels=True):
-    """:func:`upwelling_level_major` on channel-major arrays.
-
-    Parameters
-    ----------
-    tau : ndarray (n_ch, n_layers, n_pix)
-        Vertical layer optical depths. [1]
-    level_radiance : ndarray (n_ch, n_layers + 1, n_pix)
-        Planck radiance of the levels, surface level first. [radiance]
-    surface_radiance, emissivity, inv_mu, diffusivity, levels
-        As in :func:`upwelling_level_major`.
-
-    Returns
-    -------
-    radiance (n_ch, n_pix), level_transmittance (n_ch, n_levels, n_pix) or None,
-    opaque_radiance (n_ch, n_levels, n_pix) or None, downwelling (n_ch, n_pix)
-    (the level arrays are transposed views of level-major arrays).
-    """
-    rad, trans, opaque, down = upwelling_level_major(
-        np.ascontiguousarray(tau.transpose(1, 0, 2)), np.ascontiguousarray(level_radiance.transpose(1, 0, 2)),
-        surface_radiance, emissivity, inv_mu, diffusivity, levels)
-    if not levels:
-        return rad, None, None, down
-    return rad, trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2), down
-
-
 def _running(op, src, out, reverse):
     """Running product or sum of ``src`` along its first axis into ``out`` (same shape).
 

@@ -12,7 +12,7 @@ from physics.planck import planck_radiance
 from physics.transfer import (
     layer_transmittance_and_weight,
     schwarzschild_upwelling,
-    upwelling_channel_major,
+    upwelling_level_major,
 )
 from physics_helpers import channels, coefficients
 
@@ -53,7 +53,7 @@ def test_zero_optical_depth_is_transparent():
         res = _solve(np.zeros(10), b, 123.0, emissivity=eps, mu=0.6)
         assert float(res.radiance[0]) == pytest.approx(eps * 123.0, rel=1e-15)
         # no sky radiance: the telescoped layer sums leave only rounding of B_0 (documented
-        # in upwelling_channel_major), a few units in the last place
+        # in upwelling_level_major), a few units in the last place
         assert abs(float(res.downwelling[0])) <= 8 * np.finfo(float).eps * b.max()
         assert_allclose(res.level_transmittance[:, 0], 1.0, rtol=0)
         assert_allclose(res.opaque_radiance[:, 0], b, rtol=1e-15)  # each level seen unattenuated
@@ -248,22 +248,22 @@ def _grid_inputs(shape=(3, 5)):
     return tau, b, b_s, eps, mu
 
 
-def test_public_layout_agrees_with_channel_major_core():
+def test_public_layout_agrees_with_level_major_core():
     tau, b, b_s, eps, mu = _grid_inputs()
     pub = schwarzschild_upwelling(tau, b, b_s, eps, mu)
     n_lay, n_ch = tau.shape[-2:]
 
-    def cm(a):  # (3, 5, n, ch) → (ch, n, 15)
-        return np.ascontiguousarray(a.reshape(15, a.shape[-2], n_ch).transpose(2, 1, 0))
+    def lm(a):  # (3, 5, n, ch) → (n, ch, 15)
+        return np.ascontiguousarray(a.reshape(15, a.shape[-2], n_ch).transpose(1, 2, 0))
 
-    rad, trans, opaque, down = upwelling_channel_major(
-        cm(tau), cm(b), np.ascontiguousarray(b_s.reshape(15, n_ch).T),
+    rad, trans, opaque, down = upwelling_level_major(
+        lm(tau), lm(b), np.ascontiguousarray(b_s.reshape(15, n_ch).T),
         np.ascontiguousarray(eps.reshape(15, n_ch).T), 1.0 / mu.reshape(15),
     )
     assert_allclose(pub.radiance, rad.T.reshape(3, 5, n_ch), rtol=1e-15)
     assert_allclose(pub.downwelling, down.T.reshape(3, 5, n_ch), rtol=1e-15)
-    assert_allclose(pub.level_transmittance, trans.transpose(2, 1, 0).reshape(3, 5, n_lay + 1, n_ch), rtol=1e-15)
-    assert_allclose(pub.opaque_radiance, opaque.transpose(2, 1, 0).reshape(3, 5, n_lay + 1, n_ch), rtol=1e-15)
+    assert_allclose(pub.level_transmittance, trans.transpose(2, 0, 1).reshape(3, 5, n_lay + 1, n_ch), rtol=1e-15)
+    assert_allclose(pub.opaque_radiance, opaque.transpose(2, 0, 1).reshape(3, 5, n_lay + 1, n_ch), rtol=1e-15)
     # levels=False returns the same radiance without the level arrays
     lean = schwarzschild_upwelling(tau, b, b_s, eps, mu, levels=False)
     assert lean.level_transmittance is None and lean.opaque_radiance is None
