@@ -11,6 +11,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from . import fused
 from .constants import EPSILON, GRAVITY, R_DRY_AIR
 
 # ---------------------------------------------------------------------------------------
@@ -392,6 +393,10 @@ def profile_levels_first(
     of shape (n_levels, n_pixels).
     """
     f = np.dtype(dtype).type
+    if np.dtype(dtype) == np.float32 and fused.enabled():  # the compiled kernel of the same formulas
+        return fused.profile(t_air, tcwv, surface_pressure,
+                             np.linspace(1.0, 0.0, n_levels), top_pressure, R_DRY_AIR * lapse_rate / GRAVITY,
+                             tropopause_temperature, humidity_exponent, STRATOSPHERE_Q, STRATOSPHERE_Q * 0.1)
     t_air = np.asarray(t_air, dtype=dtype)
     tcwv = np.asarray(tcwv, dtype=dtype)
     ps = np.asarray(surface_pressure, dtype=dtype)

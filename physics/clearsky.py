@@ -9,6 +9,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from . import fused
 from .absorption import layer_optical_depth_level_major
 from .constants import C1_RADIANCE, C2_CM_K
 from .transfer import upwelling_level_major
@@ -173,6 +174,15 @@ def simulate_channel_major(pressure, temperature, specific_humidity, t_skin, emi
     ClearSky
         Channel-major: (n_ch, n_pix) and (n_ch, n_levels, n_pix).
     """
+    dtype = np.result_type(pressure, temperature, specific_humidity, np.float32)
+    if dtype == np.float32 and fused.enabled():  # the compiled kernel of the same formulas
+        f = np.float32
+        inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=f)))
+        rad, bt, surf_t, trans, opaque = fused.simulate(pressure, temperature, specific_humidity, t_skin, emissivity,
+                                                        inv_mu, channels, coefficients, levels)
+        if levels:
+            trans, opaque = trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2)
+        return ClearSky(rad, bt, trans, opaque, surf_t)
     tau = layer_optical_depth_level_major(pressure, temperature, specific_humidity, coefficients)
     f = tau.dtype.type
     inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=tau.dtype)))

@@ -22,6 +22,14 @@ NO_BROWSER = (f"{CHROMIUM} not found: install Debian's chromium (apt-get install
               "browser tests")
 
 
+def pytest_sessionstart(session):
+    # compile the float32 physics kernels once (numba caches them) before any test starts a
+    # CLI or dashboard subprocess, so that those only load the cached machine code
+    from physics import fused
+
+    fused.warm_up()
+
+
 def pytest_collection_modifyitems(config, items):
     # Browser tests run last: Playwright's sync API keeps an event loop running in the main
     # thread for the rest of the session, which breaks later tests that call asyncio.run().
