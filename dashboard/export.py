@@ -30,7 +30,24 @@ _TEST_LONG = {
 }
 
 
-def result_dataset(scene, sim, res, config, edits=None):
+def _grid_coords(ds):
+    """row/col (and lat/lon when the scene has them) as CF coordinate variables of (y, x)."""
+    coords = {"row": ("y", ds["row"].values.astype(np.int32), {"long_name": "grid row index", "units": "1"}),
+              "col": ("x", ds["col"].values.astype(np.int32), {"long_name": "grid column index", "units": "1"})}
+    has_latlon = "lat" in ds.coords and "lon" in ds.coords
+    if has_latlon:
+        coords["lat"] = (("y", "x"), ds["lat"].values.astype(np.float32),
+                         {"standard_name": "latitude", "units": "degrees_north", "long_name": "latitude"})
+        coords["lon"] = (("y", "x"), ds["lon"].values.astype(np.float32),
+                         {"standard_name": "longitude", "units": "degrees_east", "long_name": "longitude"})
+    return {k: xr.Variable(*v) for k, v in coords.items()}, ("row col lat lon" if has_latlon else "row col")
+
+
+def _history(action):
+    return f"{_dt.datetime.now(_dt.timezone.utc).strftime('%Y-%m-%dT%H:%M:%SZ')} cloudsieve {__version__} {action}"
+
+
+def result_dataset(scene, sim, res, config, edits=None, action="screen"):
     """Everything written for a screened scene, as a CF-annotated Dataset on (y, x).
 
     Parameters
@@ -41,21 +58,17 @@ def result_dataset(scene, sim, res, config, edits=None):
     config : dict
     edits : list, optional
         The QA edits applied (stored as a count and in the bit field).
+    action : str
+        What made the file, for the ``history`` attribute (``screen`` from the CLI, a
+        dashboard export otherwise).
 
     Returns
     -------
     xarray.Dataset
     """
     ds = scene.data
-    coords = {"row": ("y", ds["row"].values.astype(np.int32), {"long_name": "grid row index", "units": "1"}),
-              "col": ("x", ds["col"].values.astype(np.int32), {"long_name": "grid column index", "units": "1"})}
-    has_latlon = "lat" in ds.coords and "lon" in ds.coords
-    if has_latlon:
-        coords["lat"] = (("y", "x"), ds["lat"].values.astype(np.float32),
-                         {"standard_name": "latitude", "units": "degrees_north", "long_name": "latitude"})
-        coords["lon"] = (("y", "x"), ds["lon"].values.astype(np.float32),
-                         {"standard_name": "longitude", "units": "degrees_east", "long_name": "longitude"})
-    out = xr.Dataset(coords={k: xr.Variable(*v) for k, v in coords.items()})
+    coords, coordinates = _grid_coords(ds)
+    out = xr.Dataset(coords=coords)
 
     def put(name, data, attrs, dtype=np.float32):
         # dask arrays (the chunked path) stay lazy, so writing computes them block by block
@@ -112,13 +125,13 @@ def result_dataset(scene, sim, res, config, edits=None):
             {"long_name": "relative optical-depth uncertainty above 100 %", "units": "1",
              "flag_values": np.array([0, 1], np.int8), "flag_meanings": "no yes"}, np.int8)
     for v in out.data_vars.values():  # auxiliary coordinates (CF 5): grid indices, and lat/lon when given
-        v.attrs["coordinates"] = "row col lat lon" if has_latlon else "row col"
+        v.attrs["coordinates"] = coordinates
     out.attrs.update({
         "Conventions": "CF-1.10",
         "title": f"cloudsieve cloud screening of scene {scene.name}",
         "source": f"cloudsieve {__version__}",
         "institution": "cloudsieve users",
-        "history": f"{_dt.datetime.now(_dt.timezone.utc).strftime('%Y-%m-%dT%H:%M:%SZ')} cloudsieve {__version__} screen",
+        "history": _history(action),
         "comment": CAUTION,
         "references": "README.md of cloudsieve: methods, tests and their published sources",
         "cloudsieve_scene": str(scene.name),
@@ -313,8 +326,8 @@ def write_result(result, path, fmt=None):
 def write_simulation(scene, sim, path, fmt=None):
     """Write the clear-sky simulation (bt_clear_<ch> and the slant water-vapour path)."""
     ds = scene.data
-    out = xr.Dataset(coords={"row": ("y", ds["row"].values.astype(np.int32), {"long_name": "grid row index", "units": "1"}),
-                             "col": ("x", ds["col"].values.astype(np.int32), {"long_name": "grid column index", "units": "1"})})
+    coords, coordinates = _grid_coords(ds)
+    out = xr.Dataset(coords=coords)
     for i, ch in enumerate(sim.channels):
         out[f"bt_clear_{ch}"] = xr.Variable(("y", "x"), sim.bt_clear[i].astype(np.float32), {
             "standard_name": "toa_brightness_temperature_assuming_clear_sky", "units": "K",
@@ -324,6 +337,8 @@ def write_simulation(scene, sim, path, fmt=None):
                                               "units": "K"})
     out["slant_water_vapour_path"] = xr.Variable(("y", "x"), sim.slant_path.astype(np.float32), {
         "long_name": "total column water vapour times secant of the viewing zenith angle", "units": "kg m-2"})
+    for v in out.data_vars.values():
+        v.attrs["coordinates"] = coordinates
     out.attrs.update({"Conventions": "CF-1.10", "title": f"cloudsieve clear-sky simulation of scene {scene.name}",
-                      "source": f"cloudsieve {__version__}", "comment": CAUTION})
+                      "source": f"cloudsieve {__version__}", "history": _history("simulate"), "comment": CAUTION})
     return write_result(out, path, fmt)

@@ -217,13 +217,14 @@ class ScreeningModel(param.Parameterized):
     def counts(self):
         return dict(self.result.counts)
 
-    def result_dataset(self):
+    def result_dataset(self, action="screen"):
         edits = self.journal.active() if self.journal is not None else []
-        return result_dataset(self.scene, self.sim, self.result, self.effective_config(), edits)
+        return result_dataset(self.scene, self.sim, self.result, self.effective_config(), edits, action)
 
     def export_bytes(self, fmt):
         """The CSV or NetCDF file of the current result, as bytes (for downloads)."""
-        ds = self.result_dataset()
+        n_edits = len(self.journal.active()) if self.journal is not None else 0
+        ds = self.result_dataset(action=f"dashboard export ({n_edits} QA edit{'s' if n_edits != 1 else ''} in force)")
         suffix = ".nc" if fmt == "netcdf" else ".csv"
         with tempfile.TemporaryDirectory() as tmp:
             path = Path(tmp) / f"{self.scene.name}_mask{suffix}"

@@ -43,6 +43,7 @@ def test_screen_one_scene_netcdf_and_csv(tmp_path):
     assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.nc"), "--quiet"]) == 0
     ds = xr.open_dataset(tmp_path / "m.nc")
     assert {"mask", "test_bits", "cloud_optical_depth"} <= set(ds.data_vars)
+    assert ds.attrs["history"].endswith(" screen")
     assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.csv"), "--quiet"]) == 0
     df = pd.read_csv(tmp_path / "m.csv")
     assert list(df["mask"].map({"clear": 0, "marginal": 1, "cloud": 2, "no_data": 3})) == list(ds["mask"].values.ravel())
@@ -72,6 +73,13 @@ def test_simulate(tmp_path):
     assert out.returncode == 0
     ds = xr.open_dataset(tmp_path / "clear.nc")
     assert "bt_clear_11um" in ds and ds["bt_clear_11um"].attrs["units"] == "K"
+    # the scene's lat/lon travel with the simulation (CF auxiliary coordinates), and the
+    # history names the command
+    assert ds["lat"].attrs["standard_name"] == "latitude" and "lat" in ds["bt_clear_11um"].attrs["coordinates"]
+    assert ds.attrs["history"].endswith("simulate")
+    out = run("simulate", SMALL, "--out", tmp_path / "clear.csv")
+    assert out.returncode == 0
+    assert {"lat", "lon", "bt_clear_11um"} <= set(pd.read_csv(tmp_path / "clear.csv").columns)
 
 
 def test_exit_codes_for_bad_input_and_output(tmp_path):

@@ -144,3 +144,14 @@ def test_mismatched_shapes_are_refused_not_read_past():
         simulate_channel_major(p, t, q, cols[3], cols[5][:3], cols[4], channels(), coefficients(), levels=False)
     with pytest.raises(ValueError, match="one .levels"):
         simulate_channel_major(p, t[:, :4], q, cols[3], cols[5], cols[4], channels(), coefficients(), levels=False)
+
+
+def test_float32_runs_take_the_compiled_path(monkeypatch):
+    # the dashboard, the CLI and the Dask path all simulate float32 columns: they must reach
+    # the kernels (a silent fall-back to numpy would cost a factor of three to four)
+    calls = []
+    for name in ("profile", "simulate"):
+        real = getattr(fused, name)
+        monkeypatch.setattr(fused, name, lambda *a, _real=real, _name=name, **k: calls.append(_name) or _real(*a, **k))
+    _run(_columns(10), np.float32)
+    assert calls == ["profile", "simulate"]

@@ -249,6 +249,8 @@ def test_netcdf_download_holds_the_mask_and_the_settings(model, tmp_path):
         np.testing.assert_array_equal(ds["mask"].values, model.result.mask)
         cfg = json.loads(ds.attrs["cloudsieve_config"])
         assert cfg["tests"]["warm_departure"]["threshold"]["sea"] == 3.5
+        # the file says it came from the dashboard, not from a batch run
+        assert "cloudsieve" in ds.attrs["history"] and "dashboard export" in ds.attrs["history"]
 
 
 # ---------------------------------------------------------------------------------------

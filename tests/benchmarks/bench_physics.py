@@ -3,7 +3,10 @@
 Simulates clear-sky brightness temperatures for N pixels × 40 layers (41 levels) × 4 default
 channels from surface numbers, in float32 and in chunks of pixels, the way a scene is
 processed: ``physics.atmosphere.profile_levels_first`` → ``physics.clearsky.simulate_channel_major``
-with ``levels=False``. It runs once on one thread and once with a 2-thread
+with ``levels=False``. For this float32 input both run the compiled kernels of
+``physics.fused`` (numba; compiled or loaded from numba's cache before any timing); with
+``CLOUDSIEVE_PHYSICS=numpy`` in the environment they run the numpy reference path instead,
+and ``physics_path`` in the JSON says which ran. It runs once on one thread and once with a 2-thread
 ``concurrent.futures.ThreadPoolExecutor`` over the chunks (numpy releases the GIL in its
 loops), and compares both with a floor: one ``np.exp`` over a float32 array of N×40×4 elements,
 about the number of exponentials the transfer step alone needs.
@@ -174,8 +177,8 @@ def main(argv=None):
     parser.add_argument("--chunk", type=int, default=None,
                         help="pixels per chunk in both modes (default: the fastest measured for each mode)")
     parser.add_argument("--seed", type=int, default=20240601, help="random seed of the inputs")
-    parser.add_argument("--repeats", type=int, default=3,
-                        help="passes of each mode over all pixels; the best counts (default 3)")
+    parser.add_argument("--repeats", type=int, default=5,
+                        help="passes of each mode over all pixels; the best counts (default 5)")
     parser.add_argument("--exp-floor-only", type=int, default=None, metavar="N_ELEMENTS", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
 
@@ -187,8 +190,11 @@ def main(argv=None):
     import tomllib
     from importlib import resources
 
+    from physics import fused
     from physics.absorption import channel_coefficients
     from physics.channels import default_channels
+
+    fused.warm_up()  # compile (first run on a machine) or load the kernels: not part of any timing
 
     with resources.files("physics").joinpath("data/absorption.toml").open("rb") as fh:
         table = tomllib.load(fh)
@@ -269,6 +275,7 @@ def main(argv=None):
         "peak_rss_mb_with_floor": round(peak_with_floor, 1),
         "finite_fraction": round(float(finite.mean()), 6),
         "wall_s": round(wall, 3),
+        "physics_path": "compiled" if fused.enabled() else "numpy",
         "numpy": np.__version__,
         "cpu_count": os.cpu_count(),
     }
