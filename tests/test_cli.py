@@ -75,7 +75,7 @@ def test_simulate(tmp_path):
     assert "bt_clear_11um" in ds and ds["bt_clear_11um"].attrs["units"] == "K"
     # the scene's lat/lon travel with the simulation (CF auxiliary coordinates), and the
     # history names the command
-    assert ds["lat"].attrs["standard_name"] == "latitude" and "lat" in ds["bt_clear_11um"].attrs["coordinates"]
+    assert ds["lat"].attrs["standard_name"] == "latitude" and "lat" in ds["bt_clear_11um"].coords
     assert ds.attrs["history"].endswith("simulate")
     out = run("simulate", SMALL, "--out", tmp_path / "clear.csv")
     assert out.returncode == 0
