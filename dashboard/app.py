@@ -33,6 +33,19 @@ from .views.style import ACCENT, PAGE_CSS, channel_label, legend_html
 # HoloViews sizes plots by their frame (frame_width/frame_height); Bokeh's check does not know that
 silence(FIXED_SIZING_MODE, True)
 
+
+def _no_outside_font_request():
+    """Panel's Fast design links a web font from an outside font server on every page load.
+    The dashboard serves analysts' data, often offline, and must not call out from their
+    browser: drop that link (the page falls back to the browser's sans-serif, as it did
+    offline anyway). Everything else the page loads comes from this server."""
+    from panel.theme.fast import Fast
+
+    Fast._resources = {k: v for k, v in Fast._resources.items() if k != "font"}
+
+
+_no_outside_font_request()
+
 log = logging.getLogger("cloudsieve.dashboard")
 
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_scenes"

@@ -106,6 +106,10 @@ def test_server_options_for_localhost_and_upload_limit():
 # ---------------------------------------------------------------------------------------
 @pytest.mark.ui
 def test_page_renders_every_map_and_the_caution(served_app, page, artifacts):
+    # nothing is fetched from outside this server (analysts' data, often offline machines)
+    outside = []
+    page.on("request", lambda r: outside.append(r.url)
+            if not re.match(r"(https?|wss?)://127\.0\.0\.1[:/]|data:|blob:", r.url) else None)
     open_dashboard(page, served_app.url)
     assert page.title() == "cloudsieve"
     assert re.fullmatch(r"\d+\.\d%", cloud_percent(page))
@@ -119,6 +123,14 @@ def test_page_renders_every_map_and_the_caution(served_app, page, artifacts):
     page.wait_for_function(RENDERED, arg=3, timeout=TIMEOUT, polling=100)
     page.get_by_text("Validation report").first.wait_for(timeout=TIMEOUT)
     screenshot(page, artifacts, "ui_diagnostics.png")
+    assert outside == []
+    # at laptop width the diagnostics wrap: no plot is cut off at the right edge
+    page.set_viewport_size({"width": 1366, "height": 900})
+    page.wait_for_function("""() => { const figs = [...Bokeh.index.all_views()].filter(
+        v => v.model.type === 'Figure' && v.el.getBoundingClientRect().width > 0);
+        return figs.length >= 3 && figs.every(v => v.el.getBoundingClientRect().right <= window.innerWidth); }""",
+                           timeout=TIMEOUT, polling=200)
+    screenshot(page, artifacts, "ui_diagnostics_1366.png")
 
 
 @pytest.mark.ui

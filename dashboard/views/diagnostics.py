@@ -214,10 +214,12 @@ class Diagnostics(Viewer):
 
     def __init__(self, model, **params):
         super().__init__(**params)
-        self._layout = pn.Column(
-            pn.Row(DepartureHistogram(model), SplitWindowScatter(model)),
-            pn.Row(BiasFitPlot(model), pn.Column(SceneSummary(model), width=520)),
-            sizing_mode="stretch_width")
+        # a flex box: on a laptop-width window the plots wrap onto more rows instead of being
+        # cut off at the right edge
+        self._layout = pn.FlexBox(
+            DepartureHistogram(model), SplitWindowScatter(model), BiasFitPlot(model),
+            pn.Column(SceneSummary(model), width=520),
+            flex_wrap="wrap", align_items="flex-start", sizing_mode="stretch_width")
 
     def __panel__(self):
         return self._layout
