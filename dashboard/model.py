@@ -277,7 +277,7 @@ class ScreeningModel(param.Parameterized):
 
         Uses the grey-cloud forward model (physics.cloud.grey_cloud_radiance) with the
         clear-sky and opaque-level radiances of the simulation, at the retrieved top
-        pressure (or the fixed one). Returns dict with "tau", per channel modelled BT [K],
+        pressure, or at the reference (``top_pressure``) one for a clear pixel. Returns dict with "tau", per channel modelled BT [K],
         and the observed BT per channel.
         """
         ny, nx = self.result.mask.shape
@@ -287,9 +287,11 @@ class ScreeningModel(param.Parameterized):
             return None
         taus = np.concatenate([[0.0], np.geomspace(0.01, 20.0, 60)]) if taus is None else np.asarray(taus)
         p_top = self.result.cloud.top_pressure[row, col]
+        if not np.isfinite(p_top) and self.result.mask[row, col] != pl.CLEAR and self._cloud is not None:
+            p_top = self._cloud.top_pressure[row, col]
         if not np.isfinite(p_top):
-            p_top = self._cloud.top_pressure[row, col] if self._cloud is not None else np.nan
-        if not np.isfinite(p_top):
+            # a clear pixel has no retrieved top (a top fitted to its small departure would sit
+            # near the surface and show a flat curve): show a cloud at the reference top
             p_top = self.top_pressure
         if self.sim.level_pressure is not None:
             lp = self.sim.level_pressure[pos].astype(float)

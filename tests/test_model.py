@@ -256,6 +256,16 @@ def test_netcdf_download_holds_the_mask_and_the_settings(model, tmp_path):
 # ---------------------------------------------------------------------------------------
 # pixel inspector
 # ---------------------------------------------------------------------------------------
+def test_inspector_curve_of_a_clear_pixel_uses_the_reference_top(model):
+    # the inspector says so ("what a grey cloud at the reference top would do"); a thick cloud
+    # there must cool the 11 µm channel well below clear
+    y, x = np.argwhere(model.result.mask == pl.CLEAR)[0]
+    curve = model.optical_depth_curve(int(y), int(x))
+    assert curve["top_pressure"] == model.top_pressure
+    bt = curve["model"]["11um"]
+    assert bt[0] - bt[-1] > 10.0
+
+
 def test_pixel_info_of_a_cloudy_pixel(model):
     y, x = np.argwhere(model.result.mask == pl.CLOUD)[0]
     info = model.pixel_info(int(y), int(x))

@@ -134,5 +134,5 @@ class PixelInspector(Viewer):
                 layers.append(hv.HLine(obs).opts(color=col, line_dash="dashed", line_width=1.2))
         return hv.Overlay(layers).opts(
             title=f"Grey cloud at {curve['top_pressure']:.0f} hPa: BT vs optical depth",
-            frame_width=280, frame_height=220, logx=True, legend_position="top_right", show_grid=True,
+            frame_width=280, frame_height=220, logx=True, legend_position="bottom", legend_cols=2, show_grid=True,
             fontscale=0.85, toolbar=None, legend_opts={"background_fill_alpha": 0.7, "label_text_font_size": "10px"})
