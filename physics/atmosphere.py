@@ -394,9 +394,12 @@ def profile_levels_first(
     """
     f = np.dtype(dtype).type
     if np.dtype(dtype) == np.float32 and fused.enabled():  # the compiled kernel of the same formulas
-        return fused.profile(t_air, tcwv, surface_pressure,
-                             np.linspace(1.0, 0.0, n_levels), top_pressure, R_DRY_AIR * lapse_rate / GRAVITY,
-                             tropopause_temperature, humidity_exponent, STRATOSPHERE_Q, STRATOSPHERE_Q * 0.1)
+        try:
+            return fused.profile(t_air, tcwv, surface_pressure,
+                                 np.linspace(1.0, 0.0, n_levels), top_pressure, R_DRY_AIR * lapse_rate / GRAVITY,
+                                 tropopause_temperature, humidity_exponent, STRATOSPHERE_Q, STRATOSPHERE_Q * 0.1)
+        except fused.Unavailable:
+            pass  # warned once; the numpy path below
     t_air = np.asarray(t_air, dtype=dtype)
     tcwv = np.asarray(tcwv, dtype=dtype)
     ps = np.asarray(surface_pressure, dtype=dtype)

@@ -178,11 +178,15 @@ def simulate_channel_major(pressure, temperature, specific_humidity, t_skin, emi
     if dtype == np.float32 and fused.enabled():  # the compiled kernel of the same formulas
         f = np.float32
         inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=f)))
-        rad, bt, surf_t, trans, opaque = fused.simulate(pressure, temperature, specific_humidity, t_skin, emissivity,
-                                                        inv_mu, channels, coefficients, levels)
-        if levels:
-            trans, opaque = trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2)
-        return ClearSky(rad, bt, trans, opaque, surf_t)
+        try:
+            rad, bt, surf_t, trans, opaque = fused.simulate(pressure, temperature, specific_humidity, t_skin,
+                                                            emissivity, inv_mu, channels, coefficients, levels)
+        except fused.Unavailable:
+            pass  # warned once; the numpy path below
+        else:
+            if levels:
+                trans, opaque = trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2)
+            return ClearSky(rad, bt, trans, opaque, surf_t)
     tau = layer_optical_depth_level_major(pressure, temperature, specific_humidity, coefficients)
     f = tau.dtype.type
     inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=tau.dtype)))

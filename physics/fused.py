@@ -36,6 +36,7 @@ a pixel's result does not depend on where the chunking puts it.
 """
 import os
 import threading
+import warnings
 
 import numpy as np
 
@@ -61,9 +62,43 @@ F = np.float32
 TILE = 256
 
 
+#: why the compiled path was given up in this process (None while it works)
+failure = None
+
+
+class Unavailable(RuntimeError):
+    """The compiled kernels could not be built or run here; the caller takes the numpy path."""
+
+
 def enabled():
     """True when the compiled kernels are used for float32 input."""
-    return numba is not None and os.environ.get("CLOUDSIEVE_PHYSICS", "").lower() != "numpy"
+    return (numba is not None and failure is None
+            and os.environ.get("CLOUDSIEVE_PHYSICS", "").lower() != "numpy")
+
+
+def _run_kernel(kernel, *args):
+    """Call a kernel; if numba cannot compile or run it on this machine, say so once and
+    switch the process to the numpy path (same results to float32 rounding) instead of failing
+    the user's run."""
+    global failure
+    try:
+        return kernel(*args)
+    except Exception as exc:  # noqa: BLE001 - any compiler/runtime failure; inputs were checked before
+        failure = f"{type(exc).__name__}: {exc}".splitlines()[0][:300]
+        warnings.warn(f"cloudsieve: the compiled physics kernels are unavailable here ({failure}); "
+                      "using the numpy path (same results, about four times slower). Set "
+                      "CLOUDSIEVE_PHYSICS=numpy to skip the attempt.", RuntimeWarning, stacklevel=3)
+        raise Unavailable(failure) from exc
+
+
+def _njit(**options):
+    """numba.njit with on-disk caching where numba finds a writable cache folder, without it elsewhere."""
+    def decorate(fn):
+        try:
+            return numba.njit(cache=True, **options)(fn)
+        except RuntimeError:  # no writable cache location (read-only install and home)
+            return numba.njit(**options)(fn)
+    return decorate
 
 
 if numba is not None:
@@ -82,8 +117,8 @@ if numba is not None:
 
         return _types.int32(_types.float32), codegen
 
-    _jit = numba.njit(nogil=True, cache=True, error_model="numpy", fastmath={"contract"})
-    _scalar = numba.njit(cache=True, error_model="numpy", fastmath={"contract"})
+    _jit = _njit(nogil=True, error_model="numpy", fastmath={"contract"})
+    _scalar = _njit(error_model="numpy", fastmath={"contract"})
 
     _LOG2E = F(1.4426950408889634)
     _LN2_HI = F(0.693145751953125)  # ln 2 to 16 bits: k·_LN2_HI is exact for |k| < 2⁸
@@ -349,7 +384,7 @@ def profile(t_air, tcwv, surface_pressure, sigma, top_pressure, lapse_exponent, 
     p, t, q = np.empty((3, n_lev, n_pix), F)  # one block: glibc reuses it chunk after chunk
     tile = min(TILE, max(n_pix, 1))
     work = _workspace("profile", (2 * n_lev + 3) * tile)
-    _profile_kernel(t_air, tcwv, ps, _f32(sigma), F(top_pressure), F(lapse_exponent), F(tropopause_temperature),
+    _run_kernel(_profile_kernel, t_air, tcwv, ps, _f32(sigma), F(top_pressure), F(lapse_exponent), F(tropopause_temperature),
                     F(humidity_exponent), F(strat_q), F(q_floor), p, t, q, work[:n_lev * tile].reshape(n_lev, tile),
                     work[n_lev * tile:2 * n_lev * tile].reshape(n_lev, tile), work[2 * n_lev * tile:].reshape(3, tile))
     return p, t, q
@@ -392,7 +427,7 @@ def simulate(pressure, temperature, specific_humidity, t_skin, emissivity, inv_m
     work = _workspace("simulate", sum(sizes))
     bounds = np.cumsum((0,) + sizes)
     tau, inv_tau, b, x4, state = (work[a:z] for a, z in zip(bounds[:-1], bounds[1:]))
-    _simulate_kernel(p, t, q, _f32(t_skin), _f32(emissivity), _f32(inv_mu), c1nu3, c2nu, band_a, band_b,
+    _run_kernel(_simulate_kernel, p, t, q, _f32(t_skin), _f32(emissivity), _f32(inv_mu), c1nu3, c2nu, band_a, band_b,
                      _f32(k[0]), _f32(k[1]), _f32(k[2]), _f32(k[3]), F(coefficients.continuum_t0),
                      F(coefficients.line_pressure_exponent), F(diffusivity), radiance, bt, surf_trans, trans, opaque,
                      bool(levels), tau.reshape(n_lay, n_ch, tile), inv_tau.reshape(n_lay, n_ch, tile),

@@ -155,3 +155,21 @@ def test_float32_runs_take_the_compiled_path(monkeypatch):
         monkeypatch.setattr(fused, name, lambda *a, _real=real, _name=name, **k: calls.append(_name) or _real(*a, **k))
     _run(_columns(10), np.float32)
     assert calls == ["profile", "simulate"]
+
+
+def test_a_kernel_that_cannot_compile_falls_back_to_numpy_with_a_warning(monkeypatch):
+    # e.g. an llvmlite that does not match numba, or a CPU numba cannot target: the user's run
+    # must go on, on the numpy path, with one clear warning
+    def broken(*args):
+        raise RuntimeError("LLVM ERROR: cannot select this instruction\nmore lines")
+
+    monkeypatch.setattr(fused, "_simulate_kernel", broken)
+    monkeypatch.setattr(fused, "failure", None)
+    cols = _columns(20)
+    with pytest.warns(RuntimeWarning, match="compiled physics kernels are unavailable here.*cannot select"):
+        _, res = _run(cols, np.float32)
+    assert not fused.enabled() and "cannot select" in fused.failure
+    monkeypatch.setenv("CLOUDSIEVE_PHYSICS", "numpy")
+    _, ref = _run(cols, np.float32)
+    # the profile still came from its (working) kernel: the same to float32 rounding
+    assert np.max(np.abs(res.brightness_temperature - ref.brightness_temperature)) < 1e-3
