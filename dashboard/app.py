@@ -52,6 +52,7 @@ SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_scenes"
 DEFAULT_SCENE = "night_front.nc"
 SCENE_SUFFIXES = (".nc", ".csv", ".parquet")
 LOCAL_ADDRESSES = ("127.0.0.1", "localhost", "::1")
+DIAGNOSTICS_TAB = 1  # position of the Diagnostics tab
 
 
 # ---------------------------------------------------------------------------------------
@@ -182,6 +183,7 @@ class Session:
         about = pn.pane.Markdown(_about_text(), sizing_mode="stretch_width", max_width=900, css_classes=["cs-about"])
         self.tabs = pn.Tabs(("Maps & QA", self.maps), ("Diagnostics", self.diagnostics), ("About", about),
                             dynamic=True, sizing_mode="stretch_width", css_classes=["cs-tabs"])
+        self.tabs.param.watch(self._on_tab, "active")
         footer = pn.pane.HTML(f"<div class='cs-muted' style='padding:6px 10px;border-top:1px solid #e3e7ea'>"
                               f"cloudsieve {__version__} · {CAUTION}</div>", sizing_mode="stretch_width",
                               css_classes=["cs-footer"])
@@ -283,6 +285,29 @@ class Session:
         finally:
             self.tabs.loading = False
 
+    def _on_tab(self, *_):
+        if self.tabs.active != DIAGNOSTICS_TAB or len(self.diagnostics) or self.model is None:
+            return
+        model = self.model
+        waiting = pn.Row(pn.indicators.LoadingSpinner(value=True, size=28, color="primary"),
+                         pn.pane.HTML("<span class='cs-muted'>Drawing the diagnostics…</span>", margin=(14, 8)),
+                         css_classes=["cs-diagnostics-waiting"], margin=(20, 10))
+        self.diagnostics[:] = [waiting]
+
+        def build():
+            try:
+                if self.model is model and list(self.diagnostics) == [waiting]:
+                    self.diagnostics[:] = [Diagnostics(model)]
+            except Exception as exc:  # noqa: BLE001
+                self.diagnostics[:] = []
+                self.notices.report(exc, "drawing the diagnostics")
+
+        doc = pn.state.curdoc
+        if doc is not None and doc.session_context is not None:
+            doc.add_next_tick_callback(build)  # let the spinner reach the browser first
+        else:
+            build()
+
     def _current_label(self):
         if self.model is None:
             return None
@@ -315,7 +340,11 @@ class Session:
             pn.Row(pn.pane.HTML("<b>Channel of the temperature maps</b>", margin=(12, 0, 0, 10)), channel),
             maps, styles={"flex": "0 0 auto"}), side, flex_wrap="wrap", align_items="flex-start",
             sizing_mode="stretch_width")]
-        self.diagnostics[:] = [Diagnostics(model)]
+        # the diagnostics take a second or two to draw: built when their tab is first shown,
+        # behind a spinner, not with every scene
+        self.diagnostics[:] = []
+        if self.tabs.active == DIAGNOSTICS_TAB:
+            self._on_tab()
         self.tuning[:] = [TuningPanel(model, self.notices)]
         self.exports[:] = [ExportPanel(model, self.notices)]
         if model.message:
