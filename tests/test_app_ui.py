@@ -8,6 +8,8 @@ Screenshots go to test-artifacts/.
 import json
 import re
 import shutil
+import subprocess
+import sys
 import types
 from pathlib import Path
 
@@ -99,6 +101,31 @@ def test_server_options_for_localhost_and_upload_limit():
     assert opts["http_server_kwargs"]["max_buffer_size"] == opts["websocket_max_message_size"]
     remote = server_options("0.0.0.0", 80, ["maps.example.org:80"], 10.0)
     assert remote["websocket_origin"] == ["maps.example.org:80"]
+
+
+def test_the_page_renders_without_matplotlib(tmp_path):
+    # `pip install -e .` (the README's first command) brings no matplotlib; the test extras do.
+    # Colour maps named the matplotlib way made the maps fail on a base install: render the
+    # page, the diagnostics and the inspector curve with matplotlib unimportable
+    code = f"""
+import sys
+sys.modules["matplotlib"] = None
+import holoviews as hv
+import panel as pn
+from bokeh.document import Document
+from dashboard.app import Session
+from dashboard.views import Diagnostics, PixelInspector
+session = Session([{str(SAMPLES / "night_front_small.csv")!r}], None, None, 200.0)
+session.template.server_doc(Document())
+assert session.model is not None, session.notices.text()
+assert not session.notices._alert.visible, session.notices.text()
+pn.panel(Diagnostics(session.model)).get_root(Document())
+hv.render(PixelInspector(session.model, session.focus, session.notices).curve((3, 4)), backend="bokeh")
+print("rendered")
+"""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300,
+                         cwd=str(tmp_path))
+    assert out.returncode == 0 and "rendered" in out.stdout, out.stderr[-2000:]
 
 
 # ---------------------------------------------------------------------------------------

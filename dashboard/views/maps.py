@@ -7,8 +7,9 @@ A click on any map picks the pixel for the inspector; the box and lasso tools se
 for QA edits. Grids of a million pixels or more are rasterized with datashader; their
 values under the cursor are then read from the source arrays into a readout line.
 """
-import numpy as np
+import colorcet
 import holoviews as hv
+import numpy as np
 import panel as pn
 from bokeh.models import CustomJSHover, FixedTicker, Range1d
 from panel.viewable import Viewer
@@ -22,10 +23,12 @@ YDIM = hv.Dimension("y", label="row")
 NAN_COLOUR = "#eef0f2"
 RASTERIZE_ABOVE = 1_000_000  # pixels
 
-BT_CMAP = "cet_CET_L12"        # light = cold, the way infrared imagery shows cloud
-DEPARTURE_CMAP = "cet_CET_D1A"  # blue (colder than clear) – white – red (warmer)
-TAU_CMAP = "cet_CET_L17"
-PTOP_CMAP = "cet_CET_L8_r"     # high (low-pressure) tops in the brightest colour
+# colour maps as explicit colorcet palettes (hex lists): HoloViews resolves a "cet_…" name
+# only where matplotlib is installed, which the dashboard does not need
+BT_CMAP = list(colorcet.palette["CET_L12"])          # light = cold, the way infrared imagery shows cloud
+DEPARTURE_CMAP = list(colorcet.palette["CET_D1A"])   # blue (colder than clear) – white – red (warmer)
+TAU_CMAP = list(colorcet.palette["CET_L17"])
+PTOP_CMAP = list(colorcet.palette["CET_L8"])[::-1]  # high (low-pressure) tops in the brightest colour
 
 _OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=False, tools=[],
                      clipping_colors={"NaN": "#00000000"})
