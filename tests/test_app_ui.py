@@ -188,6 +188,11 @@ def test_clicking_a_pixel_fills_the_inspector(served_app, page, artifacts):
     for text in ("observed [K]", "clear sky [K]", "departure [K]", "margin [K]", "Cloud retrieval", "11 µm"):
         assert text in inspector
     page.wait_for_function(RENDERED, arg=7, timeout=TIMEOUT, polling=100)  # the BT-vs-τ curve
+    # the pixel is ringed on all six maps (the inspector may be scrolled out of sight)
+    page.wait_for_function("""() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'GlyphRenderer'
+        && v.model.glyph.type === 'Scatter').filter(v => { const d = v.model.data_source.data;
+        return d.x && d.x.length === 1 && d.x[0] === 150 && d.y[0] === 120; }).length >= 12""",
+                           timeout=TIMEOUT, polling=200)
     screenshot(page, artifacts, "ui_inspector.png")
 
 

@@ -93,8 +93,9 @@ class MapGrid(Viewer):
     def __panel__(self):
         hint = pn.pane.HTML(
             '<span class="cs-muted">Drag to pan, scroll to zoom (all maps follow). Click a pixel to inspect '
-            'it. For QA edits pick the box or lasso tool in a map\'s toolbar and drag over the map; the '
-            'selection is outlined (dashed) on the class map.</span>',
+            'it: it is ringed on every map, and the Pixel inspector (at the right, or below the maps in a '
+            'narrow window) shows its numbers. For QA edits pick the box or lasso tool in a map\'s toolbar '
+            'and drag over the map; the selection is outlined (dashed) on the class map.</span>',
             margin=(0, 10))
         return pn.Column(hint, self._readout, self._layout, width=2 * (self._fw + 190))
 
@@ -161,6 +162,14 @@ class MapGrid(Viewer):
         return hv.Image((self._xs, self._ys, rim.astype(np.float32)), kdims=[XDIM, YDIM],
                         vdims=["edited"]).opts(**_OUTLINE_OPTS)
 
+    def inspected_marker(self, pixel=None):
+        """A ring around the inspected pixel (white under black, visible on every palette)."""
+        pts = [] if pixel is None else [(pixel[1] + self.focus.col0, pixel[0] + self.focus.row0)]
+        ring = dict(marker="circle", fill_alpha=0, tools=[], nonselection_alpha=1)
+        return (hv.Points(pts, kdims=[XDIM, YDIM]).opts(size=15, line_color="white", line_width=4, **ring)
+                * hv.Points(pts, kdims=[XDIM, YDIM]).opts(size=15, line_color=SELECTION_LINE, line_width=1.5,
+                                                           **ring))
+
     def selection_outline(self, outline=None):
         path = hv.Path([outline] if outline else [], kdims=[XDIM, YDIM])
         return path.opts(color=SELECTION_LINE, line_width=1.5, line_dash="dashed", tools=[])
@@ -199,7 +208,7 @@ class MapGrid(Viewer):
                 rim = rasterize(rim, aggregator="max").opts(**_OUTLINE_OPTS)
             sel = hv.DynamicMap(pn.bind(self.selection_outline, outline=self.focus.param.outline))
             layers = layers * rim * sel
-        return layers
+        return layers * hv.DynamicMap(pn.bind(self.inspected_marker, pixel=self.focus.param.pixel))
 
     def _build(self):
         m = self.model
