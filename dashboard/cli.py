@@ -61,6 +61,12 @@ def build_parser():
     p.add_argument("--version", action="version", version=f"cloudsieve {__version__}")
     p.add_argument("--debug", action="store_true", help="show full tracebacks of internal errors")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    # --debug also after the command (the error messages suggest adding it to the command run)
+    debug = argparse.ArgumentParser(add_help=False)
+    debug.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                       help="show full tracebacks of internal errors")
+    _add_parser = sub.add_parser
+    sub.add_parser = lambda *a, **k: _add_parser(*a, parents=[debug], **k)
 
     c = sub.add_parser("check", help="validate scene files and print every problem found",
                        description="Read each scene and print one report listing every problem with what to do.")
@@ -155,7 +161,7 @@ def _output_format(out, fmt):
                          f"(e.g. --out {Path(out).with_suffix('.nc' if fmt == 'netcdf' else '.csv')})")
     if not fmt and not by_name:
         raise SceneError(f"cannot tell the output format from '{Path(out).name}'; end --out in .nc (CF-NetCDF) "
-                         f"or .csv, or give --format netcdf|csv")
+                         f"or .csv, or give --format netcdf|csv; for a folder, end --out in '/'")
     return fmt or by_name
 
 
@@ -237,7 +243,8 @@ def cmd_screen(args):
     files = _expand(args.scenes)
     out = Path(args.out)
     pattern = any(ch in a for a in args.scenes for ch in "*?[")  # a pattern means an archive: --out is a folder
-    many = len(files) > 1 or out.is_dir() or pattern
+    as_folder = str(args.out).endswith(("/", os.sep))  # 'results/': a folder, made if missing
+    many = len(files) > 1 or out.is_dir() or pattern or as_folder
     if not many:
         args.format = _output_format(out, args.format)
     if many:

@@ -171,9 +171,12 @@ def _atomic_target(path):
         raise OutputError(f"'{path}' is a folder; give a file name for the output")
     if not os.access(folder, os.W_OK):
         raise OutputError(f"cannot write into '{folder}' (no permission); choose another --out")
-    _sweep_stale_parts(folder, path.name)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".part", dir=folder)
-    os.close(fd)
+    try:
+        _sweep_stale_parts(folder, path.name)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".part", dir=folder)
+        os.close(fd)
+    except OSError as exc:  # a folder that refuses files (read-only mount, /proc, a full disk)
+        raise OutputError(f"cannot write into '{folder}' ({exc.strerror or exc}); choose another --out") from None
     return path, Path(tmp)
 
 

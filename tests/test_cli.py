@@ -149,3 +149,21 @@ def test_patterns_skip_truth_files_and_say_so(tmp_path):
     out = run("check", data / "polar_ice_truth.nc")
     assert out.returncode == 2 and "truth of a sample scene" in out.stdout + out.stderr
     assert "polar_ice.nc" in out.stdout + out.stderr
+
+
+def test_output_folder_with_a_trailing_slash_is_made(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    assert main(["screen", str(SMALL), "--out", "results/", "--quiet"]) == 0
+    assert [p.name for p in (tmp_path / "results").iterdir()] == ["night_front_small_mask.nc"]
+
+
+def test_a_folder_that_refuses_files_is_an_output_error_not_a_bug(tmp_path, capsys):
+    # /proc takes no new files (on Linux): exit 3 with the reason, as for any unwritable output
+    assert main(["screen", str(SMALL), "--out", "/proc/mask.nc", "--quiet"]) == 3
+    err = capsys.readouterr().err
+    assert "cannot write into '/proc'" in err and "bug" not in err
+
+
+def test_debug_is_accepted_after_the_command(tmp_path):
+    assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.nc"), "--quiet", "--debug"]) == 0
+
