@@ -28,7 +28,7 @@ from .scene import load_scene
 from .views import (ClassCounts, Diagnostics, ExportPanel, Focus, MapGrid, Notices, PixelInspector, QAPanel,
                     TuningPanel)
 from .views.scenes import ScenePicker, UploadBox
-from .views.style import ACCENT, PAGE_CSS, channel_label, legend_html
+from .views.style import ACCENT, BUTTON_GROUP_CSS, PAGE_CSS, channel_label, legend_html
 
 # HoloViews sizes plots by their frame (frame_width/frame_height); Bokeh's check does not know that
 silence(FIXED_SIZING_MODE, True)
@@ -324,7 +324,8 @@ class Session:
         self.focus = focus
         channel = pn.widgets.RadioButtonGroup(options={channel_label(c): c for c in model.param.channel.objects},
                                               value=model.channel, color="primary", variant="outline",
-                                              margin=(6, 10), css_classes=["cs-channel"])
+                                              margin=(6, 10), css_classes=["cs-channel"],
+                                              stylesheets=[BUTTON_GROUP_CSS])
         channel.link(model, value="channel")
         maps = MapGrid(model, focus, self.notices)
         side = pn.Column(

@@ -8,6 +8,8 @@ import io
 import panel as pn
 from panel.viewable import Viewer
 
+from .style import OUTLINE_BUTTON_CSS
+
 
 class ExportPanel(Viewer):
     """CSV and NetCDF download buttons."""
@@ -18,11 +20,12 @@ class ExportPanel(Viewer):
         name = model.scene.name
         self.csv = pn.widgets.FileDownload(callback=self._callback("csv"), filename=f"{name}_mask.csv",
                                            label="Download CSV", color="primary", variant="outline",
-                                           sizing_mode="stretch_width", css_classes=["cs-download-csv"])
+                                           sizing_mode="stretch_width", css_classes=["cs-download-csv"],
+                                           stylesheets=[OUTLINE_BUTTON_CSS])
         self.netcdf = pn.widgets.FileDownload(callback=self._callback("netcdf"), filename=f"{name}_mask.nc",
                                               label="Download NetCDF", color="primary",
                                               variant="outline", sizing_mode="stretch_width",
-                                              css_classes=["cs-download-nc"])
+                                              css_classes=["cs-download-nc"], stylesheets=[OUTLINE_BUTTON_CSS])
         n = model.result.mask.size
         hint = ("" if n <= 1_000_000 else
                 "<div class='cs-muted'>Large scene: NetCDF is much smaller and faster than CSV.</div>")

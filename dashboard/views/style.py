@@ -25,6 +25,14 @@ SELECTION_LINE = "#111827"
 ACCENT = "#17595c"
 INK = "#1f2933"
 
+#: button stylesheets (inside the widgets' shadow roots). The design's outline buttons drew
+#: download links in grey, like disabled ones, and the chosen option of a button group in dark
+#: text on the dark accent; these keep the accent for what can be pressed and white text on it.
+OUTLINE_BUTTON_CSS = (f".bk-btn {{ color: {ACCENT} !important; border-color: {ACCENT} !important; }} "
+                      f".bk-btn:hover {{ color: white !important; background-color: {ACCENT} !important; }}")
+BUTTON_GROUP_CSS = (f".bk-btn.bk-active {{ color: white !important; background-color: {ACCENT} !important; "
+                    f"border-color: {ACCENT} !important; }} .bk-btn {{ border-color: {ACCENT}; }}")
+
 #: channel colours (Okabe–Ito, colour-blind safe)
 CHANNEL_COLOURS = {"3p9um": "#D55E00", "8p6um": "#009E73", "11um": "#0072B2", "12um": "#CC79A7"}
 _SPARE = ["#E69F00", "#56B4E9", "#F0E442", "#000000"]

@@ -9,7 +9,7 @@ from panel.viewable import Viewer
 
 from ..config import SURFACES
 from ..model import TUNABLE
-from .style import SURFACE_LABELS, TEST_HELP, TEST_LABELS
+from .style import BUTTON_GROUP_CSS, SURFACE_LABELS, TEST_HELP, TEST_LABELS
 
 #: slider range and step per unit label of model.TUNABLE
 _RANGE = {"× σ": (0.0, 10.0, 0.1), "K": (0.0, 10.0, 0.05)}
@@ -26,6 +26,7 @@ class TuningPanel(Viewer):
         self.surface = pn.widgets.RadioButtonGroup(
             label="Surface", options={SURFACE_LABELS[s]: s for s in self.surfaces}, value=self.surfaces[0],
             color="primary", variant="outline", visible=len(self.surfaces) > 1, sizing_mode="stretch_width",
+            stylesheets=[BUTTON_GROUP_CSS],
             description="Thresholds are set per surface type; choose which one the sliders below edit.")
         self.switches, self.sliders = {}, {}
         rows = []
@@ -53,7 +54,7 @@ class TuningPanel(Viewer):
         # cloud layer and other settings
         self.cloud_top = pn.widgets.RadioButtonGroup.from_param(
             model.param.cloud_top, label="Cloud top", color="primary", variant="outline",
-            sizing_mode="stretch_width")
+            sizing_mode="stretch_width", stylesheets=[BUTTON_GROUP_CSS])
         self.top_pressure = pn.widgets.FloatSlider(
             label="fixed cloud-top pressure [hPa]", start=model.param.top_pressure.bounds[0],
             end=model.param.top_pressure.bounds[1], step=model.param.top_pressure.step or 10.0,
