@@ -292,3 +292,19 @@ def test_pixel_info_of_a_cloudy_pixel(model):
 def test_pixel_info_outside_the_grid_is_a_clear_error(model):
     with pytest.raises(ValueError, match="outside"):
         model.pixel_info(10_000, 0)
+
+
+def test_inspector_text_explains_an_emissivity_outside_the_grey_model(model):
+    # the raw radiance ratio can leave [0, 1] (noise, a second layer, non-grey ice); the
+    # inspector shows the clipped value, as exported, and says why
+    from dashboard.views import Notices, PixelInspector
+    from dashboard.views.focus import Focus
+
+    cl = model.result.cloud
+    emis = np.asarray(cl.emissivity)  # (inversion channel, y, x)
+    outside = np.argwhere(np.any(np.isfinite(emis) & ((emis > 1.0) | (emis < 0.0)), axis=0))
+    assert len(outside), "sample scene has no pixel with a ratio outside [0, 1]"
+    y, x = (int(v) for v in outside[0])
+    inspector = PixelInspector(model, Focus(model.result.mask.shape), Notices())
+    text = inspector.text((y, x))
+    assert "outside the grey-cloud model" in text

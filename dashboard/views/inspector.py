@@ -103,14 +103,19 @@ class PixelInspector(Viewer):
                 f"| top pressure | {_f(cl['top_pressure'], '.0f')} hPa |",
                 f"| top temperature | {_f(cl['top_temperature'], '.1f')} K |"]
         for ch, e in cl["emissivity"].items():
-            out.append(f"| emissivity {channel_label(ch)} | {_f(e, '.3f')} |")
+            value = _f(e, '.3f')
+            if e is not None and np.isfinite(e) and not 0.0 <= e <= 1.0:
+                # the raw radiance ratio; outside [0, 1] the grey single-layer model does not hold
+                # for this channel (noise, a second layer, or non-grey ice at 3.9 µm) — as exported
+                value = f"{min(max(e, 0.0), 1.0):.3f} (ratio {e:.3f}: outside the grey-cloud model)"
+            out.append(f"| emissivity {channel_label(ch)} | {value} |")
         if info["class"] == "clear":
             out.append("\n<span class='cs-muted'>Clear pixel: no cloud retrieval; the curve below shows what a "
                        "grey cloud at the reference top would do.</span>")
         return "\n".join(out)
 
     def curve(self, pixel=None, version=None):
-        tau_dim = hv.Dimension("tau", label="cloud optical depth", unit="1")
+        tau_dim = hv.Dimension("tau", label="cloud optical depth (absorption)")
         bt_dim = hv.Dimension("bt", label="brightness temperature", unit="K")
         empty = hv.Curve([], kdims=[tau_dim], vdims=[bt_dim]).opts(frame_width=280, frame_height=220, logx=True)
         if pixel is None:
