@@ -43,6 +43,15 @@ def _grid_coords(ds):
     return {k: xr.Variable(*v) for k, v in coords.items()}, ("row col lat lon" if has_latlon else "row col")
 
 
+def _physics_path():
+    """Which implementation simulated the clear sky in this process (provenance of the file)."""
+    from physics import fused
+
+    if fused.enabled():
+        return "compiled float32 kernels (physics.fused, numba)"
+    return "numpy reference" + (f" (compiled kernels unavailable: {fused.failure})" if fused.failure else "")
+
+
 def _history(action):
     return f"{_dt.datetime.now(_dt.timezone.utc).strftime('%Y-%m-%dT%H:%M:%SZ')} cloudsieve {__version__} {action}"
 
@@ -136,6 +145,7 @@ def result_dataset(scene, sim, res, config, edits=None, action="screen"):
         "references": "README.md of cloudsieve: methods, tests and their published sources",
         "cloudsieve_scene": str(scene.name),
         "cloudsieve_channels": " ".join(sim.channels),
+        "cloudsieve_physics": _physics_path(),
         "cloudsieve_config": config_json(config),
         "cloudsieve_bias_fit": json.dumps(res.bias, sort_keys=True),
         "cloudsieve_notes": json.dumps(res.notes + (cl.notes if cl is not None else [])),
@@ -343,5 +353,6 @@ def write_simulation(scene, sim, path, fmt=None):
     for v in out.data_vars.values():
         v.attrs["coordinates"] = coordinates
     out.attrs.update({"Conventions": "CF-1.10", "title": f"cloudsieve clear-sky simulation of scene {scene.name}",
-                      "source": f"cloudsieve {__version__}", "history": _history("simulate"), "comment": CAUTION})
+                      "source": f"cloudsieve {__version__}", "history": _history("simulate"), "comment": CAUTION,
+                      "cloudsieve_physics": _physics_path()})
     return write_result(out, path, fmt)

@@ -11,9 +11,10 @@ Problems that make the whole scene untrustworthy (missing columns, text in numer
 columns, °C instead of K, impossible values, duplicate positions, unknown channels) are
 errors and stop the run with one report.
 """
+import difflib
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
-import re
 
 import numpy as np
 import pandas as pd
@@ -428,14 +429,22 @@ def _validate_grid(grid, known_channels, report):
                 ch = name[len(kind) + 1:]
                 if ch in known_channels and ch not in channels:
                     report.warn(f"'{name}' given but the scene has no 'bt_{ch}'", "it is ignored")
+    known = set(COLUMNS) | {f"{k}_{c}" for k in ("bt", "bt_clear", "emis") for c in known_channels}
+    unknown = [n for n in names if n not in known and not _CH_RE.match(n)]
     missing = [c for c in REQUIRED if c not in names and c not in ("row", "col")]
     if not channels:
         missing.append("bt_<channel> (e.g. bt_11um)")
     if missing:
+        # a renamed column (satzen for sat_zenith, tskin for t_skin) is the usual cause
+        guesses = {}
+        for col in missing:
+            close = difflib.get_close_matches(col.lower(), [u.lower() for u in unknown], n=1, cutoff=0.6)
+            if close:
+                guesses[col] = next(u for u in unknown if u.lower() == close[0])
+        hint = ", ".join(f"'{u}' to '{c}'" for c, u in guesses.items())
         report.error(f"required column(s) missing: {', '.join(missing)}",
-                     "add them (see the scene format table: column, unit, meaning)")
-    known = set(COLUMNS) | {f"{k}_{c}" for k in ("bt", "bt_clear", "emis") for c in known_channels}
-    unknown = [n for n in names if n not in known and not _CH_RE.match(n)]
+                     (f"if they are there under another name, rename {hint}; otherwise " if hint else "")
+                     + "add them (see the scene format table: column, unit, meaning)")
     if unknown:
         report.warn(f"column(s) not used by cloudsieve: {', '.join(unknown[:8])}", "they are ignored")
 

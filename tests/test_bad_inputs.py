@@ -76,6 +76,8 @@ CASES = [
     ("Parquet corrupt", "s.parquet", _parquet_corrupt, 2, ["not a readable Parquet"]),
     ("missing required column", "s.csv", _mutate(lambda d: d.drop(columns=["tcwv"])), 2,
      ["tcwv", "missing"]),
+    ("required column under another name", "s.csv", _mutate(lambda d: d.rename(columns={"sat_zenith": "satzen"})),
+     2, ["sat_zenith", "rename 'satzen' to 'sat_zenith'"]),
     ("no brightness temperature", "s.csv",
      _mutate(lambda d: d.drop(columns=[c for c in d.columns if c.startswith("bt_")])), 2,
      ["bt_<channel>"]),

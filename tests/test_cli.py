@@ -44,6 +44,9 @@ def test_screen_one_scene_netcdf_and_csv(tmp_path):
     ds = xr.open_dataset(tmp_path / "m.nc")
     assert {"mask", "test_bits", "cloud_optical_depth"} <= set(ds.data_vars)
     assert ds.attrs["history"].endswith(" screen")
+    from physics import fused  # provenance of the numbers: which implementation ran
+
+    assert ds.attrs["cloudsieve_physics"].startswith("compiled float32" if fused.enabled() else "numpy")
     assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.csv"), "--quiet"]) == 0
     df = pd.read_csv(tmp_path / "m.csv")
     assert list(df["mask"].map({"clear": 0, "marginal": 1, "cloud": 2, "no_data": 3})) == list(ds["mask"].values.ravel())
