@@ -218,7 +218,14 @@ if numba is not None:
                     pj[i] = p
                     tj[i] = t
                     qsj[i] = qs
-                    shj[i] = exp32(lr * humidity_exponent)
+                    shj[i] = p / pss[i]  # (p/p_s), raised to the humidity exponent below
+                # the default exponent 3 needs no exponential (same value to rounding)
+                if humidity_exponent == F(3.0):
+                    for i in range(m):
+                        shj[i] = shj[i] * shj[i] * shj[i]
+                else:
+                    for i in range(m):
+                        shj[i] = exp32(humidity_exponent * log32(shj[i]))
             for it in range(4):  # the shape's column, two refinements of the scale, then the final q
                 for i in range(m):
                     column[i] = _ZERO
@@ -289,8 +296,15 @@ if numba is not None:
                     p_rel = p_lay * inv_p0
                     x_self[i] = u * e * inv_p0 * exp32(continuum_t0 * (_ONE / t_lay - inv_t_ref))
                     x_for[i] = u * (p_rel - e * inv_p0)
-                    x_line[i] = u * exp32(line_exponent * log32(p_rel))
+                    x_line[i] = u  # times (p/p₀)ⁿ below
                     x_dry[i] = F(2.0) * p_rel * (dp * inv_p0)
+                # square-root scaling (n = ½, the data file's value) needs no exponential
+                if line_exponent == _HALF:
+                    for i in range(m):
+                        x_line[i] *= np.sqrt(_HALF * (p0[i] + p1[i]) * inv_p0)
+                else:
+                    for i in range(m):
+                        x_line[i] *= exp32(line_exponent * log32(_HALF * (p0[i] + p1[i]) * inv_p0))
                 for c in range(n_ch):
                     tjc, rjc = tau[j, c], inv_tau[j, c]
                     ks, kf, kl, kd = k_self[c], k_for[c], k_line[c], k_dry[c]

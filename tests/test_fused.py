@@ -173,3 +173,18 @@ def test_a_kernel_that_cannot_compile_falls_back_to_numpy_with_a_warning(monkeyp
     _, ref = _run(cols, np.float32)
     # the profile still came from its (working) kernel: the same to float32 rounding
     assert np.max(np.abs(res.brightness_temperature - ref.brightness_temperature)) < 1e-3
+
+
+def test_non_default_exponents_take_the_general_branch_and_still_match():
+    # the kernels shortcut the default humidity exponent (3) and line pressure exponent (½);
+    # other values go through exp/log and must agree with numpy as well
+    t_air, tcwv, ps, t_skin, zen, emis = _columns(500, seed=5)
+    co = coefficients()._replace(line_pressure_exponent=0.7)
+    res = {}
+    for f in (np.float32, np.float64):
+        p, t, q = profile_levels_first(t_air.astype(f), tcwv.astype(f), ps.astype(f), n_levels=41, dtype=f,
+                                       humidity_exponent=2.5)
+        res[f] = (q, simulate_channel_major(p, t, q, t_skin.astype(f), emis.astype(f), zen.astype(f), channels(), co,
+                                            levels=False))
+    assert np.max(np.abs(res[np.float32][0] / res[np.float64][0] - 1.0)) < 1e-4
+    assert np.max(np.abs(res[np.float32][1].brightness_temperature - res[np.float64][1].brightness_temperature)) < 1e-3
