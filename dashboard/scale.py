@@ -142,7 +142,10 @@ def open_lazy(path, config, chunk_rows=DEFAULT_CHUNK_ROWS):
     for v in needed:
         ok = np.isfinite(out[v])
         valid = ok if valid is None else valid & ok
-    out["valid"] = valid.persist()  # one byte per pixel, reused by every pass
+    # The checks read every variable once. They run on this process's threads even when a
+    # Dask cluster is attached: shipping the chunks to workers and back made them four times
+    # slower (4.1–4.6 s against 1.1 s for 2000 × 2000) and they do not scale with workers.
+    out["valid"] = valid.persist(scheduler="threads")  # one byte per pixel, reused by every pass
     _check_ranges(out, order, path.name, problems)
     out.attrs["channels"] = " ".join(order)
     return LazyScene(out, tuple(order), path.stem, path)
@@ -163,7 +166,7 @@ def _check_ranges(ds, channels, name, problems):
     names = [v for v in ds.data_vars if v not in ("surface", "valid")]
     stats = {v: (ds[v].min(skipna=True).data, ds[v].max(skipna=True).data, ds[v].mean(skipna=True).data)
              for v in names}
-    (computed,) = dask.compute(stats)
+    (computed,) = dask.compute(stats, scheduler="threads")  # see open_lazy
     for v, (lo_v, hi_v, mean_v) in computed.items():
         lo_v, hi_v, mean_v = float(lo_v), float(hi_v), float(mean_v)
         if not np.isfinite(mean_v):
