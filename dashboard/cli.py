@@ -65,15 +65,13 @@ def build_parser():
     debug = argparse.ArgumentParser(add_help=False)
     debug.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                        help="show full tracebacks of internal errors")
-    _add_parser = sub.add_parser
-    sub.add_parser = lambda *a, **k: _add_parser(*a, parents=[debug], **k)
 
-    c = sub.add_parser("check", help="validate scene files and print every problem found",
+    c = sub.add_parser("check", parents=[debug], help="validate scene files and print every problem found",
                        description="Read each scene and print one report listing every problem with what to do.")
     c.add_argument("scenes", nargs="+", metavar="SCENE", help="scene file(s): .csv, .parquet or .nc")
     c.add_argument("--config", metavar="FILE", help="TOML configuration (adds channels)")
 
-    s = sub.add_parser("screen", help="screen scenes: mask, test margins, departures, cloud layer",
+    s = sub.add_parser("screen", parents=[debug], help="screen scenes: mask, test margins, departures, cloud layer",
                        description="Screen scene(s) and write the mask, test bits and margins, departures, "
                                    "clear-sky brightness temperatures and the grey-cloud layer.",
                        formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -95,14 +93,15 @@ def build_parser():
     big.add_argument("--scheduler", metavar="ADDRESS",
                      help="use an existing dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
 
-    m = sub.add_parser("simulate", help="write clear-sky brightness temperatures and departures only",
+    m = sub.add_parser("simulate", parents=[debug], help="write clear-sky brightness temperatures and departures only",
                        description="Simulate the clear-sky brightness temperature of every pixel and channel.")
     m.add_argument("scene", metavar="SCENE", help="scene file: .csv, .parquet or .nc")
     m.add_argument("--out", required=True, metavar="PATH", help="output file (.nc or .csv)")
     m.add_argument("--config", metavar="FILE", help="TOML configuration overriding the defaults")
     m.add_argument("--format", choices=("csv", "netcdf"), help="output format (default: from the --out extension)")
 
-    v = sub.add_parser("serve", help="serve the dashboard on 127.0.0.1; open the address it prints in a browser",
+    v = sub.add_parser("serve", parents=[debug],
+                       help="serve the dashboard on 127.0.0.1; open the address it prints in a browser",
                        description="Serve the dashboard and print its address (open it in a browser, or pass "
                                    "--show). With no scene it opens the bundled sample scene.")
     v.add_argument("scenes", nargs="*", metavar="SCENE", help="scene file(s) to open")
@@ -123,7 +122,7 @@ def build_parser():
                    help="secret that signs the login cookie (default: a random one per server start; "
                         "also read from CLOUDSIEVE_COOKIE_SECRET)")
 
-    g = sub.add_parser("config", help="print the default configuration (TOML)")
+    g = sub.add_parser("config", parents=[debug], help="print the default configuration (TOML)")
     g.add_argument("--show", action="store_true", help="print the defaults (the default action)")
     g.add_argument("--check", metavar="FILE", help="validate a configuration file")
     return p

@@ -277,8 +277,8 @@ class ScreeningModel(param.Parameterized):
 
         Uses the grey-cloud forward model (physics.cloud.grey_cloud_radiance) with the
         clear-sky and opaque-level radiances of the simulation, at the retrieved top
-        pressure, or at the reference (``top_pressure``) one for a clear pixel. Returns dict with "tau", per channel modelled BT [K],
-        and the observed BT per channel.
+        pressure, or at the reference (``top_pressure``) one for a clear pixel. Returns dict
+        with "tau", per channel modelled BT [K], and the observed BT per channel.
         """
         ny, nx = self.result.mask.shape
         flat = row * nx + col
