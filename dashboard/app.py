@@ -19,12 +19,14 @@ import panel as pn
 from bokeh.core.validation import silence
 from bokeh.core.validation.warnings import FIXED_SIZING_MODE
 
-from . import CAUTION, __version__
-from . import pipeline as pl
-from .config import config_json, load_config
-from .errors import CloudsieveError, PathError, SceneError
-from .model import ScreeningModel, compact_scene
-from .scene import load_scene
+from cloudsieve import CAUTION, __version__
+from cloudsieve.config import config_json, load_config
+from cloudsieve.errors import CloudsieveError, PathError, SceneError
+from cloudsieve.scene import load_scene
+from cloudsieve.session import compact_scene
+from cloudsieve.simulate import simulate
+
+from .model import ScreeningModel
 from .views import (ClassCounts, Diagnostics, ExportPanel, Focus, MapGrid, Notices, PixelInspector, QAPanel,
                     TuningPanel)
 from .views.scenes import ScenePicker, UploadBox
@@ -125,7 +127,7 @@ def load_cached(path, config):
             _CACHE.move_to_end(key)
             return _CACHE[key]
         scene = compact_scene(load_scene(path, config=config))  # large scenes: lat/lon in float32 where lossless
-        sim = pl.simulate(scene, config)
+        sim = simulate(scene, config)
         _CACHE[key] = (scene, sim)
         while len(_CACHE) > _CACHE_SIZE:
             _CACHE.popitem(last=False)

@@ -290,29 +290,6 @@ DEFAULT_HUMIDITY_EXPONENT = 3.0  # λ in q = q0 (p/ps)^λ (Smith 1966, J. Appl. 
 STRATOSPHERE_Q = 3.0e-6  # [kg kg⁻¹] floor above the tropopause (~5 ppmv, common practice)
 
 
-def pressure_levels(surface_pressure, n_levels=DEFAULT_LEVELS, top_pressure=DEFAULT_TOP_PRESSURE, dtype=float):
-    """Level pressures equally spaced from the surface to the model top.
-
-    Parameters
-    ----------
-    surface_pressure : array_like
-        [hPa]
-    n_levels : int
-        Number of levels (layers = n_levels − 1), ≥ 2.
-    top_pressure : float
-        [hPa]
-
-    Returns
-    -------
-    ndarray
-        Shape ``surface_pressure.shape + (n_levels,)``, surface first. [hPa]
-    """
-    ps = np.asarray(surface_pressure, dtype=dtype)
-    sigma = np.linspace(1.0, 0.0, n_levels, dtype=dtype)
-    top = np.asarray(top_pressure, dtype=dtype)
-    return top + (ps[..., None] - top) * sigma
-
-
 def profile_from_surface(
     t_air,
     tcwv,
@@ -335,7 +312,8 @@ def profile_from_surface(
     surface_pressure : array_like
         [hPa]
     n_levels, top_pressure
-        Vertical grid, see :func:`pressure_levels`.
+        Vertical grid: ``n_levels`` (≥ 2) levels equally spaced in pressure from the surface
+        to the model top ``top_pressure`` [hPa].
     lapse_rate : float
         Tropospheric lapse rate. [K m⁻¹]
     tropopause_temperature : float
@@ -390,16 +368,26 @@ def profile_levels_first(
     The hot path of the clear-sky simulation works level-major so that every element-wise
     operation runs along long contiguous pixel rows. Same assumptions and units as
     :func:`profile_from_surface`; returns (pressure, temperature, specific humidity), each
-    of shape (n_levels, n_pixels).
+    of shape (n_levels, n_pixels). :func:`physics.fused.dispatch` picks the implementation
+    (float32: the compiled kernel of the same formulas; otherwise the numpy reference).
     """
+    return fused.dispatch(dtype, _profile_levels_first_compiled, _profile_levels_first_numpy, t_air, tcwv,
+                          surface_pressure, n_levels, top_pressure, lapse_rate, tropopause_temperature,
+                          humidity_exponent, dtype)
+
+
+def _profile_levels_first_compiled(t_air, tcwv, surface_pressure, n_levels, top_pressure, lapse_rate,
+                                   tropopause_temperature, humidity_exponent, dtype):
+    """:func:`profile_levels_first` by the compiled float32 kernel (``dtype`` is float32 here)."""
+    return fused.profile(t_air, tcwv, surface_pressure,
+                         np.linspace(1.0, 0.0, n_levels), top_pressure, R_DRY_AIR * lapse_rate / GRAVITY,
+                         tropopause_temperature, humidity_exponent, STRATOSPHERE_Q, STRATOSPHERE_Q * 0.1)
+
+
+def _profile_levels_first_numpy(t_air, tcwv, surface_pressure, n_levels, top_pressure, lapse_rate,
+                                tropopause_temperature, humidity_exponent, dtype):
+    """:func:`profile_levels_first` by numpy, the reference implementation."""
     f = np.dtype(dtype).type
-    if np.dtype(dtype) == np.float32 and fused.enabled():  # the compiled kernel of the same formulas
-        try:
-            return fused.profile(t_air, tcwv, surface_pressure,
-                                 np.linspace(1.0, 0.0, n_levels), top_pressure, R_DRY_AIR * lapse_rate / GRAVITY,
-                                 tropopause_temperature, humidity_exponent, STRATOSPHERE_Q, STRATOSPHERE_Q * 0.1)
-        except fused.Unavailable:
-            pass  # warned once; the numpy path below
     t_air = np.asarray(t_air, dtype=dtype)
     tcwv = np.asarray(tcwv, dtype=dtype)
     ps = np.asarray(surface_pressure, dtype=dtype)
@@ -429,23 +417,3 @@ def profile_levels_first(
     q = np.minimum(shape_q * scale, q_sat)
     np.maximum(q, f(STRATOSPHERE_Q * 0.1), out=q)
     return p, t, q
-
-
-def check_profile(profile):
-    """Validate an explicit profile; raise ValueError naming the first problem found.
-
-    Checks: matching shapes, ≥ 2 levels, pressure strictly decreasing upward (surface
-    first), temperatures 150–350 K, specific humidity 0–0.05 kg kg⁻¹.
-    """
-    p, t, q = (np.asarray(a) for a in profile)
-    if not (p.shape == t.shape == q.shape) or p.shape[-1] < 2:
-        raise ValueError(
-            f"profile arrays must share one shape with ≥ 2 levels on the last axis; got {p.shape}, {t.shape}, {q.shape}"
-        )
-    if not np.all(np.diff(p, axis=-1) < 0):
-        raise ValueError("profile pressures must decrease from the surface (first level) to the top (last level)")
-    if np.any((t < 150) | (t > 350)):
-        raise ValueError("profile temperatures must lie within 150–350 K (are they in °C?)")
-    if np.any((q < 0) | (q > 0.05)):
-        raise ValueError("specific humidity must lie within 0–0.05 kg/kg (is it in g/kg?)")
-    return Profile(p, t, q)

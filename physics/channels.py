@@ -71,11 +71,6 @@ class Channel:
     band_b: float
     band_fit_residual: float
 
-    @property
-    def central_wavelength_um(self):
-        """Centroid wavelength. [µm]"""
-        return 1.0e4 / self.central_wavenumber
-
     def exact_radiance(self, temperature):
         """Response-weighted mean Planck radiance (the definition, no band correction).
 

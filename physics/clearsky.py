@@ -173,20 +173,35 @@ def simulate_channel_major(pressure, temperature, specific_humidity, t_skin, emi
     -------
     ClearSky
         Channel-major: (n_ch, n_pix) and (n_ch, n_levels, n_pix).
+
+    Notes
+    -----
+    :func:`physics.fused.dispatch` picks the implementation: float32 input the compiled
+    kernel of the same formulas, otherwise the numpy reference.
     """
     dtype = np.result_type(pressure, temperature, specific_humidity, np.float32)
-    if dtype == np.float32 and fused.enabled():  # the compiled kernel of the same formulas
-        f = np.float32
-        inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=f)))
-        try:
-            rad, bt, surf_t, trans, opaque = fused.simulate(pressure, temperature, specific_humidity, t_skin,
-                                                            emissivity, inv_mu, channels, coefficients, levels)
-        except fused.Unavailable:
-            pass  # warned once; the numpy path below
-        else:
-            if levels:
-                trans, opaque = trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2)
-            return ClearSky(rad, bt, trans, opaque, surf_t)
+    return fused.dispatch(dtype, _simulate_compiled, _simulate_numpy, pressure, temperature, specific_humidity,
+                          t_skin, emissivity, sat_zenith, channels, coefficients, levels)
+
+
+def _simulate_compiled(pressure, temperature, specific_humidity, t_skin, emissivity, sat_zenith, channels,
+                       coefficients, levels):
+    """:func:`simulate_channel_major` by the compiled float32 kernel (physics.fused.simulate)."""
+    f = np.float32
+    inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=f)))
+    nu, band_a, band_b = _channel_constants(channels, np.float64)
+    rad, bt, surf_t, trans, opaque = fused.simulate(pressure, temperature, specific_humidity, t_skin, emissivity,
+                                                    inv_mu, nu, band_a, band_b, coefficients.matrix(),
+                                                    coefficients.continuum_t0, coefficients.line_pressure_exponent,
+                                                    levels)
+    if levels:
+        trans, opaque = trans.transpose(1, 0, 2), opaque.transpose(1, 0, 2)
+    return ClearSky(rad, bt, trans, opaque, surf_t)
+
+
+def _simulate_numpy(pressure, temperature, specific_humidity, t_skin, emissivity, sat_zenith, channels,
+                    coefficients, levels):
+    """:func:`simulate_channel_major` by numpy, the reference implementation."""
     tau = layer_optical_depth_level_major(pressure, temperature, specific_humidity, coefficients)
     f = tau.dtype.type
     inv_mu = f(1.0) / np.cos(np.deg2rad(np.asarray(sat_zenith, dtype=tau.dtype)))

@@ -14,8 +14,6 @@ SPEED_OF_LIGHT = _sc.c
 BOLTZMANN_K = _sc.k
 #: Avogadro constant [mol⁻¹] (exact, SI)
 AVOGADRO = _sc.N_A
-#: Stefan–Boltzmann constant [W m⁻² K⁻⁴] (CODATA, via scipy.constants)
-STEFAN_BOLTZMANN = _sc.Stefan_Boltzmann
 #: Molar gas constant [J mol⁻¹ K⁻¹] (CODATA, via scipy.constants)
 MOLAR_GAS_CONSTANT = _sc.R
 #: Standard acceleration of gravity [m s⁻²] (CGPM 1901, via scipy.constants)
@@ -34,8 +32,6 @@ MOLAR_MASS_DRY_AIR = 28.9644e-3
 MOLAR_MASS_WATER = 18.015268e-3
 #: Specific gas constant of dry air [J kg⁻¹ K⁻¹]
 R_DRY_AIR = MOLAR_GAS_CONSTANT / MOLAR_MASS_DRY_AIR
-#: Specific gas constant of water vapour [J kg⁻¹ K⁻¹]
-R_WATER_VAPOUR = MOLAR_GAS_CONSTANT / MOLAR_MASS_WATER
 #: Ratio of molar masses, water / dry air (≈ 0.622) [1]
 EPSILON = MOLAR_MASS_WATER / MOLAR_MASS_DRY_AIR
 

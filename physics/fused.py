@@ -6,12 +6,20 @@ make one whole-array pass per arithmetic step (about thirty passes over every
 level × channel × pixel element), so their speed is set by memory traffic, not by the
 arithmetic. The kernels here evaluate the *same formulas* in one sweep over the levels,
 with each step's intermediate values held in registers, compiled by numba for float32.
-``profile_levels_first`` and ``simulate_channel_major`` call them for float32 input; float64
-input, and any run with the environment variable ``CLOUDSIEVE_PHYSICS=numpy``, takes the
-numpy path. The tests hold the two paths to each other (tests/test_fused.py).
+The tests hold the two paths to each other (tests/test_fused.py).
 
-Nothing here does I/O; the kernels take and fill numpy arrays, pixel axis last, and work
-on any block of pixels independently of the others (chunk-invariant, tested).
+Dispatch
+--------
+:func:`dispatch` is the one place that chooses between them (``profile_levels_first`` and
+``simulate_channel_major`` hand it their compiled and numpy variants): float32 input goes to
+the kernels while :func:`enabled`; float64 input, any run with the environment variable
+``CLOUDSIEVE_PHYSICS=numpy``, and a process whose kernels numba could not build or run (warned
+once, :data:`failure` says why) take the numpy path.
+
+This module imports nothing from the other physics modules but :mod:`physics.constants`:
+channels and absorption coefficients come in as plain arrays. Nothing here does I/O; the
+kernels take and fill numpy arrays, pixel axis last, and work on any block of pixels
+independently of the others (chunk-invariant, tested).
 
 Elementary functions
 --------------------
@@ -42,11 +50,12 @@ import warnings
 import numpy as np
 
 from .constants import (
+    C1_RADIANCE,
+    C2_CM_K,
     CONTINUUM_REFERENCE_T,
     DIFFUSIVITY_FACTOR,
     EPSILON,
     GRAVITY,
-    R_DRY_AIR,
     STANDARD_PRESSURE_HPA,
 )
 
@@ -75,6 +84,26 @@ def enabled():
     """True when the compiled kernels are used for float32 input."""
     return (numba is not None and failure is None
             and os.environ.get("CLOUDSIEVE_PHYSICS", "").lower() != "numpy")
+
+
+def use_compiled(dtype):
+    """True when input of ``dtype`` goes to the compiled kernels: float32 while :func:`enabled`."""
+    return np.dtype(dtype) == np.float32 and enabled()
+
+
+def dispatch(dtype, compiled, reference, *args):
+    """``compiled(*args)`` where :func:`use_compiled` says so, else ``reference(*args)``, the numpy path.
+
+    The one place where the physics chooses its implementation. Should the kernels turn out
+    unusable here (:class:`Unavailable`: :func:`_run_kernel` has warned once and switched the
+    process off), the numpy path runs instead; any other error (bad input) propagates.
+    """
+    if use_compiled(dtype):
+        try:
+            return compiled(*args)
+        except Unavailable:
+            pass  # warned once; the numpy path below
+    return reference(*args)
 
 
 def _run_kernel(kernel, *args):
@@ -407,19 +436,21 @@ def profile(t_air, tcwv, surface_pressure, sigma, top_pressure, lapse_exponent, 
     return p, t, q
 
 
-def simulate(pressure, temperature, specific_humidity, t_skin, emissivity, inv_mu, channels, coefficients, levels,
-             diffusivity=DIFFUSIVITY_FACTOR):
+def simulate(pressure, temperature, specific_humidity, t_skin, emissivity, inv_mu, wavenumber, band_a, band_b,
+             k_matrix, continuum_t0, line_pressure_exponent, levels, diffusivity=DIFFUSIVITY_FACTOR):
     """Compiled clear-sky simulation of level-first float32 columns (see ``simulate_channel_major``).
 
+    The channels come in as arrays (n_ch,): centroid ``wavenumber`` [cm⁻¹] and band correction
+    ``band_a`` [K], ``band_b`` [1]; the absorption as the (4, n_ch) ``k_matrix`` of
+    ``ChannelCoefficients.matrix()`` with its ``continuum_t0`` [K] and ``line_pressure_exponent``.
     Returns (radiance (n_ch, n_pix), brightness temperature [K] (n_ch, n_pix; NaN where the
     radiance is not positive), surface transmittance (n_ch, n_pix), level transmittance
     (n_levels, n_ch, n_pix) or None, opaque-level radiance (n_levels, n_ch, n_pix) or None).
     """
-    from .constants import C1_RADIANCE, C2_CM_K
-
     p, t, q = _f32(pressure), _f32(temperature), _f32(specific_humidity)
     n_lev, n_pix = p.shape
-    n_ch = len(channels)
+    nu = np.asarray(wavenumber, dtype=np.float64)
+    n_ch = nu.size
     if t.shape != p.shape or q.shape != p.shape or n_lev < 2:
         raise ValueError(f"pressure, temperature and humidity must share one (levels ≥ 2, pixels) shape; "
                          f"got {p.shape}, {t.shape}, {q.shape}")
@@ -427,11 +458,10 @@ def simulate(pressure, temperature, specific_humidity, t_skin, emissivity, inv_m
     t_skin = np.broadcast_to(np.asarray(t_skin, F), (n_pix,))
     emissivity = np.broadcast_to(np.asarray(emissivity, F), (n_ch, n_pix))
     inv_mu = np.broadcast_to(np.asarray(inv_mu, F), (n_pix,))
-    nu = np.array([c.central_wavenumber for c in channels], dtype=np.float64)
     c1nu3, c2nu = _f32(C1_RADIANCE * nu**3), _f32(C2_CM_K * nu)
-    band_a = _f32([c.band_a for c in channels])
-    band_b = _f32([c.band_b for c in channels])
-    k = coefficients.matrix().astype(F)
+    band_a = _f32(band_a)
+    band_b = _f32(band_b)
+    k = np.asarray(k_matrix).astype(F)
     radiance, bt, surf_trans = np.empty((3, n_ch, n_pix), F)
     if levels:
         trans = np.empty((n_lev, n_ch, n_pix), F)
@@ -445,8 +475,8 @@ def simulate(pressure, temperature, specific_humidity, t_skin, emissivity, inv_m
     bounds = np.cumsum((0,) + sizes)
     tau, inv_tau, b, x4, state = (work[a:z] for a, z in zip(bounds[:-1], bounds[1:]))
     _run_kernel(_simulate_kernel, p, t, q, _f32(t_skin), _f32(emissivity), _f32(inv_mu), c1nu3, c2nu, band_a, band_b,
-                _f32(k[0]), _f32(k[1]), _f32(k[2]), _f32(k[3]), F(coefficients.continuum_t0),
-                F(coefficients.line_pressure_exponent), F(diffusivity), radiance, bt, surf_trans, trans, opaque,
+                _f32(k[0]), _f32(k[1]), _f32(k[2]), _f32(k[3]), F(continuum_t0),
+                F(line_pressure_exponent), F(diffusivity), radiance, bt, surf_trans, trans, opaque,
                 bool(levels), tau.reshape(n_lay, n_ch, tile), inv_tau.reshape(n_lay, n_ch, tile),
                 b.reshape(n_lev, n_ch, tile), x4.reshape(4, tile), state.reshape(3, n_ch, tile))
     if not levels:
@@ -463,15 +493,8 @@ def warm_up():
     """
     if not enabled():
         return
-    from types import SimpleNamespace
-
-    from .absorption import ChannelCoefficients
-
     one = np.ones(1, F)
     p, t, q = profile(one * F(280.0), one * F(20.0), one * F(1000.0), np.linspace(1.0, 0.0, 3), 10.0, 0.19,
                       210.0, 3.0, 3.0e-6, 3.0e-7)
-    channel = SimpleNamespace(central_wavenumber=926.0, band_a=0.0, band_b=1.0)  # all the kernel reads
-    zero = np.zeros(1)
-    simulate(p, t, q, one * F(281.0), np.ones((1, 1), F), one, [channel],
-             ChannelCoefficients(zero, zero, zero, zero, 1800.0, 1.0, ("warm_up",)), True)
-
+    simulate(p, t, q, one * F(281.0), np.ones((1, 1), F), one, [926.0], [0.0], [1.0], np.zeros((4, 1)), 1800.0, 1.0,
+             True)

@@ -19,10 +19,10 @@ import pytest
 from playwright.sync_api import expect
 
 from browser_js import RENDERED, SCREEN_XY
-from dashboard import cli
+from cloudsieve import cli
 from dashboard.app import SceneCatalog, is_scene_file, serve, server_options
-from dashboard.errors import PathError
-from dashboard.journal import journal_path
+from cloudsieve.errors import PathError
+from cloudsieve.journal import journal_path
 
 SAMPLES = Path(__file__).resolve().parents[1] / "sample_scenes"
 

@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from dashboard.cli import main
+from cloudsieve.cli import main
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SMALL = SAMPLES / "night_front_small.csv"

@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from dashboard.cli import main
+from cloudsieve.cli import main
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SMALL = SAMPLES / "night_front_small.csv"
@@ -109,7 +109,7 @@ def test_config_show_round_trips(tmp_path):
 def test_qa_journal_applied_by_cli(tmp_path):
     scene = tmp_path / "s.csv"
     scene.write_bytes(SMALL.read_bytes())
-    from dashboard.journal import Journal, journal_path
+    from cloudsieve.journal import Journal, journal_path
 
     j = Journal(journal_path(scene), 10_000)
     j.add("cloud", [0, 1, 2])

@@ -214,13 +214,13 @@ def test_sample_scene_optical_depth_with_true_top(name):
     layered solver by the generator, not by physics.cloud): median relative τ error ≤ 25 % for
     fully covered pixels with 0.3 ≤ τ ≤ 3 when the true top pressure is given; opaque tops of
     thick clouds within 100 hPa of truth (targets from the project's issue)."""
-    from dashboard import pipeline as pl
-    from dashboard.config import load_config
-    from dashboard.scene import load_scene
+    from cloudsieve.simulate import simulate
+    from cloudsieve.config import load_config
+    from cloudsieve.scene import load_scene
 
     cfg = load_config()
     scene = load_scene(ROOT / "sample_scenes" / f"{name}.nc", config=cfg)
-    sim = pl.simulate(scene, cfg)
+    sim = simulate(scene, cfg)
     truth = xr.open_dataset(ROOT / "sample_scenes" / f"{name}_truth.nc")
     idx = sim.valid_index
     cf = truth["cloud_fraction"].values.ravel()[idx]

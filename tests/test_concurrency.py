@@ -10,10 +10,10 @@ import numpy as np
 import pytest
 from playwright.sync_api import expect
 
-from dashboard.config import load_config
-from dashboard.journal import journal_path
-from dashboard.model import ScreeningModel, _NoJournal
-from dashboard.scene import load_scene
+from cloudsieve.config import load_config
+from cloudsieve.journal import journal_path
+from dashboard.model import ScreeningModel
+from cloudsieve.scene import load_scene
 from browser_js import RENDERED
 from test_app_ui import TIMEOUT, cloud_percent, map_point
 
@@ -24,7 +24,7 @@ N_SESSIONS = 8
 def _expected_cloud_percent(path, fog_threshold):
     """What the session must show: the same change made on a model of its own (the sliders
     edit the first surface type of the scene, here sea)."""
-    model = ScreeningModel(load_scene(path, config=load_config()), load_config(), journal=_NoJournal())
+    model = ScreeningModel(load_scene(path, config=load_config()), load_config(), journal=False)
     model.set_threshold("night_fog_contrast", fog_threshold, "sea")
     return f"{100 * model.counts['cloud']:.1f}%"
 

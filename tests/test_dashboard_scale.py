@@ -11,8 +11,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from dashboard import pipeline as pl
-from dashboard.config import load_config
+from cloudsieve import codes as pl, simulate as simulation
+from cloudsieve.config import load_config
 from dashboard.model import ScreeningModel
 from dashboard.views import Focus, MapGrid, Notices, PixelInspector
 from dashboard.views import maps as maps_module
@@ -37,7 +37,7 @@ def models(tmp_path_factory):
     cfg = load_config()
     full = ScreeningModel.open(path, cfg, journal=False)
     mp = pytest.MonkeyPatch()
-    mp.setattr(pl, "LEVELS_PIXEL_LIMIT", 10_000)
+    mp.setattr(simulation, "LEVELS_PIXEL_LIMIT", 10_000)
     try:
         lean = ScreeningModel.open(path, cfg, journal=False)
     finally:
@@ -46,10 +46,10 @@ def models(tmp_path_factory):
 
 
 def test_compact_scene_narrows_only_lat_lon_and_only_losslessly(monkeypatch):
-    from dashboard.model import compact_scene
-    from dashboard.scene import load_scene
+    from cloudsieve.session import compact_scene
+    from cloudsieve.scene import load_scene
 
-    monkeypatch.setattr(pl, "LEVELS_PIXEL_LIMIT", 10_000)
+    monkeypatch.setattr(simulation, "LEVELS_PIXEL_LIMIT", 10_000)
     scene = load_scene(SAMPLE, config=load_config())
     before = {k: scene.data[k].values.copy() for k in ("lat", "bt_11um")}
     scene.data.coords["lon"] = scene.data["lon"] + 1e-9  # not representable in float32: stays
@@ -160,7 +160,7 @@ def test_large_scene_path_in_the_browser(serve_app, scene_dir, page, artifacts, 
     from browser_js import COVERS, RENDERED
     from test_app_ui import TIMEOUT, map_point, open_dashboard
 
-    monkeypatch.setattr(pl, "LEVELS_PIXEL_LIMIT", 10_000)
+    monkeypatch.setattr(simulation, "LEVELS_PIXEL_LIMIT", 10_000)
     monkeypatch.setattr(maps_module, "RASTERIZE_ABOVE", 10_000)
     served = serve_app(scene_dir)
     open_dashboard(page, served.url)

@@ -12,16 +12,16 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from dashboard import export
-from dashboard.config import load_config
-from dashboard.model import ScreeningModel
+from cloudsieve import export
+from cloudsieve.config import load_config
+from cloudsieve.session import Session
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 
 
 @pytest.fixture(scope="module")
 def model():
-    return ScreeningModel.open(SAMPLES / "night_front_small.csv", load_config(), journal=False)
+    return Session.open(SAMPLES / "night_front_small.csv", load_config(), journal=False)
 
 
 @pytest.fixture(scope="module")
@@ -99,7 +99,7 @@ def test_outputs_get_the_usual_file_mode_not_the_temporary_ones(tmp_path):
     import os
     import stat
 
-    from dashboard.export import atomic_write
+    from cloudsieve.export import atomic_write
 
     old = os.umask(0o022)
     try:

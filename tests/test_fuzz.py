@@ -9,9 +9,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from dashboard.config import merge_config
-from dashboard.errors import CloudsieveError
-from dashboard.scene import check_scene
+from cloudsieve.config import merge_config
+from cloudsieve.errors import CloudsieveError
+from cloudsieve.scene import check_scene
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SMALL_TEXT = (SAMPLES / "night_front_small.csv").read_text().splitlines()
@@ -94,7 +94,7 @@ def test_config_parser(override):
 @FUZZ
 @given(st.text(max_size=300))
 def test_config_text(tmp_path_factory, text):
-    from dashboard.config import load_config
+    from cloudsieve.config import load_config
 
     path = tmp_path_factory.mktemp("cf") / "c.toml"
     path.write_bytes(text.encode("utf-8", "replace"))

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from dashboard.journal import Journal, journal_path
+from cloudsieve.journal import Journal, journal_path
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 EXE = Path(sys.executable).with_name("cloudsieve")
@@ -65,7 +65,7 @@ def test_export_killed_at_random_moments(tmp_path, reference):
 
 
 def test_stale_temporaries_of_dead_writers_are_swept_live_ones_kept(tmp_path):
-    from dashboard.export import atomic_write
+    from cloudsieve.export import atomic_write
 
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True,
                           check=True)
@@ -83,7 +83,7 @@ def test_stale_temporaries_of_dead_writers_are_swept_live_ones_kept(tmp_path):
 
 WRITER = """
 import sys
-from dashboard.journal import Journal
+from cloudsieve.journal import Journal
 j = Journal(sys.argv[1], 1000)
 k = 0
 while True:

@@ -11,11 +11,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from dashboard import cli
-from dashboard import pipeline as pl
-from dashboard.config import to_toml
-from dashboard.journal import journal_path
-from dashboard.model import TUNABLE, ScreeningModel
+from cloudsieve import cli, session as session_module, simulate as simulation_module
+from cloudsieve.codes import CLASS_NAMES, CLEAR, CLOUD
+from cloudsieve.config import to_toml
+from cloudsieve.journal import journal_path
+from cloudsieve.registry import REGISTRY, bit_table, registered
+from cloudsieve.screen import screen_scene
+from dashboard.model import ScreeningModel
+
+BITS = bit_table()
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_scenes" / "night_front.nc"
 
@@ -35,7 +39,7 @@ def model(scene_path):
 def _pixels_of(model, code, n, seed=0):
     """n flat indices of pixels currently in class ``code``."""
     idx = np.flatnonzero(model.result.mask.ravel() == code)
-    assert idx.size >= n, f"the sample scene has fewer than {n} pixels of class {pl.CLASS_NAMES[code]}"
+    assert idx.size >= n, f"the sample scene has fewer than {n} pixels of class {CLASS_NAMES[code]}"
     return np.sort(np.random.default_rng(seed).choice(idx, n, replace=False))
 
 
@@ -70,8 +74,8 @@ def test_retuning_never_reruns_the_clear_sky_simulation(model, monkeypatch):
     def forbidden(*args, **kwargs):
         raise AssertionError("the clear-sky simulation ran again")
 
-    monkeypatch.setattr(pl, "simulate", forbidden)
-    for test in TUNABLE:
+    monkeypatch.setattr(simulation_module, "simulate", forbidden)
+    for test in REGISTRY:
         model.set_threshold(test, model.threshold(test) * 1.5 + 0.1)
         model.set_enabled(test, False)
         model.set_enabled(test, True)
@@ -92,7 +96,7 @@ def test_cached_retuning_gives_the_same_screening_as_a_fresh_one(model):
              lambda: model.set_threshold("split_window_excess", 0.3)]
     for step in steps:
         step()
-        fresh = pl.screen(model.scene, model.sim, model.effective_config(), cloud=model._cloud)
+        fresh = screen_scene(model.scene, model.sim, model.config)
         np.testing.assert_array_equal(model.result.mask, fresh.mask)
         np.testing.assert_array_equal(model.result.bits, fresh.bits)
         assert set(model.result.margins) == set(fresh.margins)
@@ -102,18 +106,18 @@ def test_cached_retuning_gives_the_same_screening_as_a_fresh_one(model):
             np.testing.assert_array_equal(model.result.departure[ch], d)
         assert model.result.counts == fresh.counts
     # the cache holds the raw departures and those of the latest bias line only
-    assert sum(1 for k in model._screen_cache if isinstance(k, tuple) and k[0] == "departure") <= 2
+    assert sum(1 for k in model.session._screen_cache if isinstance(k, tuple) and k[0] == "departure") <= 2
 
 
 def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_it(model, monkeypatch):
     calls = []
-    real = pl.invert_all
+    real = session_module.invert_all
 
     def counting(*args, **kwargs):
         calls.append(args[2]["cloud"]["top"])
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(pl, "invert_all", counting)
+    monkeypatch.setattr(session_module, "invert_all", counting)
     model.set_threshold("split_window_excess", 1.0)
     model.set_threshold("texture", 0.8)
     assert calls == []  # same cloud settings: the cached retrieval is masked to the new classes
@@ -130,7 +134,7 @@ def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_
     model.cloud_top = "opaque"
     assert calls[-1] == "opaque"
     # the cloud layer only covers pixels that are not clear
-    clear = model.result.mask == pl.CLEAR
+    clear = model.result.mask == CLEAR
     assert np.all(np.isnan(model.result.cloud.optical_depth[clear]))
 
 
@@ -139,28 +143,28 @@ def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_
 # ---------------------------------------------------------------------------------------
 def test_mark_and_undo_are_journaled_and_survive_reopening(model, scene_path):
     journal = journal_path(scene_path)
-    cloudy = _pixels_of(model, pl.CLOUD, 40, seed=1)
-    clear = _pixels_of(model, pl.CLEAR, 30, seed=2)
+    cloudy = _pixels_of(model, CLOUD, 40, seed=1)
+    clear = _pixels_of(model, CLEAR, 30, seed=2)
 
     e1 = model.mark("clear", cloudy)
     assert journal.exists()
     lines = [json.loads(x) for x in journal.read_text().splitlines()]
     assert lines[-1]["action"] == "clear" and lines[-1]["count"] == 40 and lines[-1]["index"] == cloudy.tolist()
-    assert np.all(model.result.mask.ravel()[cloudy] == pl.CLEAR)
-    assert np.all(model.result.bits.ravel()[cloudy] & pl.BITS["analyst_clear"])
+    assert np.all(model.result.mask.ravel()[cloudy] == CLEAR)
+    assert np.all(model.result.bits.ravel()[cloudy] & BITS["analyst_clear"])
 
     model.mark("cloud", clear)
-    assert np.all(model.result.mask.ravel()[clear] == pl.CLOUD)
+    assert np.all(model.result.mask.ravel()[clear] == CLOUD)
     undone = model.undo()
     assert undone["action"] == "cloud"
-    assert not np.any(model.result.bits.ravel()[clear] & pl.BITS["analyst_cloud"])
+    assert not np.any(model.result.bits.ravel()[clear] & BITS["analyst_cloud"])
     assert [json.loads(x)["action"] for x in journal.read_text().splitlines()] == ["clear", "cloud", "undo"]
 
     # a new model (a new session, a restarted server) replays the journal
     again = ScreeningModel.open(scene_path)
     assert again.edit_listing() == model.edit_listing()
     assert [(c, a) for _, c, a in again.edit_listing()] == [(40, "clear")]
-    assert np.all(again.result.mask.ravel()[cloudy] == pl.CLEAR)
+    assert np.all(again.result.mask.ravel()[cloudy] == CLEAR)
     assert e1["id"] == again.journal.active()[0]["id"]
 
 
@@ -175,7 +179,7 @@ def test_two_sessions_on_one_scene_keep_journal_ids_unique(scene_path):
 
 
 def test_undo_never_cancels_an_edit_the_session_has_not_seen(scene_path):
-    from dashboard.journal import StaleEditsError
+    from cloudsieve.journal import StaleEditsError
 
     a = ScreeningModel.open(scene_path)
     b = ScreeningModel.open(scene_path)
@@ -185,7 +189,7 @@ def test_undo_never_cancels_an_edit_the_session_has_not_seen(scene_path):
         b.undo()
     # nothing was undone, and b now shows both edits ...
     assert [e["id"] for e in b.journal.active()] == [eb["id"], ea["id"]]
-    assert b.result.mask.ravel()[0] == pl.CLOUD
+    assert b.result.mask.ravel()[0] == CLOUD
     # ... so a second undo, informed, cancels the latest one
     assert b.undo()["id"] == ea["id"]
     with pytest.raises(StaleEditsError):  # a's view is now stale in turn
@@ -193,8 +197,8 @@ def test_undo_never_cancels_an_edit_the_session_has_not_seen(scene_path):
 
 
 def test_label_scores_against_the_analyst_labels(model):
-    cloudy = _pixels_of(model, pl.CLOUD, 50, seed=3)
-    clear = _pixels_of(model, pl.CLEAR, 60, seed=4)
+    cloudy = _pixels_of(model, CLOUD, 50, seed=3)
+    clear = _pixels_of(model, CLEAR, 60, seed=4)
     # the margins before the edits are what the tests said about these pixels
     margins = {t: m.ravel().copy() for t, m in model.result.margins.items()}
     model.mark("cloud", cloudy)
@@ -208,7 +212,7 @@ def test_label_scores_against_the_analyst_labels(model):
         assert false_alarm == pytest.approx(fired[clear].mean())
     # something fired on every pixel that was classed cloud
     fired_any = np.zeros(cloudy.size, bool)
-    for test in pl.CLOUD_TESTS:
+    for test in registered("cloud"):
         if test in margins:
             fired_any |= np.nan_to_num(margins[test][cloudy], nan=-np.inf) > 0
     assert fired_any.all()
@@ -226,12 +230,12 @@ def test_csv_download_equals_the_cli_output_for_the_same_scene_settings_and_edit
     model.set_threshold("cold_departure", 4.0, "sea")
     model.set_enabled("texture", False)
     model.marginal_fraction = 0.4
-    model.mark("cloud", _pixels_of(model, pl.CLEAR, 25, seed=5))
-    model.mark("clear", _pixels_of(model, pl.CLOUD, 35, seed=6))
+    model.mark("cloud", _pixels_of(model, CLEAR, 25, seed=5))
+    model.mark("clear", _pixels_of(model, CLOUD, 35, seed=6))
     ours = pd.read_csv(pd.io.common.BytesIO(model.export_bytes("csv")))
 
     cfg = tmp_path / "tuned.toml"
-    cfg.write_text(to_toml(model.effective_config()))
+    cfg.write_text(to_toml(model.config))
     out = tmp_path / "cli_mask.csv"
     assert cli.main(["screen", str(scene_path), "--out", str(out), "--config", str(cfg), "--quiet"]) == 0
     theirs = pd.read_csv(out)
@@ -259,7 +263,7 @@ def test_netcdf_download_holds_the_mask_and_the_settings(model, tmp_path):
 def test_inspector_curve_of_a_clear_pixel_uses_the_reference_top(model):
     # the inspector says so ("what a grey cloud at the reference top would do"); a thick cloud
     # there must cool the 11 µm channel well below clear
-    y, x = np.argwhere(model.result.mask == pl.CLEAR)[0]
+    y, x = np.argwhere(model.result.mask == CLEAR)[0]
     curve = model.optical_depth_curve(int(y), int(x))
     assert curve["top_pressure"] == model.top_pressure
     bt = curve["model"]["11um"]
@@ -267,7 +271,7 @@ def test_inspector_curve_of_a_clear_pixel_uses_the_reference_top(model):
 
 
 def test_pixel_info_of_a_cloudy_pixel(model):
-    y, x = np.argwhere(model.result.mask == pl.CLOUD)[0]
+    y, x = np.argwhere(model.result.mask == CLOUD)[0]
     info = model.pixel_info(int(y), int(x))
     assert info["class"] == "cloud" and info["tests_fired"]
     assert {"t_skin", "t_air", "tcwv", "sat_zenith", "surface"} <= set(info["inputs"])
@@ -275,7 +279,7 @@ def test_pixel_info_of_a_cloudy_pixel(model):
     for ch, v in info["channels"].items():
         assert v["departure"] == pytest.approx(v["observed"] - v["clear"], abs=1e-3)
     assert set(info["margins"]) == set(model.result.margins)
-    assert any(m is not None and m > 0 for t, m in info["margins"].items() if t in pl.CLOUD_TESTS)
+    assert any(m is not None and m > 0 for t, m in info["margins"].items() if t in registered("cloud"))
     cloud = info["cloud"]
     assert {"status", "optical_depth", "optical_depth_sigma", "top_pressure", "emissivity"} <= set(cloud)
     curve = info["curve"]

@@ -1,4 +1,4 @@
-"""Screening pipeline: departures, tests, classes, bias fit, user clear-sky values."""
+"""Screening: simulation, departures, tests, classes, bias fit, user clear-sky values, inversion."""
 import copy
 from pathlib import Path
 
@@ -6,9 +6,16 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from dashboard import pipeline as pl
-from dashboard.config import load_config
-from dashboard.scene import load_scene
+from cloudsieve.codes import CLEAR, CLOUD, MARGINAL, NO_DATA
+from cloudsieve.config import load_config
+from cloudsieve.invert import invert_all
+from cloudsieve.registry import bit_table
+from cloudsieve.scene import load_scene
+from cloudsieve.screen import bias_from_sums, bias_sums, classify, screen_scene, sigma_from_path
+from cloudsieve.session import Session
+from cloudsieve.simulate import ColumnSimulator, simulate
+
+BITS = bit_table()
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SMALL = SAMPLES / "night_front_small.csv"
@@ -22,7 +29,7 @@ def cfg():
 @pytest.fixture(scope="module")
 def small(cfg):
     scene = load_scene(SMALL, config=cfg)
-    return scene, pl.simulate(scene, cfg)
+    return scene, simulate(scene, cfg)
 
 
 def test_simulation_is_plausible(small):
@@ -40,7 +47,7 @@ def test_threads_and_chunks_do_not_change_results(small, cfg):
     scene, sim = small
     c = copy.deepcopy(cfg)
     c["simulation"].update(threads=1, chunk_pixels=100)
-    other = pl.simulate(scene, c)
+    other = simulate(scene, c)
     np.testing.assert_array_equal(sim.bt_clear, other.bt_clear)
 
 
@@ -49,19 +56,19 @@ def test_classes_from_margins():
     margins = {"cold_departure": np.array([[1.0, -0.1, -5.0, 2.0]]),
                "texture": np.array([[np.nan, -3.0, -3.0, np.nan]])}
     thr = {"cold_departure": np.full((1, 4), 2.0), "texture": np.full((1, 4), 0.5)}
-    mask, bits = pl.classify(valid, margins, thr, 0.25)
-    assert mask.tolist() == [[pl.CLOUD, pl.MARGINAL, pl.CLEAR, pl.NO_DATA]]
-    assert bits[0, 0] & pl.BITS["cold_departure"] and not bits[0, 1]
+    mask, bits = classify(valid, margins, thr, 0.25)
+    assert mask.tolist() == [[CLOUD, MARGINAL, CLEAR, NO_DATA]]
+    assert bits[0, 0] & BITS["cold_departure"] and not bits[0, 1]
     edits = np.array([[1, 2, 0, 0]], np.int8)
-    mask, bits = pl.classify(valid, margins, thr, 0.25, edits=edits)
-    assert mask.tolist() == [[pl.CLEAR, pl.CLOUD, pl.CLEAR, pl.NO_DATA]]
-    assert bits[0, 0] & pl.BITS["analyst_clear"] and bits[0, 1] & pl.BITS["analyst_cloud"]
+    mask, bits = classify(valid, margins, thr, 0.25, edits=edits)
+    assert mask.tolist() == [[CLEAR, CLOUD, CLEAR, NO_DATA]]
+    assert bits[0, 0] & BITS["analyst_clear"] and bits[0, 1] & BITS["analyst_cloud"]
 
 
 def test_warm_departure_does_not_make_cloud():
     valid = np.ones((1, 1), bool)
-    mask, bits = pl.classify(valid, {"warm_departure": np.array([[3.0]])}, {"warm_departure": np.ones((1, 1))}, 0.25)
-    assert mask[0, 0] == pl.CLEAR and bits[0, 0] == pl.BITS["warm_departure"]
+    mask, bits = classify(valid, {"warm_departure": np.array([[3.0]])}, {"warm_departure": np.ones((1, 1))}, 0.25)
+    assert mask[0, 0] == CLEAR and bits[0, 0] == BITS["warm_departure"]
 
 
 def test_bias_fit_recovers_a_line(small):
@@ -70,18 +77,18 @@ def test_bias_fit_recovers_a_line(small):
     dep = {"11um": 0.3 + 0.02 * x + np.random.default_rng(0).normal(0, 0.01, x.shape)}
     mask = np.zeros(x.shape, np.int8)
     bits = np.zeros(x.shape, np.uint16)
-    fit = pl.fit_bias(dep, sim, mask, bits, np.ones(x.shape, bool), 10)
+    fit = bias_from_sums(bias_sums(dep, x, mask, bits, np.ones(x.shape, bool)), 10)
     assert fit["11um"]["a"] == pytest.approx(0.3, abs=0.02)
     assert fit["11um"]["b"] == pytest.approx(0.02, abs=0.001)
 
 
 def test_bias_removal_centres_clear_departures(cfg):
     scene = load_scene(SAMPLES / "day_coast.nc", config=cfg)
-    sim = pl.simulate(scene, cfg)
+    sim = simulate(scene, cfg)
     c = copy.deepcopy(cfg)
     c["bias"]["remove"] = True
-    res = pl.screen(scene, sim, c)
-    clear = res.mask == pl.CLEAR
+    res = screen_scene(scene, sim, c)
+    clear = res.mask == CLEAR
     assert all(b["applied"] for b in res.bias.values())
     assert abs(np.nanmean(res.departure["11um"][clear])) < 0.05
 
@@ -92,8 +99,8 @@ def test_user_clear_sky_replaces_simulation(tmp_path, cfg):
     path = tmp_path / "with_clear.csv"
     df.to_csv(path, index=False)
     scene = load_scene(path, config=cfg)
-    sim = pl.simulate(scene, cfg)
-    res = pl.screen(scene, sim, cfg)
+    sim = simulate(scene, cfg)
+    res = screen_scene(scene, sim, cfg)
     assert sim.source["11um"] == "user" and sim.source["12um"] == "simulated"
     np.testing.assert_allclose(res.departure["11um"], -0.25, atol=1e-4)
 
@@ -103,7 +110,7 @@ def test_absent_channels_skip_tests_and_say_so(tmp_path, cfg):
     path = tmp_path / "only11.csv"
     df.to_csv(path, index=False)
     scene = load_scene(path, config=cfg)
-    res = pl.screen(scene, pl.simulate(scene, cfg), cfg)
+    res = screen_scene(scene, simulate(scene, cfg), cfg)
     assert set(res.skipped) == {"split_window_excess", "night_fog_contrast"}
     assert any("split_window_excess skipped" in n for n in res.notes)
     assert "cold_departure" in res.margins
@@ -115,17 +122,17 @@ def test_daylight_3p9_not_screened(tmp_path, cfg):
     path = tmp_path / "dawn.csv"
     df.to_csv(path, index=False)
     scene = load_scene(path, config=cfg)
-    res = pl.screen(scene, pl.simulate(scene, cfg), cfg)
+    res = screen_scene(scene, simulate(scene, cfg), cfg)
     day = scene.data["sol_zenith"].values < 90
     assert np.all(np.isnan(res.margins["night_fog_contrast"][day]))
-    assert np.all(res.bits[day] & pl.BITS["daylight_3p9um_unused"])
-    assert not np.any(res.bits[~day] & pl.BITS["daylight_3p9um_unused"])
+    assert np.all(res.bits[day] & BITS["daylight_3p9um_unused"])
+    assert not np.any(res.bits[~day] & BITS["daylight_3p9um_unused"])
     assert any("reflected sunlight" in n for n in res.notes)
 
 
 def test_threshold_scales_with_water_vapour_path(small, cfg):
     scene, sim = small
-    sigma = pl.clear_sky_sigma(scene.data, sim, cfg)
+    sigma = sigma_from_path(scene.data["surface"].values, sim.slant_path, cfg)
     x = sim.slant_path
     assert np.corrcoef(sigma.ravel(), x.ravel())[0, 1] > 0.9
 
@@ -143,12 +150,12 @@ def test_explicit_profiles_from_netcdf(tmp_path, cfg):
     path = tmp_path / "profiles.nc"
     ds.to_netcdf(path)
     with_prof = load_scene(path, config=cfg)
-    a = pl.simulate(scene, cfg).bt_clear
-    b = pl.simulate(with_prof, cfg).bt_clear
+    a = simulate(scene, cfg).bt_clear
+    b = simulate(with_prof, cfg).bt_clear
     np.testing.assert_allclose(a, b, atol=1e-3)
     ds["profile_temperature"] = ds["profile_temperature"] + 2.0
     ds.to_netcdf(tmp_path / "warm.nc")
-    c = pl.simulate(load_scene(tmp_path / "warm.nc", config=cfg), cfg).bt_clear
+    c = simulate(load_scene(tmp_path / "warm.nc", config=cfg), cfg).bt_clear
     assert np.all(c > b)
 
 
@@ -156,21 +163,21 @@ def test_lean_simulation_gives_the_same_cloud_layer(cfg):
     """Large scenes keep no level data; the inversion then simulates each block's columns
     again and must give the very same cloud layer."""
     scene = load_scene(SAMPLES / "polar_ice.nc", config=cfg)
-    full = pl.invert_all(scene, pl.simulate(scene, cfg), cfg)
-    lean_sim = pl.simulate(scene, cfg, levels=False)
+    full_sim = simulate(scene, cfg)
+    sigma = sigma_from_path(scene.data["surface"].values, full_sim.slant_path, cfg)
+    full = invert_all(scene, full_sim, cfg, sigma)
+    lean_sim = simulate(scene, cfg, levels=False)
     assert lean_sim.level_pressure is None
-    lean = pl.invert_all(scene, lean_sim, cfg)
+    lean = invert_all(scene, lean_sim, cfg, sigma, column_simulator=ColumnSimulator(scene, cfg))
     for name in ("optical_depth", "top_pressure", "status", "emissivity", "optical_depth_sigma"):
         np.testing.assert_array_equal(getattr(full, name), getattr(lean, name), err_msg=name)
 
 
 def test_inspector_curve_without_stored_levels(cfg):
-    """A large-scene model (no stored levels) gives the inspector the same curve."""
-    from dashboard.model import ScreeningModel, _NoJournal
-
+    """A large-scene session (no stored levels) gives the inspector the same curve."""
     scene = load_scene(SAMPLES / "polar_ice.nc", config=cfg)
-    full = ScreeningModel(scene, cfg, journal=_NoJournal())
-    lean = ScreeningModel(scene, cfg, journal=_NoJournal(), sim=pl.simulate(scene, cfg, levels=False))
+    full = Session(scene, cfg, journal=False)
+    lean = Session(scene, cfg, journal=False, sim=simulate(scene, cfg, levels=False))
     a, b = full.optical_depth_curve(60, 70), lean.optical_depth_curve(60, 70)
     assert a["top_pressure"] == b["top_pressure"]
     np.testing.assert_array_equal(a["model"]["11um"], b["model"]["11um"])

@@ -1,4 +1,5 @@
-"""The chunked (Dask) path gives the in-memory path's results; archives skip bad scenes."""
+"""The batch path (blocks of rows, in memory or lazily on Dask) gives the dashboard session's
+results; archives skip bad scenes."""
 from pathlib import Path
 
 import dask
@@ -7,11 +8,12 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from dashboard import pipeline as pl, scale
-from dashboard.cli import main
-from dashboard.config import load_config, merge_config
-from dashboard.export import result_dataset
-from dashboard.model import ScreeningModel
+from cloudsieve import batch
+from cloudsieve.cli import main
+from cloudsieve.config import load_config, merge_config
+from cloudsieve.errors import SceneError
+from cloudsieve.scene import load_scene
+from cloudsieve.session import Session
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 
@@ -30,42 +32,42 @@ def _compare(a, b, tol=1e-6):
 
 @pytest.mark.parametrize("name, override", [("night_front", {}), ("day_coast", {"bias": {"remove": True}}),
                                             ("polar_ice", {"cloud": {"top": "grey"}})])
-def test_chunked_equals_in_memory(tmp_path, name, override):
-    """Identical results to the in-memory path (≤ 1e-6 K), blocks of 37 rows so that block
-    borders cut through clouds and the texture window."""
+@pytest.mark.parametrize("chunk_rows", [None, 37])
+def test_batch_equals_the_session(tmp_path, name, override, chunk_rows):
+    """The batch path, in memory (blocks of 256 rows) or lazily in blocks of 37 rows (block
+    borders cut through clouds and the texture window), gives the session's results (≤ 1e-6 K)."""
     cfg = merge_config(override)
     path = SAMPLES / f"{name}.nc"
-    mem = ScreeningModel.open(path, cfg, journal=False).result_dataset()
+    mem = Session.open(path, cfg, journal=False).result_dataset()
+    scene = load_scene(path, config=cfg, chunk_rows=chunk_rows)
+    assert (chunk_rows is not None) == hasattr(scene.data["bt_11um"].data, "dask")
     with dask.config.set(scheduler="threads"):
-        lazy = scale.open_lazy(path, cfg, chunk_rows=37)
-        res = scale.screen_chunked(lazy, cfg)
-        out, _ = scale.write_chunked(lazy, res, cfg, tmp_path / "chunked.nc")
-    _compare(mem, xr.open_dataset(out))
+        batch.screen_scene_file(scene, tmp_path / "b.nc", cfg, chunk_rows=chunk_rows or batch.DEFAULT_CHUNK_ROWS)
+    _compare(mem, xr.open_dataset(tmp_path / "b.nc"))
 
 
-def test_one_pass_slabs_and_edits_equal_in_memory(tmp_path):
-    """The one-pass block kernel simulates a block in slabs of rows and keeps the level data
-    only until a slab's rows are screened: with slabs of three rows (chunk_pixels 64 on a
-    300-wide scene), blocks of 23 rows and QA edits, the results still equal the in-memory
-    path's (whose simulation uses the default chunks) to 1e-6 K."""
-    cfg = load_config()
+def test_small_blocks_chunks_and_edits_equal_the_session(tmp_path):
+    """Blocks of 23 rows, simulation chunks of 64 columns and QA edits in the scene's journal:
+    still the session's results (whose simulation uses the default chunks) to 1e-6 K."""
+    import shutil
+
+    from cloudsieve.journal import Journal, journal_path
+
+    path = tmp_path / "night_front.nc"
+    shutil.copy(SAMPLES / "night_front.nc", path)
+    journal = Journal(journal_path(path), 300 * 300)
+    journal.add("cloud", np.arange(5000, 5400))
+    journal.add("clear", np.arange(40000, 40900))
+    mem = Session.open(path, load_config()).result_dataset()
+    assert mem.attrs["cloudsieve_qa_edits"] == "2"
     small = merge_config({"simulation": {"chunk_pixels": 64}})
-    path = SAMPLES / "night_front.nc"
-    edits = [{"action": "cloud", "index": np.arange(5000, 5400)}, {"action": "clear", "index": np.arange(40000, 40900)}]
-    model = ScreeningModel.open(path, cfg, journal=False)
-    res = pl.screen(model.scene, model.sim, cfg, edits=edits)
-    mem = result_dataset(model.scene, model.sim, res, cfg, edits)
-    with dask.config.set(scheduler="threads"):
-        lazy = scale.open_lazy(path, small, chunk_rows=23)
-        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, small, edits), small, tmp_path / "c.nc",
-                                     edits=edits)
-    _compare(mem, xr.open_dataset(out))
+    row = batch.screen_file(path, tmp_path / "c.nc", small, chunk_rows=23)
+    assert row["qa_edits"] == 2
+    _compare(mem, xr.open_dataset(tmp_path / "c.nc"))
 
 
-def test_float32_scene_equals_in_memory(tmp_path):
-    """A scene stored in float32 (as the benchmark's and most satellite files are): its fields
-    travel between tasks as float32, which holds them exactly, and the results still equal
-    the in-memory path's."""
+def test_float32_scene_equals_the_session(tmp_path):
+    """A scene stored in float32 (as most satellite files are) gives the session's results."""
     ds = xr.open_dataset(SAMPLES / "night_front.nc").load()
     for name, var in ds.data_vars.items():
         if var.dtype == np.float64:
@@ -73,25 +75,21 @@ def test_float32_scene_equals_in_memory(tmp_path):
     path = tmp_path / "night_front32.nc"
     ds.to_netcdf(path)
     cfg = load_config()
-    mem = ScreeningModel.open(path, cfg, journal=False).result_dataset()
-    with dask.config.set(scheduler="threads"):
-        lazy = scale.open_lazy(path, cfg, chunk_rows=41)
-        assert lazy.data["bt_11um"].attrs["cloudsieve_float32_exact"] == 1
-        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.nc")
-    _compare(mem, xr.open_dataset(out))
+    mem = Session.open(path, cfg, journal=False).result_dataset()
+    batch.screen_file(path, tmp_path / "c.nc", cfg, chunk_rows=41)
+    _compare(mem, xr.open_dataset(tmp_path / "c.nc"))
 
 
-def test_chunked_parquet_matches_csv_output(tmp_path):
+def test_lazy_parquet_to_csv_matches_the_session(tmp_path):
     cfg = load_config()
     pq = SAMPLES / "day_coast.parquet"
-    mem = ScreeningModel.open(pq, cfg, journal=False).result_dataset()
-    with dask.config.set(scheduler="threads"):
-        lazy = scale.open_lazy(pq, cfg, chunk_rows=64)
-        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.csv")
-    table = pd.read_csv(out)
+    mem = Session.open(pq, cfg, journal=False).result_dataset()
+    batch.screen_file(pq, tmp_path / "c.csv", cfg, chunk_rows=64)
+    table = pd.read_csv(tmp_path / "c.csv")
     assert len(table) == mem.sizes["y"] * mem.sizes["x"]
     np.testing.assert_array_equal(table["mask"].map({"clear": 0, "marginal": 1, "cloud": 2, "no_data": 3}),
                                   mem["mask"].values.ravel())
+    np.testing.assert_allclose(table["departure_11um"], mem["departure_11um"].values.ravel(), atol=1e-4)
 
 
 def test_lazy_check_reports_problems(tmp_path):
@@ -100,8 +98,8 @@ def test_lazy_check_reports_problems(tmp_path):
     ds = ds.rename({"bt_8p6um": "bt_10um"})
     path = tmp_path / "bad.nc"
     ds.to_netcdf(path)
-    with pytest.raises(scale.SceneError) as err:
-        scale.open_lazy(path, load_config())
+    with pytest.raises(SceneError) as err:
+        load_scene(path, config=load_config(), chunk_rows=64)
     assert "°C" in str(err.value) and "unknown channel '10um'" in str(err.value)
 
 
@@ -115,7 +113,7 @@ def test_archive_with_workers_skips_bad_scene(tmp_path):
     assert (tmp_path / "out" / "a_mask.nc").exists() and not (tmp_path / "out" / "bad_mask.nc").exists()
 
 
-def test_chunked_netcdf_passes_cf_checker(tmp_path):
+def test_lazy_batch_netcdf_passes_cf_checker(tmp_path):
     """The block-by-block NetCDF writer keeps the CF attributes (IOOS compliance-checker)."""
     import json
     import subprocess
@@ -124,10 +122,9 @@ def test_chunked_netcdf_passes_cf_checker(tmp_path):
     import sys
 
     cfg = load_config()
-    with dask.config.set(scheduler="threads"):
-        lazy = scale.open_lazy(SAMPLES / "polar_ice.nc", cfg, chunk_rows=50)
-        out, counts = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, tmp_path / "c.nc")
-    assert abs(sum(counts.values()) - 1) < 1e-3
+    out = tmp_path / "c.nc"
+    row = batch.screen_file(SAMPLES / "polar_ice.nc", out, cfg, chunk_rows=50)
+    assert abs(sum(row[k] for k in ("clear", "marginal", "cloud", "no_data")) - 1) < 1e-3
     exe = Path(sys.executable).with_name("compliance-checker")
     checker = str(exe) if exe.exists() else shutil.which("compliance-checker")
     proc = subprocess.run([checker, "--test=cf:1.10", "--format=json", "-o", "-", str(out)], capture_output=True,

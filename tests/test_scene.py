@@ -9,8 +9,8 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from dashboard.errors import SceneError
-from dashboard.scene import check_scene, load_scene
+from cloudsieve.errors import SceneError
+from cloudsieve.scene import check_scene, load_scene
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SMALL = SAMPLES / "night_front_small.csv"

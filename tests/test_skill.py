@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from dashboard.config import load_config
-from dashboard.model import ScreeningModel
-from dashboard.pipeline import CLOUD, MARGINAL
+from cloudsieve.config import load_config
+from cloudsieve.session import Session
+from cloudsieve.codes import CLOUD, MARGINAL
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SCENES = ["night_front", "day_coast", "polar_ice"]
@@ -25,7 +25,7 @@ SCENES = ["night_front", "day_coast", "polar_ice"]
 
 @pytest.fixture(scope="module", params=SCENES)
 def screened(request):
-    model = ScreeningModel.open(SAMPLES / f"{request.param}.nc", load_config(), journal=False)
+    model = Session.open(SAMPLES / f"{request.param}.nc", load_config(), journal=False)
     truth = xr.open_dataset(SAMPLES / f"{request.param}_truth.nc")
     return request.param, model, truth
 
@@ -70,7 +70,7 @@ def test_daylight_scene_skips_night_only_test(screened):
 def test_night_fog_contrast_means_low_cloud():
     """The fog test's bit is read as "fog or low water cloud": on the night scene it fires on
     the invented fog patch and never on cold high cloud (truth top colder than 260 K)."""
-    model = ScreeningModel.open(SAMPLES / "night_front.nc", load_config(), journal=False)
+    model = Session.open(SAMPLES / "night_front.nc", load_config(), journal=False)
     truth = xr.open_dataset(SAMPLES / "night_front_truth.nc")
     fired = np.nan_to_num(model.result.margins["night_fog_contrast"], nan=-1.0) > 0
     top_t = truth["cloud_top_temperature"].values

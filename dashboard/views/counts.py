@@ -4,7 +4,7 @@ import html
 import panel as pn
 from panel.viewable import Viewer
 
-from ..pipeline import CLASS_NAMES
+from cloudsieve.codes import CLASS_NAMES
 from .style import CLASS_COLOURS, COUNTS_CSS
 
 

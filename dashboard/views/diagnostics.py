@@ -7,8 +7,9 @@ import holoviews as hv
 import panel as pn
 from panel.viewable import Viewer
 
-from .. import pipeline as pl
-from .style import CLASS_COLOURS, INK, TEST_LABELS, channel_colour, channel_label
+from cloudsieve import codes as pl
+from cloudsieve.registry import bit_table
+from .style import CLASS_COLOURS, INK, test_label, channel_colour, channel_label
 
 MAX_POINTS = 20_000
 _DARK = "#454c5a"
@@ -136,7 +137,7 @@ class BiasFitPlot(_ModelPlot):
         m = self.model
         ds = m.scene.data
         res = m.result
-        use = (ds["valid"].values & (res.mask == pl.CLEAR) & ((res.bits & pl.BITS["warm_departure"]) == 0)).ravel()
+        use = (ds["valid"].values & (res.mask == pl.CLEAR) & ((res.bits & bit_table()["warm_departure"]) == 0)).ravel()
         x_all = m.sim.slant_path.ravel()
         idx = np.flatnonzero(use & np.isfinite(x_all))
         idx = idx[_subsample(idx.size, 4000, seed=1)]
@@ -194,7 +195,7 @@ class SceneSummary(Viewer):
         lines.append("")
         lines.append("**Tests not applied**" if s["skipped_tests"] else "**All tests applied.**")
         for t, why in s["skipped_tests"].items():
-            lines.append(f"- {TEST_LABELS.get(t, t)}: {why}")
+            lines.append(f"- {test_label(t)}: {why}")
         lines.append("")
         if s["notes"]:
             lines.append("**Notes**")

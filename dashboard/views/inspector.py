@@ -4,7 +4,7 @@ import holoviews as hv
 import panel as pn
 from panel.viewable import Viewer
 
-from .style import CLASS_COLOURS, TEST_LABELS, channel_colour, channel_label
+from .style import CLASS_COLOURS, test_label, channel_colour, channel_label
 
 _INPUT_LABELS = {
     "t_skin": ("skin temperature", "K", ".2f"), "t_air": ("air temperature", "K", ".2f"),
@@ -71,7 +71,7 @@ class PixelInspector(Viewer):
             where += f" · {inp['lat']:.3f}° N, {inp['lon']:.3f}° E"
         out = [f"#### Pixel {where}",
                f"Class {swatch}**{info['class']}** · surface {inp.get('surface', '–')}"
-               + (f" · tests fired: {', '.join(TEST_LABELS.get(t, t) for t in info['tests_fired'])}"
+               + (f" · tests fired: {', '.join(test_label(t) for t in info['tests_fired'])}"
                   if info["tests_fired"] else " · no test fired"), ""]
         out += ["| input | value |", "|---|---|"]
         for key, (label, unit, fmt) in _INPUT_LABELS.items():
@@ -84,10 +84,10 @@ class PixelInspector(Viewer):
         out += ["", "| test | margin [K] | fired |", "|---|---|---|"]
         for t, mg in info["margins"].items():
             fired = mg is not None and mg > 0
-            out.append(f"| {TEST_LABELS.get(t, t)} | {_f(mg, '+.2f')} | {'● fired' if fired else ''} |")
+            out.append(f"| {test_label(t)} | {_f(mg, '+.2f')} | {'● fired' if fired else ''} |")
         skipped = self.model.result.skipped
         for t, why in skipped.items():
-            out.append(f"| {TEST_LABELS.get(t, t)} | – | not applied ({why}) |")
+            out.append(f"| {test_label(t)} | – | not applied ({why}) |")
         cl = info["cloud"]
         tau, stau = cl["optical_depth"], cl["optical_depth_sigma"]
         if tau is None:

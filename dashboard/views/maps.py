@@ -15,7 +15,8 @@ from bokeh.models import CustomJSHover, FixedTicker, Range1d
 from panel.viewable import Viewer
 from scipy import ndimage
 
-from .. import pipeline as pl
+from cloudsieve import codes as pl
+from cloudsieve.screen import edits_grid
 from .style import CLASS_COLOURS, EDIT_OUTLINE, SELECTION_LINE, channel_label
 
 XDIM = hv.Dimension("x", label="column")
@@ -157,7 +158,7 @@ class MapGrid(Viewer):
 
     def edit_outline(self, version=None):
         edits = self.model.journal.active() if self.model.journal is not None else []
-        codes = pl.edits_grid(self.model.result.mask.shape, edits) != 0
+        codes = edits_grid(self.model.result.mask.shape, edits) != 0
         rim = codes & ~ndimage.binary_erosion(codes, border_value=0)
         return hv.Image((self._xs, self._ys, rim.astype(np.float32)), kdims=[XDIM, YDIM],
                         vdims=["edited"]).opts(**_OUTLINE_OPTS)

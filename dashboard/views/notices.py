@@ -11,7 +11,7 @@ import logging
 import panel as pn
 from panel.viewable import Viewer
 
-from ..errors import CloudsieveError
+from cloudsieve.errors import CloudsieveError
 
 log = logging.getLogger("cloudsieve.dashboard")
 

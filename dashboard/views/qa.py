@@ -7,8 +7,8 @@ import numpy as np
 import panel as pn
 from panel.viewable import Viewer
 
-from ..journal import StaleEditsError
-from .style import TEST_LABELS
+from cloudsieve.journal import StaleEditsError
+from .style import test_label
 
 
 class QAPanel(Viewer):
@@ -115,5 +115,5 @@ class QAPanel(Viewer):
         rows = [f"**Test scores against your labels** ({n_cloud:,} marked cloud, {n_clear:,} marked clear)", "",
                 "| test | hit rate | false-alarm rate |", "|---|---|---|"]
         for t, (hr, far, _nc, _nn) in scores.items():
-            rows.append(f"| {TEST_LABELS.get(t, t)} | {pct(hr)} | {pct(far)} |")
+            rows.append(f"| {test_label(t)} | {pct(hr)} | {pct(far)} |")
         return "\n".join(rows)

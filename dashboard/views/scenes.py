@@ -14,8 +14,8 @@ from pathlib import Path
 import panel as pn
 from panel.viewable import Viewer
 
-from ..errors import SceneError
-from ..scene import check_scene
+from cloudsieve.errors import SceneError
+from cloudsieve.scene import check_scene
 
 UPLOAD_SUFFIXES = (".csv", ".parquet", ".nc")
 #: marker the browser-side size check puts in mime_type instead of sending an oversized file

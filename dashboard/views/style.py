@@ -49,26 +49,12 @@ def channel_label(ch):
     return ch
 
 
-TEST_LABELS = {
-    "cold_departure": "Cold departure",
-    "split_window_excess": "Split-window excess",
-    "texture": "Texture",
-    "night_fog_contrast": "Night fog contrast",
-    "warm_departure": "Warm departure",
-}
+def test_label(name):
+    """The dashboard label of a screening test (from the registry)."""
+    from cloudsieve.registry import REGISTRY
 
-TEST_HELP = {
-    "cold_departure": "Window channel colder than clear sky by more than k times the expected clear-sky "
-                      "error σ. Threshold: k [× σ].",
-    "split_window_excess": "11 − 12 µm difference above its clear-sky value: thin ice cloud widens it. "
-                           "Threshold [K] (grows with slant water-vapour path).",
-    "texture": "Rough window-channel departure in a small window, with the pixel colder than its "
-               "warmest neighbour. Threshold on the local standard deviation [K].",
-    "night_fog_contrast": "Night only: 3.9 µm colder than 11 µm relative to clear sky, the mark of "
-                          "water droplets (fog, low cloud). Threshold [K].",
-    "warm_departure": "Window channel warmer than clear sky: the background is suspect. Flags the "
-                      "pixel (not cloud) and keeps it out of the bias fit. Threshold [K].",
-}
+    return REGISTRY[name].label if name in REGISTRY else name
+
 
 SURFACE_LABELS = {"sea": "Sea", "land": "Land", "ice": "Ice"}
 

@@ -7,12 +7,10 @@ import numpy as np
 import panel as pn
 from panel.viewable import Viewer
 
-from ..config import SURFACES
-from ..model import TUNABLE
-from .style import BUTTON_GROUP_CSS, SURFACE_LABELS, TEST_HELP, TEST_LABELS
+from cloudsieve.codes import SURFACES
+from cloudsieve.registry import REGISTRY
 
-#: slider range and step per unit label of model.TUNABLE
-_RANGE = {"× σ": (0.0, 10.0, 0.1), "K": (0.0, 10.0, 0.05)}
+from .style import BUTTON_GROUP_CSS, SURFACE_LABELS
 
 
 class TuningPanel(Viewer):
@@ -30,8 +28,9 @@ class TuningPanel(Viewer):
             description="Thresholds are set per surface type; choose which one the sliders below edit.")
         self.switches, self.sliders = {}, {}
         rows = []
-        for test, (_key, unit) in TUNABLE.items():
-            lo, hi, step = _RANGE.get(unit, (0.0, 10.0, 0.05))
+        for test, spec in REGISTRY.items():
+            unit = spec.tunable.unit
+            (lo, hi), step = spec.tunable.bounds, spec.tunable.step
             sw = pn.widgets.Switch(value=model.enabled(test), width=40, margin=(8, 4, 0, 10),
                                    css_classes=[f"cs-switch-{test}"])
             sl = pn.widgets.FloatSlider(label=f"threshold [{unit}]", start=lo,
@@ -45,8 +44,8 @@ class TuningPanel(Viewer):
             sw.param.watch(self._switch_cb(test), "value")
             sl.param.watch(self._slider_cb(test), "value_throttled")
             self.switches[test], self.sliders[test] = sw, sl
-            title = pn.pane.HTML(f"<b>{TEST_LABELS.get(test, test)}</b>", margin=(8, 0, 0, 0))
-            help_ = pn.widgets.TooltipIcon(value=TEST_HELP.get(test, ""), margin=(6, 0, 0, 0))
+            title = pn.pane.HTML(f"<b>{REGISTRY[test].label}</b>", margin=(8, 0, 0, 0))
+            help_ = pn.widgets.TooltipIcon(value=REGISTRY[test].help, margin=(6, 0, 0, 0))
             note = pn.pane.HTML(pn.bind(self._skip_note, test, model.param.version), margin=(0, 10),
                                 css_classes=["cs-muted"])
             rows.append(pn.Column(pn.Row(sw, title, help_), sl, note, margin=0))
@@ -89,13 +88,13 @@ class TuningPanel(Viewer):
 
     # ------------------------------------------------------------------ callbacks
     def _switch_cb(self, test):
-        @self.notices.guard(f"switching {TEST_LABELS.get(test, test)}")
+        @self.notices.guard(f"switching {REGISTRY[test].label}")
         def cb(event):
             self.model.set_enabled(test, event.new)
         return cb
 
     def _slider_cb(self, test):
-        @self.notices.guard(f"setting the {TEST_LABELS.get(test, test)} threshold")
+        @self.notices.guard(f"setting the {REGISTRY[test].label} threshold")
         def cb(event):
             if event.new is None:
                 return

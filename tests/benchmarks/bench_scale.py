@@ -1,4 +1,4 @@
-"""Benchmark: large scenes on the chunked Dask path.
+"""Benchmark: large scenes on the lazy (Dask) batch path.
 
 1. Builds a 4000 × 4000, 4-channel NetCDF scene by mirror-tiling the invented sample scene
    ``night_front`` (written block by block; not timed) and screens it with
@@ -129,27 +129,23 @@ def run_tree(cmd):
 
 def control_job(blocks):
     """Clear-sky kernel on ``blocks`` synthetic 2048-column blocks in this process; prints its seconds."""
-    from dashboard import pipeline as pl
-    from dashboard import scale
-    from dashboard.config import absorption_table, load_config
-    from physics.absorption import channel_coefficients
+    from cloudsieve import batch
+    from cloudsieve.config import load_config
+    from cloudsieve.simulate import ChannelSet, Columns, simulate_columns
 
-    scale._tune_allocator()  # as the block kernels do
+    batch._tune_allocator()  # as the block tasks do
     cfg = load_config()
-    names = ("3p9um", "8p6um", "11um", "12um")
-    chans = pl.scene_channels(cfg, names)
-    coeffs = channel_coefficients(chans, absorption_table(cfg))
+    chset = ChannelSet.for_scene(("3p9um", "8p6um", "11um", "12um"), cfg)
     rng = np.random.default_rng(0)
     n = 2048
     f32 = np.float32
     t_air = rng.uniform(270, 300, n).astype(f32)
-    args = (t_air, rng.uniform(5, 50, n).astype(f32), np.full(n, 1013.25, f32), t_air + 1,
-            rng.uniform(0, 60, n).astype(f32))
-    emis = np.full((4, n), 0.98, f32)
+    cols = Columns(t_air, rng.uniform(5, 50, n).astype(f32), np.full(n, 1013.25, f32), t_air + 1,
+                   rng.uniform(0, 60, n).astype(f32), np.full((4, n), 0.98, f32))
     sim_cfg = dict(cfg["simulation"], chunk_pixels=n)
     t0 = time.perf_counter()
     for _ in range(blocks):
-        scale._columns(*args, emis, chans, coeffs, sim_cfg, levels=False)
+        simulate_columns(cols, chset, sim_cfg)
     print(time.perf_counter() - t0)
 
 
@@ -169,18 +165,16 @@ def process_control(blocks=400):
 
 
 def matches_in_memory():
-    import dask
-
-    from dashboard import scale
-    from dashboard.config import load_config
-    from dashboard.model import ScreeningModel
+    from cloudsieve import batch
+    from cloudsieve.config import load_config
+    from cloudsieve.session import Session
 
     cfg = load_config()
     path = ROOT / "sample_scenes" / "night_front.nc"
-    mem = ScreeningModel.open(path, cfg, journal=False).result_dataset()
-    with tempfile.TemporaryDirectory() as tmp, dask.config.set(scheduler="threads"):
-        lazy = scale.open_lazy(path, cfg, chunk_rows=37)
-        out, _ = scale.write_chunked(lazy, scale.screen_chunked(lazy, cfg), cfg, Path(tmp) / "c.nc")
+    mem = Session.open(path, cfg, journal=False).result_dataset()
+    with tempfile.TemporaryDirectory() as tmp:
+        out = Path(tmp) / "c.nc"
+        batch.screen_file(path, out, cfg, chunk_rows=37)
         ch = xr.open_dataset(out).load()
     worst = 0.0
     for v in mem.data_vars:

@@ -1,7 +1,7 @@
-"""Configuration: defaults from ``dashboard/data/default_config.toml``, user overrides, checks.
+"""Configuration: defaults from ``cloudsieve/data/default_config.toml``, user overrides, checks.
 
 A user's TOML file may override any entry of the defaults. Unknown keys, wrong types and
-impossible values are all collected into one :class:`~dashboard.errors.ConfigError` that
+impossible values are all collected into one :class:`~cloudsieve.errors.ConfigError` that
 lists every problem with what to do. The absorption coefficients (``physics/data/absorption.toml``)
 can be overridden in an ``[absorption]`` table of the same layout.
 """
@@ -12,10 +12,10 @@ import tomllib
 from importlib import resources
 from pathlib import Path
 
+from .codes import SURFACES
 from .errors import ConfigError
+from .registry import REGISTRY
 
-SURFACES = ("sea", "land", "ice")
-SURFACE_CODES = {"sea": 0, "land": 1, "ice": 2}
 TOP_METHODS = ("fixed", "opaque", "grey")
 
 #: Tables whose keys are open (new channel names may be added)
@@ -28,8 +28,16 @@ def _read_toml_resource(package, name):
 
 
 def default_config():
-    """The default configuration as a nested dict (a fresh copy)."""
-    return _read_toml_resource("dashboard", "data/default_config.toml")
+    """The default configuration as a nested dict (a fresh copy).
+
+    A registered screening test without a ``[tests.<name>]`` table in the packaged file gets
+    its registry entry's defaults.
+    """
+    cfg = _read_toml_resource("cloudsieve", "data/default_config.toml")
+    for name, test in REGISTRY.items():
+        if name not in cfg["tests"]:
+            cfg["tests"][name] = copy.deepcopy(test.defaults)
+    return cfg
 
 
 def default_absorption():
@@ -203,28 +211,6 @@ def absorption_table(cfg):
 
     deep(table, cfg.get("absorption", {}))
     return table
-
-
-def per_surface(value, surface_code):
-    """Map a {sea, land, ice} table (or a number) onto an array of surface codes.
-
-    Parameters
-    ----------
-    value : float or mapping
-        One number, or a table with keys sea/land/ice.
-    surface_code : ndarray of int
-        0 sea, 1 land, 2 ice.
-
-    Returns
-    -------
-    ndarray of float
-    """
-    import numpy as np
-
-    if not isinstance(value, dict):
-        return np.full(np.shape(surface_code), float(value))
-    lut = np.array([float(value.get(s, value.get("sea", 0.0))) for s in SURFACES])
-    return lut[np.clip(np.asarray(surface_code), 0, 2)]
 
 
 def config_json(cfg):

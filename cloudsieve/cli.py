@@ -21,7 +21,6 @@ from . import CAUTION, __version__
 from .errors import CloudsieveError, SceneError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_OUTPUT, EXIT_PARTIAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 4, 130
-AUTO_CHUNK_PIXELS = 4_000_000  # above this a NetCDF/Parquet scene is screened chunk by chunk
 
 DESCRIPTION = """\
 cloudsieve — screen infrared window-channel imagery (3.9, 8.6, 11, 12 µm) for cloud.
@@ -198,41 +197,30 @@ def cmd_config(args):
         load_config(args.check)
         print(f"{args.check}: configuration is valid")
         return EXIT_OK
-    print("# cloudsieve default configuration (see dashboard/data/default_config.toml for the reasoning)")
+    print("# cloudsieve default configuration (see cloudsieve/data/default_config.toml for the reasoning)")
     print(to_toml(default_config()))
     return EXIT_OK
 
 
-def _screen_one(path, out_path, cfg, fmt, use_edits, show_progress):
-    from . import pipeline as pl
-    from .model import ScreeningModel, _NoJournal
-    from .scene import load_scene
+def _screen_one(path, out_path, cfg, fmt, args, show_progress):
+    from . import batch
 
-    t0 = time.perf_counter()
-    scene = load_scene(path, config=cfg)
-    n = int(scene.data["valid"].values.sum())
-    bar = _progress(show_progress, n, Path(path).name)
+    bar = None
     last = [0]
 
     def tick(done, total):
+        nonlocal bar
+        if bar is None:
+            bar = _progress(show_progress, total, Path(path).name)
         if bar is not None:
             bar.update(done - last[0])
             last[0] = done
 
     try:
-        # batch: the clear-sky pass keeps no per-level data, and only the flagged pixels'
-        # columns are simulated again with levels for the cloud inversion
-        sim = pl.simulate(scene, cfg, progress=tick, levels=False)
+        return batch.screen_file(path, out_path, cfg, fmt, _chunk_rows(args, path), not args.no_edits, tick)
     finally:
         if bar is not None:
             bar.close()
-    model = ScreeningModel(scene, cfg, journal=None if use_edits else _NoJournal(), sim=sim, invert_scope="flagged")
-    model.write(out_path, fmt)
-    summ = model.summary()
-    summ["seconds"] = round(time.perf_counter() - t0, 2)
-    summ["output"] = str(out_path)
-    summ["qa_edits"] = len(model.edit_listing())
-    return summ
 
 
 def cmd_screen(args):
@@ -286,33 +274,15 @@ def _dask_client(args):
     return Client(cluster)
 
 
-def _use_chunks(args, path):
+def _chunk_rows(args, path):
+    """Rows per block when the scene is to be read lazily (None: read whole)."""
+    from .batch import AUTO_CHUNK_PIXELS, DEFAULT_CHUNK_ROWS
+    from .scene import grid_size
+
     if args.chunks or args.workers or args.scheduler:
-        return True
-    from .scene import scene_format
-
-    try:
-        fmt = scene_format(path)
-    except SceneError:
-        return False
-    if fmt == "netcdf":
-        try:
-            import xarray as xr
-
-            from .scene import _open_netcdf
-
-            with _open_netcdf(path) as ds:
-                return ds.sizes.get("y", 0) * ds.sizes.get("x", 0) > AUTO_CHUNK_PIXELS
-        except Exception:  # noqa: BLE001 — unreadable: let the normal loader report it
-            return False
-    if fmt == "parquet":
-        try:
-            import pyarrow.parquet as pq
-
-            return pq.ParquetFile(path).metadata.num_rows > AUTO_CHUNK_PIXELS
-        except Exception:  # noqa: BLE001
-            return False
-    return False
+        return args.chunks or DEFAULT_CHUNK_ROWS
+    n = grid_size(path)  # None where the file cannot tell cheaply; the reader then reports
+    return DEFAULT_CHUNK_ROWS if n is not None and n > AUTO_CHUNK_PIXELS else None
 
 
 def _screen_files(args, cfg, files, out, many, fmt, ext, client):
@@ -332,13 +302,7 @@ def _screen_files(args, cfg, files, out, many, fmt, ext, client):
                 stem = f"{Path(path).parent.name}_{stem}"
         target = out / f"{stem}_mask{ext}" if many else out
         try:
-            if _use_chunks(args, path):
-                from . import scale  # imports dask (~2 s): only for the chunked path
-
-                rows.append(scale.screen_file_chunked(path, target, cfg, fmt, args.chunks or scale.DEFAULT_CHUNK_ROWS,
-                                                      not args.no_edits))
-            else:
-                rows.append(_screen_one(path, target, cfg, fmt, not args.no_edits, not args.quiet and not many))
+            rows.append(_screen_one(path, target, cfg, fmt, args, not args.quiet and not many))
             if bar is not None:
                 bar.update(1)
         except CloudsieveError as exc:
@@ -374,15 +338,15 @@ def _print_summary(rows, failed):
 
 
 def cmd_simulate(args):
-    from . import pipeline as pl
     from .config import load_config
     from .export import write_simulation
     from .scene import load_scene
+    from .simulate import simulate
 
     cfg = load_config(args.config)
     fmt = _output_format(args.out, args.format)
     scene = load_scene(args.scene, config=cfg)
-    sim = pl.simulate(scene, cfg, levels=False)
+    sim = simulate(scene, cfg, levels=False)
     write_simulation(scene, sim, args.out, fmt)
     print(f"clear-sky simulation of {scene.name} ({len(sim.channels)} channel(s), "
           f"{sim.valid_index.size:,} pixels, {sim.seconds:.2f} s) written to {args.out}")
@@ -390,7 +354,7 @@ def cmd_simulate(args):
 
 
 def cmd_serve(args):
-    from .app import serve
+    from dashboard.app import serve  # the Panel app, imported only to serve
 
     return serve(args)
 

@@ -1,0 +1,364 @@
+"""One screened scene and its settings: the headless session the CLI and the dashboard drive.
+
+:class:`Session` holds the scene, the configuration (the settings an analyst tunes live in it),
+the pipeline's stage results and the QA journal. In three lines::
+
+    s = Session.open("scene.nc")          # read, check, simulate, screen, invert
+    s.set_threshold("texture", 1.2)       # retune: only the screening runs again
+    s.write("mask.nc")                    # the same file `cloudsieve screen` writes
+
+Costs: opening a scene runs the clear-sky simulation once. Changing a threshold, switching a
+test or the bias removal re-runs only the screening (2-D arithmetic); changing the cloud-top
+choice re-runs the inversion (per pixel, no new simulation). The dashboard's param model
+(:mod:`dashboard.model`) wraps one Session per browser session.
+"""
+import copy
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from physics import cloud as pcloud
+
+from .codes import CLASS_NAMES, CLEAR, CLOUD, MARGINAL, SURFACES
+from .config import TOP_METHODS, load_config
+from .export import result_dataset, write_result
+from .invert import invert_all
+from .journal import Journal, StaleEditsError, journal_path
+from .registry import REGISTRY, bit_table
+from .scene import load_scene
+from .screen import edits_grid, screen_scene, sigma_from_path, summary_row
+from . import simulate as simulation
+
+#: Where the cloud inversion runs: every valid pixel once (the dashboard, so that retuning
+#: never waits for it) or only the pixels the screening flags.
+INVERT_SCOPES = ("all", "flagged")
+
+
+class Session:
+    """A screened scene with tunable settings, QA edits and exports.
+
+    Parameters
+    ----------
+    scene : cloudsieve.scene.Scene
+    config : dict, optional
+        Configuration (the defaults when omitted); copied, the session's settings change the copy.
+    journal : Journal or None or bool
+        The QA journal: ``True`` (default) opens the one beside the scene file, ``False`` or
+        ``None`` applies no edits (and refuses new ones), a Journal is used as given.
+    sim : pipeline.Simulation, optional
+        A simulation of this scene under this configuration to reuse (the dashboard shares
+        one per file between browser sessions); computed when omitted.
+    invert_scope : {"all", "flagged"}
+    """
+
+    def __init__(self, scene, config=None, journal=True, sim=None, invert_scope="all"):
+        if invert_scope not in INVERT_SCOPES:
+            raise ValueError(f"invert_scope must be one of {INVERT_SCOPES}")
+        compact_scene(scene)
+        self.scene = scene
+        self.config = copy.deepcopy(config) if config is not None else load_config()
+        self.invert_scope = invert_scope
+        n = scene.data.sizes["y"] * scene.data.sizes["x"]
+        if journal is True:
+            journal = Journal(journal_path(scene.path), n) if scene.path is not None else None
+        self.journal = journal or None
+        self.problems = list(self.journal.problems) if self.journal is not None else []
+        self.sim = sim if sim is not None else simulation.simulate(scene, self.config)
+        #: large scene: no level data kept (simulate.LEVELS_PIXEL_LIMIT); results held in float32
+        self.lean = self.sim.level_pressure is None
+        self._cloud = None
+        self._cloud_key = None
+        self._screen_cache = {}  # threshold-independent screening arrays of this scene (pipeline.screen)
+        self._shown_latest_edit = None
+        self.result = None
+        self.timings = {"simulate_s": self.sim.seconds}
+        self.update()
+
+    @classmethod
+    def open(cls, path, config=None, journal=True, invert_scope="all"):
+        """Load, validate and simulate a scene file (raises SceneError with the report)."""
+        cfg = config if config is not None else load_config()
+        return cls(load_scene(path, config=cfg), cfg, journal=journal, invert_scope=invert_scope)
+
+    # ------------------------------------------------------------------ settings
+    @property
+    def cloud_top(self):
+        return self.config["cloud"]["top"]
+
+    @property
+    def top_pressure(self):
+        return float(self.config["cloud"]["top_pressure"])
+
+    @property
+    def remove_bias(self):
+        return bool(self.config["bias"]["remove"])
+
+    @property
+    def marginal_fraction(self):
+        return float(self.config["screening"]["marginal_fraction"])
+
+    def configure(self, cloud_top=None, top_pressure=None, remove_bias=None, marginal_fraction=None):
+        """Change any of the tunable settings at once, then rescreen (once).
+
+        A new ``top_pressure`` replaces a configured ``[cloud] top_height``: the analyst chose
+        a pressure.
+        """
+        cc = self.config["cloud"]
+        if cloud_top is not None:
+            if cloud_top not in TOP_METHODS:
+                raise ValueError(f"cloud_top must be one of {TOP_METHODS}")
+            cc["top"] = cloud_top
+        if top_pressure is not None and float(top_pressure) != cc["top_pressure"]:
+            cc["top_pressure"] = float(top_pressure)
+            cc.pop("top_height", None)
+        if remove_bias is not None:
+            self.config["bias"]["remove"] = bool(remove_bias)
+        if marginal_fraction is not None:
+            self.config["screening"]["marginal_fraction"] = float(marginal_fraction)
+        self.update()
+
+    def threshold(self, test, surface="sea"):
+        """The tunable threshold of ``test`` for a surface type [its unit in the registry]."""
+        return float(self.config["tests"][test][REGISTRY[test].tunable.key][surface])
+
+    def enabled(self, test):
+        return bool(self.config["tests"][test]["enabled"])
+
+    def set_threshold(self, test, value, surface=None):
+        """Set a test's threshold for one surface type (or all) and rescreen."""
+        spec = REGISTRY[test].tunable
+        if not np.isfinite(value) or value < 0:
+            raise ValueError(f"threshold of {test} must be a number ≥ 0")
+        for s in ([surface] if surface else SURFACES):
+            self.config["tests"][test][spec.key][s] = float(value)
+        self.update()
+
+    def set_enabled(self, test, on):
+        """Switch a test on or off and rescreen."""
+        self.config["tests"][test]["enabled"] = bool(on)
+        self.update()
+
+    # ------------------------------------------------------------------ computing
+    def _cloud_layer(self, cfg, bias_applied, mask):
+        only = None
+        if self.invert_scope == "flagged":
+            only = (mask == CLOUD) | (mask == MARGINAL)
+        cc = cfg["cloud"]
+        key = (cc["top"], (cc["top_pressure"], cc.get("top_height")) if cc["top"] == "fixed" else None,
+               tuple(sorted((c, b["a"], b["b"]) for c, b in bias_applied.items())) if bias_applied else None,
+               None if only is None else hash(np.packbits(only).tobytes()))
+        if key != self._cloud_key:
+            t0 = time.perf_counter()
+            sigma = sigma_from_path(self.scene.data["surface"].values, self.sim.slant_path, cfg)
+            self._cloud = invert_all(self.scene, self.sim, cfg, sigma,
+                                     {c: (b["a"], b["b"]) for c, b in bias_applied.items()} if bias_applied else None,
+                                     only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None)
+            if self.lean:
+                self._cloud = self._cloud.as_float32()
+            self._cloud_key = key
+            self.timings["invert_s"] = time.perf_counter() - t0
+        return self._cloud
+
+    def edits(self):
+        """The QA edits in force (none without a journal)."""
+        return self.journal.active() if self.journal is not None else []
+
+    def update(self):
+        """Screen again under the current settings and edits (the inversion only if its inputs changed)."""
+        t0 = time.perf_counter()
+        cfg = self.config
+        edits = self.edits()
+        self._shown_latest_edit = edits[-1]["id"] if edits else None
+        res = screen_scene(self.scene, self.sim, cfg, edits=edits, cache=self._screen_cache)
+        bias_applied = {c: b for c, b in res.bias.items() if b.get("applied")}
+        res.cloud = self._cloud_layer(cfg, bias_applied, res.mask).masked(res.mask)
+        if self.lean:  # exports write float32 anyway; the departures and σ stay shared with the cache
+            res.margins = {t: m.astype(np.float32) for t, m in res.margins.items()}
+            # the dashboard shows each threshold as its median over valid pixels: keep just that
+            valid = self.scene.data["valid"].values
+            res.thresholds = {t: _median_over(v, valid) for t, v in res.thresholds.items()}
+        self.result = res
+        self.timings["screen_s"] = time.perf_counter() - t0
+        return res
+
+    # ------------------------------------------------------------------ QA edits
+    def _journal_or_fail(self):
+        if self.journal is None:
+            raise ValueError("this session applies no QA edits (opened without a journal)")
+        return self.journal
+
+    def mark(self, action, index):
+        """Record a QA edit (clear / cloud / reset) of flat pixel indices, then rescreen."""
+        entry = self._journal_or_fail().add(action, index)
+        self.update()
+        return entry
+
+    def undo(self):
+        """Undo the latest edit in force — the one this session last showed. If another session
+        changed the scene's edits meanwhile, rescreen with them and raise StaleEditsError
+        (nothing undone)."""
+        try:
+            entry = self._journal_or_fail().undo(expected=self._shown_latest_edit)
+        except StaleEditsError:
+            self.update()
+            raise
+        self.update()
+        return entry
+
+    def edit_listing(self):
+        return self.journal.listing() if self.journal is not None else []
+
+    def label_scores(self):
+        """Each test's hit rate and false-alarm rate against the analyst's labels.
+
+        Pixels the analyst marked cloud are positives, those marked clear negatives.
+        Hit rate = fired on marked-cloud / marked-cloud; false-alarm rate = fired on
+        marked-clear / marked-clear. Returns dict test -> (hit_rate, false_alarm_rate,
+        n_cloud, n_clear); rates are NaN without labels of that kind.
+        """
+        codes = edits_grid(self.result.mask.shape, self.edits())
+        pos, neg = codes == 2, codes == 1
+        out = {}
+        for test, m in self.result.margins.items():
+            fired = np.nan_to_num(m, nan=-np.inf) > 0
+            hr = fired[pos].mean() if pos.any() else float("nan")
+            far = fired[neg].mean() if neg.any() else float("nan")
+            out[test] = (float(hr), float(far), int(pos.sum()), int(neg.sum()))
+        return out
+
+    # ------------------------------------------------------------------ reading results
+    @property
+    def counts(self):
+        return dict(self.result.counts)
+
+    def result_dataset(self, action="screen"):
+        return result_dataset(self.scene, self.sim, self.result, self.config, self.edits(), action)
+
+    def export_bytes(self, fmt):
+        """The CSV or NetCDF file of the current result, as bytes (for downloads)."""
+        n_edits = len(self.edits())
+        ds = self.result_dataset(action=f"dashboard export ({n_edits} QA edit{'s' if n_edits != 1 else ''} in force)")
+        suffix = ".nc" if fmt == "netcdf" else ".csv"
+        with tempfile.TemporaryDirectory() as tmp:
+            path = Path(tmp) / f"{self.scene.name}_mask{suffix}"
+            write_result(ds, path, fmt)
+            return path.read_bytes()
+
+    def write(self, path, fmt=None):
+        return write_result(self.result_dataset(), path, fmt)
+
+    def summary(self):
+        """The summary row of the current result (scene, pixels, class fractions, bias, notes)."""
+        r = self.result
+        return summary_row(self.scene.name, r.mask.size, r.counts, r.bias, r.skipped,
+                           r.notes + (r.cloud.notes if r.cloud else []))
+
+    def pixel_info(self, row, col):
+        """Everything the inspector shows for one pixel (grid indices y=row, x=col)."""
+        ds = self.scene.data
+        ny, nx = self.result.mask.shape
+        if not (0 <= row < ny and 0 <= col < nx):
+            raise ValueError(f"pixel ({row}, {col}) is outside the {ny} × {nx} grid")
+        res = self.result
+        flat = row * nx + col
+        inputs = {k: _num(ds[k].values[row, col]) for k in ("t_skin", "t_air", "tcwv", "sat_zenith", "sol_zenith",
+                                                            "p_surf") if k in ds}
+        inputs["surface"] = SURFACES[int(ds["surface"].values[row, col])]
+        if "lat" in ds.coords:
+            inputs["lat"] = _num(ds["lat"].values[row, col])
+            inputs["lon"] = _num(ds["lon"].values[row, col])
+        channels = {}
+        for i, ch in enumerate(self.sim.channels):
+            channels[ch] = {"observed": _num(ds[f"bt_{ch}"].values[row, col]),
+                            "clear": _num(self.sim.bt_clear[i, row, col]),
+                            "departure": _num(res.departure[ch][row, col])}
+        margins = {t: _num(m[row, col]) for t, m in res.margins.items()}
+        cl = res.cloud
+        cloud = {"status": pcloud.STATUS_NAMES[int(cl.status[row, col])],
+                 "optical_depth": _num(cl.optical_depth[row, col]),
+                 "optical_depth_sigma": _num(cl.optical_depth_sigma[row, col]),
+                 "extinction_optical_depth": _num(cl.extinction_optical_depth[row, col]),
+                 "top_pressure": _num(cl.top_pressure[row, col]),
+                 "top_temperature": _num(cl.top_temperature[row, col]),
+                 "emissivity": {c: _num(cl.emissivity[k, row, col]) for k, c in enumerate(cl.channels)}}
+        bits = int(res.bits[row, col])
+        return {"row": int(ds["row"].values[row]), "col": int(ds["col"].values[col]), "y": row, "x": col,
+                "flat": flat, "class": CLASS_NAMES[int(res.mask[row, col])],
+                "tests_fired": [b for b, v in bit_table().items() if bits & v],
+                "inputs": inputs, "channels": channels, "margins": margins, "cloud": cloud,
+                "curve": self.optical_depth_curve(row, col)}
+
+    def optical_depth_curve(self, row, col, taus=None):
+        """Modelled brightness temperature against cloud optical depth at the pixel's top.
+
+        Uses the grey-cloud forward model (physics.cloud.grey_cloud_radiance) with the
+        clear-sky and opaque-level radiances of the simulation, at the retrieved top
+        pressure, or at the reference (``top_pressure``) one for a clear pixel. Returns dict
+        with "tau", per channel modelled BT [K], and the observed BT per channel.
+        """
+        ny, nx = self.result.mask.shape
+        flat = row * nx + col
+        pos = np.searchsorted(self.sim.valid_index, flat)
+        if pos >= self.sim.valid_index.size or self.sim.valid_index[pos] != flat:
+            return None
+        taus = np.concatenate([[0.0], np.geomspace(0.01, 20.0, 60)]) if taus is None else np.asarray(taus)
+        p_top = self.result.cloud.top_pressure[row, col]
+        if not np.isfinite(p_top) and self.result.mask[row, col] != CLEAR and self._cloud is not None:
+            p_top = self._cloud.top_pressure[row, col]
+        if not np.isfinite(p_top):
+            # a clear pixel has no retrieved top (a top fitted to its small departure would sit
+            # near the surface and show a flat curve): show a cloud at the reference top
+            p_top = self.top_pressure
+        if self.sim.level_pressure is not None:
+            lp = self.sim.level_pressure[pos].astype(float)
+            opq_levels = self.sim.opaque_radiance[pos].astype(float)
+        else:  # large scene: simulate this one column again, with its levels
+            lp, _, opq_levels = simulation.ColumnSimulator(self.scene, self.config).levels(np.array([flat]))
+            lp, opq_levels = lp[0].astype(float), opq_levels[0].astype(float)
+        opq = pcloud.interpolate_levels(lp, opq_levels, p_top)
+        clr = self.sim.clear_radiance[pos].astype(float)
+        mu = np.cos(np.deg2rad(float(self.scene.data["sat_zenith"].values[row, col])))
+        out = {"tau": taus.tolist(), "top_pressure": float(p_top), "model": {}, "observed": {}}
+        for i, ch in enumerate(self.sim.channels):
+            chan = self.sim.channel_objects[i]
+            rad = pcloud.grey_cloud_radiance(clr[i:i + 1], opq[i:i + 1], taus, mu)[..., 0]
+            out["model"][ch] = chan.brightness_temperature(rad).tolist()
+            out["observed"][ch] = _num(self.scene.data[f"bt_{ch}"].values[row, col])
+        return out
+
+
+
+def compact_scene(scene):
+    """Large scenes (lean mode): hold the lat/lon grids as float32 where that loses nothing.
+
+    They are only shown and exported (as float32), so narrowing them changes no result and
+    saves 8 bytes per pixel (256 MB at 4000 × 4000). The scene's data variables stay float64:
+    the pipeline computes with them directly, and float32 inputs would change its arithmetic
+    (measured: cloud optical-depth uncertainties moved by up to 0.03). Small scenes are left
+    alone. Idempotent; the dashboard shares a scene between sessions, which is safe because
+    the values do not change.
+    """
+    ds = scene.data
+    if ds.sizes.get("y", 0) * ds.sizes.get("x", 0) <= simulation.LEVELS_PIXEL_LIMIT:
+        return scene
+    for name in [c for c in ("lat", "lon") if c in ds.coords]:
+        v = ds[name]
+        if v.dtype != np.float64:
+            continue
+        narrow = v.values.astype(np.float32)
+        if np.array_equal(narrow.astype(np.float64), v.values, equal_nan=True):
+            ds.coords[name] = (v.dims, narrow, v.attrs)
+    return scene
+
+
+def _median_over(values, valid):
+    """Median of a (y, x) threshold over valid pixels, as a 0-d array (lean mode)."""
+    v = np.broadcast_to(np.asarray(values, float), valid.shape)[valid]
+    return np.asarray(np.nanmedian(v) if v.size and np.isfinite(v).any() else np.nan)
+
+
+def _num(v):
+    v = float(v)
+    return v if np.isfinite(v) else None

@@ -1,0 +1,333 @@
+"""Clear-sky simulation of scene pixels: the one column loop every path uses.
+
+:func:`simulate_columns` turns the background of a set of pixels (1-D over pixels) into
+clear-sky brightness temperatures, radiances and, on request, the per-level data the cloud
+inversion needs; it runs :func:`physics.clearsky.simulate_channel_major` over chunks of
+``[simulation] chunk_pixels`` columns, on threads when asked. :func:`gather_columns` takes those
+inputs from the (y, x) fields of a whole grid or of a block of rows, so that the dashboard's
+whole-scene :func:`simulate`, the per-pixel :class:`ColumnSimulator` and the block pipeline
+(:mod:`cloudsieve.batch`) share the same arithmetic and give the same bits.
+"""
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+import time
+
+import numpy as np
+
+from physics.absorption import channel_coefficients
+from physics.atmosphere import profile_levels_first
+from physics.channels import default_channels
+from physics.clearsky import simulate_channel_major
+
+from .codes import per_surface
+from .config import absorption_table
+
+#: Above this many valid pixels the dashboard's simulation keeps no per-level data (≈ 0.8 kB
+#: per pixel); the cloud inversion and the pixel inspector then simulate the columns they need.
+LEVELS_PIXEL_LIMIT = 2_000_000
+#: Surface pressure where a scene leaves it missing [hPa]
+DEFAULT_SURFACE_PRESSURE = 1013.25
+PROFILE_FIELDS = ("pressure", "temperature", "q")
+
+
+def scene_channels(config, names):
+    """physics Channel objects for ``names`` (defaults overridden by the config's [channels])."""
+    overrides = {k: (v["centre"], v["width"]) for k, v in config.get("channels", {}).items()}
+    chans = default_channels(overrides)
+    return tuple(chans[n] for n in names)
+
+
+@dataclass(frozen=True)
+class ChannelSet:
+    """The scene's channels with their absorption coefficients (built once per scene).
+
+    names : channel names in scene order
+    channels : physics Channel per name
+    coefficients : channel-effective absorption coefficients (physics.absorption)
+    """
+
+    names: tuple
+    channels: tuple
+    coefficients: object
+
+    @classmethod
+    def for_scene(cls, names, config):
+        chans = scene_channels(config, tuple(names))
+        return cls(tuple(names), chans, channel_coefficients(chans, absorption_table(config)))
+
+
+def surface_emissivity(fields, channels, config):
+    """(n_ch, y, x) emissivity: ``emis_<ch>`` where the scene gives it, else the surface default.
+
+    ``fields`` is a mapping of (y, x) arrays holding ``surface`` and any ``emis_<ch>``.
+    """
+    codes = fields["surface"]
+    table = config["surface"]["emissivity"]
+    out = []
+    for ch in channels:
+        default = {s: table[s].get(ch, table[s].get("11um", 0.98)) for s in ("sea", "land", "ice")}
+        e = per_surface(default, codes)
+        given = fields.get(f"emis_{ch}")
+        if given is not None:
+            e = np.where(np.isfinite(given), given, e)
+        out.append(e)
+    return np.stack(out)
+
+
+def slant_path(tcwv, sat_zenith):
+    """Water-vapour slant path W·sec θ, float32 [kg m⁻²] from tcwv [kg m⁻²] and θ [deg]."""
+    return (np.asarray(tcwv) / np.cos(np.deg2rad(np.asarray(sat_zenith)))).astype(np.float32)
+
+
+@dataclass
+class Columns:
+    """Inputs of a set of pixel columns (float32, pixels along the last axis).
+
+    t_air [K], tcwv [kg m⁻²], p_surf [hPa], t_skin [K], sat_zenith [deg] : (n,)
+    emissivity : (n_ch, n) [1]
+    profiles : None, or explicit (pressure [hPa], temperature [K], q [kg kg⁻¹]), each (n_lev, n)
+    """
+
+    t_air: np.ndarray
+    tcwv: np.ndarray
+    p_surf: np.ndarray
+    t_skin: np.ndarray
+    sat_zenith: np.ndarray
+    emissivity: np.ndarray
+    profiles: tuple = None
+
+    @property
+    def size(self):
+        return self.t_air.size
+
+
+def gather_columns(fields, emissivity, flat_index):
+    """The :class:`Columns` of pixels ``flat_index`` of a grid (or block) of fields.
+
+    Parameters
+    ----------
+    fields : mapping of arrays
+        (y, x) ``t_air``, ``tcwv``, ``p_surf``, ``t_skin``, ``sat_zenith``; optional
+        ``profile_pressure``, ``profile_temperature``, ``profile_q`` on (y, x, level).
+    emissivity : (n_ch, y, x) array [1]
+    flat_index : (n,) int
+        Flat indices into the (y, x) grid.
+    """
+    f32 = np.float32
+
+    def take(name):
+        return np.asarray(fields[name]).ravel()[flat_index].astype(f32)
+
+    p_surf = take("p_surf")
+    profiles = None
+    if all(f"profile_{k}" in fields for k in PROFILE_FIELDS):
+        n_pix = np.asarray(fields["t_air"]).size
+        profiles = tuple(np.ascontiguousarray(np.asarray(fields[f"profile_{k}"]).reshape(n_pix, -1)[flat_index]
+                                              .astype(f32).T) for k in PROFILE_FIELDS)
+    emis = np.asarray(emissivity).reshape(emissivity.shape[0], -1)[:, flat_index].astype(f32)
+    return Columns(take("t_air"), take("tcwv"), np.where(np.isfinite(p_surf), p_surf, f32(DEFAULT_SURFACE_PRESSURE)),
+                   take("t_skin"), take("sat_zenith"), emis, profiles)
+
+
+@dataclass
+class ColumnResult:
+    """Clear-sky results of a set of columns (float32).
+
+    brightness_temperature [K], radiance [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹] : (n_ch, n)
+    level_pressure [hPa], level_temperature [K] : (n, n_levels), or None without levels
+    opaque_radiance : (n, n_levels, n_ch) radiance of an opaque surface at each level seen
+        from space [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹], or None without levels
+    """
+
+    brightness_temperature: np.ndarray
+    radiance: np.ndarray
+    level_pressure: np.ndarray = None
+    level_temperature: np.ndarray = None
+    opaque_radiance: np.ndarray = None
+
+
+def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=None):
+    """Simulate pixel columns chunk by chunk (the one column loop of cloudsieve).
+
+    Parameters
+    ----------
+    cols : Columns
+    chset : ChannelSet
+    sim_cfg : mapping
+        The ``[simulation]`` table: ``levels``, ``top_pressure`` [hPa], ``chunk_pixels``.
+    levels : bool
+        Also return the per-level data the cloud inversion needs.
+    threads : int
+        Chunks run on this many threads (each writes its own columns of the outputs).
+    progress : callable(n_done, n_total), optional
+
+    Returns
+    -------
+    ColumnResult
+    """
+    f32 = np.float32
+    n = cols.size
+    n_ch = len(chset.names)
+    n_lev = cols.profiles[0].shape[0] if cols.profiles is not None else int(sim_cfg["levels"])
+    out = ColumnResult(np.empty((n_ch, n), f32), np.empty((n_ch, n), f32))
+    if levels:
+        out.level_pressure = np.empty((n, n_lev), f32)
+        out.level_temperature = np.empty((n, n_lev), f32)
+        out.opaque_radiance = np.empty((n, n_lev, n_ch), f32)
+    chunk = int(sim_cfg["chunk_pixels"])
+
+    def run(start):
+        sl = slice(start, min(start + chunk, n))
+        if cols.profiles is not None:
+            p, t, q = (np.ascontiguousarray(a[:, sl]) for a in cols.profiles)
+        else:
+            p, t, q = profile_levels_first(cols.t_air[sl], cols.tcwv[sl], cols.p_surf[sl], n_lev,
+                                           sim_cfg["top_pressure"], dtype=f32)
+        r = simulate_channel_major(p, t, q, cols.t_skin[sl], np.ascontiguousarray(cols.emissivity[:, sl]),
+                                   cols.sat_zenith[sl], chset.channels, chset.coefficients, levels=levels)
+        out.radiance[:, sl] = r.radiance
+        out.brightness_temperature[:, sl] = r.brightness_temperature
+        if levels:
+            out.level_pressure[sl] = p.T
+            out.level_temperature[sl] = t.T
+            out.opaque_radiance[sl] = r.opaque_radiance.transpose(2, 1, 0)
+        return sl.stop - sl.start
+
+    starts = range(0, n, chunk)
+    done = 0
+    if threads <= 1 or len(starts) < 2:
+        for s in starts:
+            done += run(s)
+            if progress:
+                progress(done, n)
+    else:
+        with ThreadPoolExecutor(threads) as pool:
+            for k in pool.map(run, starts):
+                done += k
+                if progress:
+                    progress(done, n)
+    return out
+
+
+def user_clear_sky(fields, names, flat_index):
+    """The scene's own clear-sky brightness temperatures (``bt_clear_<ch>``) at ``flat_index``.
+
+    Returns dict channel -> (n,) float32 [K] with NaN where the scene gives none (channels
+    without a ``bt_clear_<ch>`` field are left out).
+    """
+    return {ch: np.asarray(fields[f"bt_clear_{ch}"]).ravel()[flat_index].astype(np.float32)
+            for ch in names if f"bt_clear_{ch}" in fields}
+
+
+def clear_sky_source(given, names):
+    """Per channel: "simulated", "user" (every valid pixel given) or "user+simulated".
+
+    ``given`` : channel -> (valid pixels with a ``bt_clear_<ch>`` value, valid pixels).
+    """
+    out = {}
+    for ch in names:
+        n_given, n_valid = given.get(ch, (0, 0))
+        out[ch] = "user" if n_given and n_given == n_valid else ("user+simulated" if n_given else "simulated")
+    return out
+
+
+@dataclass
+class Simulation:
+    """Clear-sky simulation of a whole scene (the dashboard's stage 1).
+
+    channels : names of the scene's channels, in order
+    bt_clear : (n_ch, y, x) float32 clear-sky brightness temperature [K] (NaN at no_data)
+    source : per channel, "simulated", "user" or "user+simulated" (``bt_clear_<ch>`` given)
+    slant_path : (y, x) float32 water-vapour slant path W·sec θ [kg m⁻²]
+    valid_index : (n_valid,) flat indices of the valid pixels
+    level_pressure, level_temperature : (n_valid, n_levels) float32 [hPa], [K], or None
+    opaque_radiance : (n_valid, n_levels, n_ch) float32 [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹], or None
+    clear_radiance : (n_valid, n_ch) float32 [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹]
+    chset : the scene's ChannelSet
+    seconds : wall time of the simulation [s]
+    """
+
+    channels: tuple
+    bt_clear: np.ndarray
+    source: dict
+    slant_path: np.ndarray
+    valid_index: np.ndarray
+    level_pressure: np.ndarray
+    level_temperature: np.ndarray
+    opaque_radiance: np.ndarray
+    clear_radiance: np.ndarray
+    chset: ChannelSet
+    seconds: float = 0.0
+
+    @property
+    def channel_objects(self):
+        return self.chset.channels
+
+
+def scene_fields(ds):
+    """The (y, x) (and profile) arrays of an in-memory scene Dataset, by name."""
+    return {name: var.values for name, var in ds.data_vars.items()}
+
+
+def simulate(scene, config, progress=None, levels=None):
+    """Clear-sky brightness temperatures (and inversion inputs) of every valid pixel of a scene.
+
+    Parameters
+    ----------
+    scene : cloudsieve.scene.Scene (in memory)
+    config : dict
+    progress : callable(n_done, n_total), optional
+    levels : bool, optional
+        Keep the per-level arrays for the cloud inversion; by default only for scenes of up
+        to ``LEVELS_PIXEL_LIMIT`` valid pixels.
+
+    Returns
+    -------
+    Simulation
+    """
+    t0 = time.perf_counter()
+    ds = scene.data
+    fields = scene_fields(ds)
+    names = tuple(scene.channels)
+    chset = ChannelSet.for_scene(names, config)
+    ny, nx = ds.sizes["y"], ds.sizes["x"]
+    idx = np.flatnonzero(fields["valid"].ravel())
+    if levels is None:
+        levels = idx.size <= LEVELS_PIXEL_LIMIT
+    emis = surface_emissivity(fields, names, config)
+    cols = gather_columns(fields, emis, idx)
+    res = simulate_columns(cols, chset, config["simulation"], levels=levels,
+                           threads=max(1, int(config["simulation"].get("threads", 1))), progress=progress)
+    bt, rad = res.brightness_temperature, res.radiance
+    user = user_clear_sky(fields, names, idx)
+    bt_full = np.full((len(names), ny * nx), np.nan, np.float32)
+    for i, ch in enumerate(names):
+        if ch in user:
+            use = np.isfinite(user[ch])
+            bt[i] = np.where(use, user[ch], bt[i])
+            rad[i] = np.where(use, chset.channels[i].radiance(user[ch]), rad[i])
+        bt_full[i, idx] = bt[i]
+    given = {c: (int(np.isfinite(u).sum()), u.size) for c, u in user.items()}
+    return Simulation(names, bt_full.reshape(len(names), ny, nx), clear_sky_source(given, names),
+                      slant_path(fields["tcwv"], fields["sat_zenith"]), idx, res.level_pressure,
+                      res.level_temperature, res.opaque_radiance, rad.T.copy(), chset, time.perf_counter() - t0)
+
+
+class ColumnSimulator:
+    """Per-level data of chosen pixels of an in-memory scene, simulated on demand.
+
+    Used where the level data of every pixel would not fit in memory (large scenes in the
+    dashboard): the cloud inversion and the pixel inspector simulate just the columns they
+    need, with the same column loop as :func:`simulate`, so the values are the same.
+    """
+
+    def __init__(self, scene, config):
+        self.fields = scene_fields(scene.data)
+        self.chset = ChannelSet.for_scene(tuple(scene.channels), config)
+        self.sim_cfg = config["simulation"]
+        self.emis = surface_emissivity(self.fields, self.chset.names, config)
+
+    def levels(self, idx):
+        """(level pressure, level temperature, opaque radiance) of flat pixel indices ``idx``."""
+        r = simulate_columns(gather_columns(self.fields, self.emis, idx), self.chset, self.sim_cfg, levels=True)
+        return r.level_pressure, r.level_temperature, r.opaque_radiance
