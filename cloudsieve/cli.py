@@ -11,10 +11,8 @@ Exit codes (documented in the README and in ``cloudsieve --help``):
 """
 import argparse
 import glob
-import json
 import os
 import sys
-import time
 from pathlib import Path
 
 from . import CAUTION, __version__

@@ -3,7 +3,6 @@ fix — never a traceback — and no output file is created or overwritten.
 
 The README's "Bad inputs" table lists these cases; keep the two in step.
 """
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -34,6 +33,18 @@ def _mutate(fn):
         out = fn(df)
         (df if out is None else out).to_csv(path, index=False)
     return make
+
+
+def _parquet(fn):
+    def make(path):
+        df = _table()
+        out = fn(df)
+        (df if out is None else out).to_parquet(path, index=False)
+    return make
+
+
+def _half_celsius(d):
+    d.loc[d.index[: len(d) * 3 // 5], "bt_11um"] -= 273.15  # part of a column in °C: median and mean disagree
 
 
 def _bytes(data):
@@ -106,6 +117,10 @@ CASES = [
     ("duplicate column names", "s.csv", _dup_header, 2, ["more than once"]),
     ("channel column all empty", "s.csv", _mutate(lambda d: d.__setitem__("bt_12um", np.nan)), 2,
      ["bt_12um", "no valid values"]),
+    ("Parquet unknown surface type", "s.parquet", _parquet(lambda d: d.__setitem__("surface", "desert")), 2,
+     ["desert", "sea, land or ice"]),
+    ("part of a channel in °C", "s.csv", _mutate(_half_celsius), 2, ["bt_11um", "°C"]),
+    ("Parquet part of a channel in °C", "s.parquet", _parquet(_half_celsius), 2, ["bt_11um", "°C"]),
     ("missing scene file", "absent.csv", None, 2, ["does not exist"]),
     ("scene path is a folder", "folder.csv", lambda p: p.mkdir(), 2, ["folder"]),
 ]
@@ -132,6 +147,10 @@ def test_bad_scene(tmp_path, case, capsys):
         assert w in stderr, (w, stderr)
     assert out.read_bytes() == b"previous result"  # nothing overwritten
     assert sorted(p.name for p in tmp_path.iterdir() if p.name.startswith(".")) == []  # no temporaries left
+    # the lazy path (blocks of 8 rows) reads and checks with the same code: same exit, same words
+    lazy = _run(["screen", scene, "--out", out, "--chunks", "8"], capsys)
+    assert lazy == (got, stdout, stderr)
+    assert out.read_bytes() == b"previous result"
     got, stdout, stderr = _run(["check", scene], capsys)
     assert got == code
     assert any(w in stdout + stderr for w in words)

@@ -1,11 +1,9 @@
 """The cloudsieve command line: commands, outputs, exit codes, no tracebacks."""
-import os
 import subprocess
 import sys
 from pathlib import Path
 
 import pandas as pd
-import pytest
 import xarray as xr
 
 from cloudsieve.cli import main

@@ -96,7 +96,6 @@ def test_missing_output_folder(tmp_path, result):
 def test_outputs_get_the_usual_file_mode_not_the_temporary_ones(tmp_path):
     # mkstemp makes private 0600 files; a result must be readable as any new file would be
     # (0666 less the umask, POSIX), and a replaced file keeps its mode
-    import os
     import stat
 
     from cloudsieve.export import atomic_write

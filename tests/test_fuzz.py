@@ -1,11 +1,8 @@
 """Property-based tests (hypothesis) of the scene loaders and the configuration parser: no
 input makes them fail with anything but our own error type carrying a message."""
-import tomllib
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
-import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 

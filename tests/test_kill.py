@@ -5,7 +5,6 @@
 * The QA-edit journal keeps every edit that was acknowledged before the kill (append with
   fsync); a torn last line is detected, reported and left out on the next start.
 """
-import json
 import os
 import random
 import signal

@@ -181,3 +181,31 @@ def test_inspector_curve_without_stored_levels(cfg):
     a, b = full.optical_depth_curve(60, 70), lean.optical_depth_curve(60, 70)
     assert a["top_pressure"] == b["top_pressure"]
     np.testing.assert_array_equal(a["model"]["11um"], b["model"]["11um"])
+
+
+def test_a_channel_defined_in_the_config_is_read_simulated_and_written(tmp_path):
+    """DEVELOPERS.md 'Add a channel': a centre and width in [channels] are enough. A 10.4 µm
+    window channel (961 cm⁻¹) gets a plausible clear-sky value (0–12 K below the skin, common
+    practice for a window channel) and reaches the output; without the config it is refused."""
+    import xarray as xr
+
+    from cloudsieve import batch
+    from cloudsieve.config import merge_config
+
+    cfg = merge_config({"channels": {"10p4um": {"centre": 961.0, "width": 50.0}},
+                        "surface": {"emissivity": {"sea": {"10p4um": 0.99}}}})
+    df = pd.read_csv(SMALL)
+    df["bt_10p4um"] = df["bt_11um"] + 0.3
+    path = tmp_path / "with_10p4.csv"
+    df.to_csv(path, index=False)
+    scene = load_scene(path, config=cfg)
+    assert "10p4um" in scene.channels
+    sim = simulate(scene, cfg)
+    bt = sim.bt_clear[sim.channels.index("10p4um")]
+    diff = scene.data["t_skin"].values - bt
+    assert np.all((diff > 0) & (diff < 12))
+    batch.screen_file(path, tmp_path / "m.nc", cfg)
+    with xr.open_dataset(tmp_path / "m.nc") as out:
+        assert {"bt_clear_10p4um", "departure_10p4um"} <= set(out.data_vars)
+    with pytest.raises(Exception, match="unknown channel '10p4um'"):
+        load_scene(path, config=load_config())

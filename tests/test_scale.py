@@ -132,3 +132,18 @@ def test_lazy_batch_netcdf_passes_cf_checker(tmp_path):
     cf = next(iter(json.loads(proc.stdout).values()))
     bad = [m for m in cf["high_priorities"] + cf["medium_priorities"] if m["value"][0] != m["value"][1]]
     assert not bad, bad
+
+
+def test_cloud_top_height_works_on_both_paths(tmp_path):
+    """``[cloud] top_height`` (km above the surface) places the fixed top on the session's
+    path and the batch path alike, at pressures that follow each pixel's own profile."""
+    cfg = merge_config({"cloud": {"top": "fixed", "top_height": 5.0}})
+    path = SAMPLES / "polar_ice.nc"
+    mem = Session.open(path, cfg, journal=False).result_dataset()
+    top = mem["cloud_top_pressure"].values
+    ok = np.isfinite(top)
+    assert ok.any()
+    # 5 km above the surface: well below 1013 hPa, above 400 hPa, and not one fixed number
+    assert 400 < np.nanmin(top) and np.nanmax(top) < 650 and np.nanstd(top) > 0.1
+    batch.screen_file(path, tmp_path / "b.nc", cfg, chunk_rows=64)
+    _compare(mem, xr.open_dataset(tmp_path / "b.nc"))

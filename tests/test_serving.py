@@ -12,7 +12,6 @@ from http.cookiejar import CookieJar
 from pathlib import Path
 
 import psutil
-import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 EXE = Path(sys.executable).with_name("cloudsieve")
