@@ -32,9 +32,6 @@ class JournalError(CloudsieveError):
     exit_code = 2
 
 
-_ANY = object()
-
-
 class StaleEditsError(JournalError):
     """The journal changed under a caller acting on an older view of it."""
 
@@ -125,20 +122,19 @@ class Journal:
             self._append(entry)
         return entry
 
-    def undo(self, expected=_ANY):
+    def undo(self, check_latest=False, latest=None):
         """Cancel the latest edit that is still active; returns it (or None).
 
-        ``expected``: the id of the latest active edit as the caller last showed it (None:
-        no edits). When another writer (a second dashboard session on the same scene) has
-        changed the edits since, nothing is undone and :class:`StaleEditsError` says so — an
-        undo never cancels an edit its user has not seen. Omitted: no check.
+        With ``check_latest``, ``latest`` is the id of the latest active edit as the caller
+        last showed it (None: no edits). When another writer (a second dashboard session on the
+        same scene) has changed the edits since, nothing is undone and :class:`StaleEditsError`
+        says so — an undo never cancels an edit its user has not seen.
         """
         with self._lock:
             self._refresh()
             active = self.active()
-            if expected is not _ANY:
-                latest = active[-1]["id"] if active else None
-                if expected != latest:
+            if check_latest:
+                if latest != (active[-1]["id"] if active else None):
                     raise StaleEditsError(
                         "the edits of this scene were changed in another session (or by the command line) "
                         "since this page showed them; the page now shows them — press Undo again to undo "

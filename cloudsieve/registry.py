@@ -121,6 +121,8 @@ class ScreeningTest:
     long_name : CF long_name of the margin variable
     tunable : the threshold the dashboard's slider moves
     margin : function (ScreeningInputs, config table) -> Margin
+    fires_when, why : the test's condition and its physical reason, for the README table
+        (:func:`markdown_table`)
     requires : function (SceneFacts) -> None, or the reason the test cannot run on the scene
     defaults : the config table used when the configuration has none for this test
     """
@@ -134,6 +136,8 @@ class ScreeningTest:
     long_name: str
     tunable: Tunable
     margin: Callable
+    fires_when: str = ""
+    why: str = ""
     requires: Callable = None
     defaults: dict = field(default_factory=dict)
 
@@ -167,6 +171,19 @@ def unregister(name):
 def registered(kind=None):
     """Names of the registered tests (of one kind: "cloud" or "flag")."""
     return tuple(n for n, t in REGISTRY.items() if kind is None or t.kind == kind)
+
+
+def markdown_table():
+    """The README's table of screening tests, generated from the registry.
+
+    ``python -m cloudsieve.registry`` prints it; a test keeps the README's copy in step.
+    """
+    bits = bit_table()
+    lines = ["| test | bit | kind | fires when | why | tuned threshold |", "| --- | --- | --- | --- | --- | --- |"]
+    for name, t in REGISTRY.items():
+        lines.append(f"| `{name}` | {bits[name]} | {'cloud' if t.makes_cloud else 'flag'} | {t.fires_when} | {t.why} "
+                     f"| `{t.tunable.key}` [{t.tunable.unit}] |")
+    return "\n".join(lines)
 
 
 def bit_table():
@@ -257,28 +274,45 @@ register(ScreeningTest(
     help="Window channel colder than clear sky by more than k times the expected clear-sky error σ. "
          "Threshold: k [× σ].",
     long_name="cold departure of the window channel beyond its expected clear-sky uncertainty",
-    tunable=Tunable("k_sigma", "× σ", (0.0, 10.0), 0.1), margin=_cold_departure, requires=_needs_window))
+    tunable=Tunable("k_sigma", "× σ", (0.0, 10.0), 0.1), margin=_cold_departure, requires=_needs_window,
+    fires_when="11 µm observed − clear < −k·σ, σ = √(base² + (c·W·secθ)²)",
+    why="clouds are colder than the surface they hide; σ grows with water-vapour path and view angle"))
 register(ScreeningTest(
     "split_window_excess", bit=1, kind="cloud", channels=("11um", "12um"), label="Split-window excess",
     help="11 − 12 µm difference above its clear-sky value: thin ice cloud widens it. "
          "Threshold [K] (grows with slant water-vapour path).",
     long_name="11-12 um difference above the simulated clear-sky difference",
-    tunable=Tunable("threshold", "K"), margin=_split_window_excess))
+    tunable=Tunable("threshold", "K"), margin=_split_window_excess,
+    fires_when="(T11 − T12)obs − (T11 − T12)clear > threshold + c·W·secθ",
+    why="thin ice cloud absorbs more at 12 µm than at 11 µm"))
 register(ScreeningTest(
     "texture", bit=2, kind="cloud", channels=(), label="Texture",
     help="Rough window-channel departure in a small window, with the pixel colder than its "
          "warmest neighbour. Threshold on the local standard deviation [K].",
     long_name="local standard deviation of the window-channel departure",
-    tunable=Tunable("threshold", "K"), margin=_texture, requires=_needs_window))
+    tunable=Tunable("threshold", "K"), margin=_texture, requires=_needs_window,
+    fires_when="local std of the 11 µm departure > threshold, and the pixel is colder than its window's warmest "
+               "pixel by 2× threshold",
+    why="broken cloud and cloud edges are rough; clear pixels bordering a cloud are the warm ones"))
 register(ScreeningTest(
     "night_fog_contrast", bit=3, kind="cloud", channels=("3p9um", "11um"), label="Night fog contrast",
     help="Night only: 3.9 µm colder than 11 µm relative to clear sky, the mark of water droplets "
          "(fog, low cloud). Threshold [K].",
     long_name="night-time 3.9-11 um difference below the clear-sky difference",
-    tunable=Tunable("threshold", "K"), margin=_night_fog_contrast, requires=_needs_night))
+    tunable=Tunable("threshold", "K"), margin=_night_fog_contrast, requires=_needs_night,
+    fires_when="at night, where the 11 µm departure is within `max_cold_11um` of clear: (T3.9 − T11)obs − clear "
+               "< −(threshold + c·W·secθ)",
+    why="water droplets emit less at 3.9 µm than at 11 µm: fog and low water cloud (tops near the surface "
+        "temperature)"))
 register(ScreeningTest(
     "warm_departure", bit=4, kind="flag", channels=(), label="Warm departure",
     help="Window channel warmer than clear sky: the background is suspect. Flags the pixel (not "
          "cloud) and keeps it out of the bias fit. Threshold [K].",
     long_name="window channel warmer than clear sky (background suspect)",
-    tunable=Tunable("threshold", "K"), margin=_warm_departure, requires=_needs_window))
+    tunable=Tunable("threshold", "K"), margin=_warm_departure, requires=_needs_window,
+    fires_when="11 µm observed − clear > threshold",
+    why="not cloud: the background is suspect; flagged and left out of the bias fit"))
+
+
+if __name__ == "__main__":
+    print(markdown_table())

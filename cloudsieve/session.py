@@ -200,7 +200,7 @@ class Session:
         changed the scene's edits meanwhile, rescreen with them and raise StaleEditsError
         (nothing undone)."""
         try:
-            entry = self._journal_or_fail().undo(expected=self._shown_latest_edit)
+            entry = self._journal_or_fail().undo(check_latest=True, latest=self._shown_latest_edit)
         except StaleEditsError:
             self.update()
             raise

@@ -114,3 +114,11 @@ def test_a_new_test_gets_a_slider_in_the_dashboard(toy):
     assert slider.end == 30.0 and slider.value == 1.0
     model.set_threshold("twelve_cold", 300.0)
     assert not (model.result.margins["twelve_cold"] > 0).any()
+
+
+def test_the_readme_table_of_tests_is_the_registry():
+    """The README's table of screening tests is generated from the registry (kept in step)."""
+    from cloudsieve.registry import markdown_table
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    assert markdown_table() in readme, "regenerate the table with `python -m cloudsieve.registry`"
