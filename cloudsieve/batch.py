@@ -18,7 +18,7 @@ pass keeps each block's clear sky (4 bytes × channels per pixel) and the fit's 
 second screens with the fit and inverts.
 """
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 import time
 from pathlib import Path
 
@@ -271,7 +271,9 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
         {c: {"a": float("nan"), "b": float("nan"), "n": 0, "rms": float("nan"), "applied": False} for c in names},
         list(tests.notes) + inversion_notes(inv, config), dict(tests.skipped), config, len(edits or []), "screen", ds["row"].values, ds["col"].values,
         np.asarray(ds["lat"].values) if has_latlon else None, np.asarray(ds["lon"].values) if has_latlon else None)
-    plan = ScenePlan(chset, config, tests, inv, None, None, header, fmt, rows)
+    # the plan travels with every task: no per-pixel coordinates in it
+    plan = ScenePlan(chset, config, tests, inv, None, None, replace(header, row=None, col=None, lat=None, lon=None),
+                     fmt, rows)
     clear = None
     if config["bias"]["remove"]:  # first pass: the clear sky and the fit's sums
         clear = np.full((len(names), ny, nx), np.nan, np.float32)
@@ -283,7 +285,9 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
         applied, note = bias_decision(header.bias, config)
         header.notes += [note] if note else []
         plan.bias = header.bias if applied else None
-    plan.layout = export.result_layout(header)
+        plan.header = replace(plan.header, bias=header.bias, notes=header.notes)
+    layout = export.result_layout(header)
+    plan.layout = replace(layout, coords={})
     sums = {}
     done = [0]
 
@@ -308,7 +312,7 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
                 b["applied"] = False
         return export.result_attrs(header)
 
-    _, counts = export.write_blocks(plan.layout, encoded(), out_path, fmt, rows, on_block, final_attrs)
+    _, counts = export.write_blocks(layout, encoded(), out_path, fmt, rows, on_block, final_attrs)
     fractions = {name: counts[k] / max(counts.sum(), 1) for k, name in enumerate(CLASS_NAMES)}
     return summary_row(scene.name, ny * nx, fractions, header.bias, header.skipped, header.notes)
 

@@ -190,9 +190,9 @@ class Session:
                               f"cloudsieve {__version__} · {CAUTION}</div>", sizing_mode="stretch_width",
                               css_classes=["cs-footer"])
         # the caution also sits on the first screen, not only at the foot of the sidebar
-        banner = pn.pane.HTML(f"<div class='cs-caution'><b>Not a certified operational product.</b> For "
-                              f"fog, aviation and other hazards defer to official services and local "
-                              f"practice.</div>", sizing_mode="stretch_width", margin=(0, 10, 4, 10),
+        banner = pn.pane.HTML("<div class='cs-caution'><b>Not a certified operational product.</b> For "
+                              "fog, aviation and other hazards defer to official services and local "
+                              "practice.</div>", sizing_mode="stretch_width", margin=(0, 10, 4, 10),
                               css_classes=["cs-caution-banner"],
                               stylesheets=[".cs-caution { font-size: 0.9em; color: #5b4a1f; background: #fbf4e4; "
                                            "border-left: 3px solid #eaa221; padding: 5px 10px; border-radius: 3px; }"])
