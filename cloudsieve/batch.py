@@ -26,13 +26,13 @@ import numpy as np
 
 from . import export
 from .codes import CLASS_NAMES, CLEAR, NO_DATA
-from .invert import CloudLayer, inversion_channels, inversion_notes, invert_pixels
+from .invert import CloudLayer, inversion_channels, invert_pixels
 from .journal import Journal, journal_path
 from .scene import load_scene
-from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, night_mask, plan_tests, screen_arrays,
+from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, result_notes, scene_plan, screen_arrays,
                      summary_row)
-from .simulate import (ChannelSet, clear_sky_source, gather_columns, simulate_columns, slant_path, surface_emissivity,
-                       user_clear_sky)
+from .simulate import (ChannelSet, clear_sky_source, gather_columns, level_chunk, simulate_columns, slant_path,
+                       surface_emissivity, use_scene_clear_sky)
 
 DEFAULT_CHUNK_ROWS = export.CHUNK_ROWS
 #: Above this many pixels a NetCDF or Parquet scene is screened lazily (``cloudsieve screen``)
@@ -55,34 +55,42 @@ def block_specs(ny, rows, halo):
     return [BlockSpec(a, min(a + rows, ny), max(a - halo, 0), min(a + rows + halo, ny)) for a in range(0, ny, rows)]
 
 
-@dataclass
-class ScenePlan:
-    """What every block of one scene needs besides its own rows (small, sent with each task).
+@dataclass(frozen=True)
+class BlockPlan:
+    """What every block of one scene needs besides its own rows (small: it travels with each task).
 
-    chset : simulate.ChannelSet; config : dict; tests : screen.TestPlan; inv : inversion channels;
-    bias : channel -> {"a", "b"} to remove, or None; has_edits : an edit grid comes with each block;
-    layout : export.Layout; header : export.ResultHeader; fmt : "netcdf" or "csv"; chunk_rows : int
+    chset : simulate.ChannelSet; config : dict; tests : screen.ScreeningPlan of the whole scene;
+    inv : inversion channels; fmt : "netcdf" or "csv"; chunk_rows : rows per NetCDF chunk;
+    bias : channel -> {"a", "b"} to remove, or None; header : export.ResultHeader without
+    per-pixel coordinates, and layout : export.Layout without coordinates (the final pass only:
+    the first pass of the bias removal writes nothing)
     """
 
     chset: ChannelSet
     config: dict
     tests: object
     inv: tuple
-    bias: dict
-    layout: object
-    header: object
     fmt: str
     chunk_rows: int
+    bias: dict = None
+    header: object = None
+    layout: object = None
 
 
 @dataclass
 class BlockOutcome:
-    """What :func:`process_block` returns: the encoded output block (or None in the bias pass),
-    the bias-fit sums of its core rows, and its core rows' clear sky (bias pass only)."""
+    """What :func:`process_block` returns for core rows start:stop: the bias-fit sums of the rows,
+    the encoded output block (final pass), and the rows' clear sky (first pass of the bias
+    removal only)."""
 
-    encoded: object
+    start: int
+    stop: int
     sums: dict
+    encoded: object = None
     clear: np.ndarray = None
+
+
+_ALLOCATOR_TUNED = False
 
 
 def _tune_allocator():
@@ -95,9 +103,10 @@ def _tune_allocator():
     16 MiB come from the heap, and at most 64 MiB of free heap top is kept before it is
     returned to the system. A no-op where the C library is not glibc.
     """
-    if getattr(_tune_allocator, "done", False):
+    global _ALLOCATOR_TUNED
+    if _ALLOCATOR_TUNED:
         return
-    _tune_allocator.done = True
+    _ALLOCATOR_TUNED = True
     try:
         import ctypes
 
@@ -117,7 +126,7 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     fields : mapping name -> array of rows lo:hi
         The scene's (y, x) variables (``valid``, ``surface``, ``bt_<ch>``, background, …).
     spec : BlockSpec
-    plan : ScenePlan
+    plan : BlockPlan
     edits : (hi − lo, x) int8, optional
         QA edit codes of the rows.
     clear : (n_ch, hi − lo, x) float32, optional
@@ -139,33 +148,28 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     emis = surface_emissivity(fields, names, cfg)
     if clear is None:
         idx = np.flatnonzero(valid.ravel())
-        bt = simulate_columns(gather_columns(fields, emis, idx), chset, cfg["simulation"]).brightness_temperature
+        res = simulate_columns(gather_columns(fields, emis, idx), chset, cfg["simulation"])
+        use_scene_clear_sky(res, fields, chset, idx)
         clear = np.full((len(names),) + valid.shape, np.nan, np.float32)
-        flat = clear.reshape(len(names), -1)
-        flat[:, idx] = bt
-        for ch, given in user_clear_sky(fields, names, idx).items():
-            use = np.isfinite(given)
-            flat[names.index(ch), idx[use]] = given[use]
+        clear.reshape(len(names), -1)[:, idx] = res.brightness_temperature
     path = slant_path(fields["tcwv"], fields["sat_zenith"])
     obs = {c: fields[f"bt_{c}"] for c in names}
     screen_fields = {"surface": fields["surface"], "valid": valid, "sol_zenith": fields["sol_zenith"],
                      "slant_path": path}
-    facts = plan.tests.facts
     scr = screen_arrays(obs, {c: clear[i] for i, c in enumerate(names)}, screen_fields, cfg, plan.bias, edits,
-                        facts.night_any, facts.day_any)
+                        plan.tests)
     core = slice(spec.start - spec.lo, spec.stop - spec.lo)
     mask, bits = scr.mask[core], scr.bits[core]
     departure = {c: d[core] for c, d in scr.departure.items()}
     sums = bias_sums(departure, path[core], mask, bits, valid[core])
     if not final:
-        return BlockOutcome(None, sums, clear[:, core])
+        return BlockOutcome(spec.start, spec.stop, sums, clear=clear[:, core])
     cloud = CloudLayer.empty(mask.shape, plan.inv, cfg["cloud"]["top"])
     core_fields = {k: v[core] for k, v in fields.items()}
     todo = np.flatnonzero((valid[core] & (mask != CLEAR) & (mask != NO_DATA)).ravel())
-    step = max(1024, int(cfg["simulation"]["chunk_pixels"]) * 16)  # level data for this many columns at once
     bias_line = {c: (b["a"], b["b"]) for c, b in plan.bias.items()} if plan.bias else None
-    for a in range(0, todo.size, step):
-        part = todo[a:a + step]
+    for a in range(0, todo.size, level_chunk(cfg)):
+        part = todo[a:a + level_chunk(cfg)]
         r = simulate_columns(gather_columns(core_fields, emis[:, core], part), chset, cfg["simulation"], levels=True)
         invert_pixels(cloud, part, {c: v[core] for c, v in obs.items()}, {c: clear[i, core] for i, c in enumerate(names)},
                       (r.level_pressure, r.level_temperature, r.opaque_radiance), fields["sat_zenith"][core],
@@ -173,7 +177,8 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     result = export.ResultBlock(spec.start, clear[:, core], departure, {t: m[core] for t, m in scr.margins.items()},
                                 mask, bits, cloud)
     variables = export.block_variables(result, plan.header)
-    return BlockOutcome(export.encode_block(spec.start, variables, plan.layout, plan.fmt, plan.chunk_rows), sums)
+    encoded = export.encode_block(spec.start, variables, plan.layout, plan.fmt, plan.chunk_rows, extra=sums)
+    return BlockOutcome(spec.start, spec.stop, sums, encoded)
 
 
 # ---------------------------------------------------------------------------------------
@@ -224,16 +229,6 @@ def _run_blocks(ds, specs, plan, edits, clear=None, final=True, threads=1):
         yield from dask.compute(*tasks[w:w + max(1, threads)], scheduler="threads")
 
 
-def _scene_flags(ds, config):
-    """(night_any, day_any) over the whole scene's valid pixels (one pass, lazy or not)."""
-    import dask
-
-    night = night_mask(ds["sol_zenith"].data, config)
-    valid = ds["valid"].data
-    n, d = dask.compute((night & valid).any(), (~night & valid).any(), scheduler="threads")
-    return bool(n), bool(d)
-
-
 def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=DEFAULT_CHUNK_ROWS, progress=None):
     """Screen a loaded scene (in memory or lazy) block by block and write the result.
 
@@ -257,79 +252,63 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     fmt = export.format_of(out_path, fmt)
     names = tuple(scene.channels)
-    chset = ChannelSet.for_scene(names, config)
-    night_any, day_any = _scene_flags(ds, config)
-    tests = plan_tests(names, config, night_any, day_any)
+    tests = scene_plan({"sol_zenith": ds["sol_zenith"].data, "valid": ds["valid"].data}, config, names)
     inv = inversion_channels(names, config)
     rows = int(chunk_rows)
     specs = block_specs(ny, rows, int(config["tests"]["texture"]["window"]) // 2)
     threads = max(1, int(config["simulation"].get("threads", 1)))
     grid = edits_grid((ny, nx), edits) if edits else None
+    plan = BlockPlan(ChannelSet.for_scene(names, config), config, tests, inv, fmt, rows)
+    bias, bias_note, clear = {}, None, None
+    if config["bias"]["remove"]:  # first pass: the clear sky and the fit's sums, then the fit
+        clear = np.full((len(names), ny, nx), np.nan, np.float32)
+        sums = {}
+        for out in _run_blocks(ds, specs, plan, grid, final=False, threads=threads):
+            clear[:, out.start:out.stop] = out.clear
+            sums[out.start] = out.sums
+        bias = _fit(sums, config)
+        applied, bias_note = bias_decision(bias, config)
+        plan = replace(plan, bias=bias if applied else None)
     has_latlon = "lat" in ds.coords and "lon" in ds.coords
     header = export.ResultHeader(
-        scene.name, names, _source(ds, names), tests.run, inv, config["cloud"]["top"],
-        {c: {"a": float("nan"), "b": float("nan"), "n": 0, "rms": float("nan"), "applied": False} for c in names},
-        list(tests.notes) + inversion_notes(inv, config), dict(tests.skipped), config, len(edits or []), "screen", ds["row"].values, ds["col"].values,
+        scene.name, names, clear_sky_source({k: v.data for k, v in ds.data_vars.items()}, names), tests.run, inv,
+        config["cloud"]["top"], bias, result_notes(tests, bias_note, inv, config), dict(tests.skipped), config,
+        len(edits or []), "screen", ds["row"].values, ds["col"].values,
         np.asarray(ds["lat"].values) if has_latlon else None, np.asarray(ds["lon"].values) if has_latlon else None)
-    # the plan travels with every task: no per-pixel coordinates in it
-    plan = ScenePlan(chset, config, tests, inv, None, None, replace(header, row=None, col=None, lat=None, lon=None),
-                     fmt, rows)
-    clear = None
-    if config["bias"]["remove"]:  # first pass: the clear sky and the fit's sums
-        clear = np.full((len(names), ny, nx), np.nan, np.float32)
-        total = None
-        for spec, out in zip(specs, _run_blocks(ds, specs, plan, grid, final=False, threads=threads)):
-            clear[:, spec.start:spec.stop] = out.clear
-            total = _add_sums(total, out.sums)
-        header.bias = bias_from_sums(total, config["bias"]["min_pixels"])
-        applied, note = bias_decision(header.bias, config)
-        header.notes += [note] if note else []
-        plan.bias = header.bias if applied else None
-        plan.header = replace(plan.header, bias=header.bias, notes=header.notes)
     layout = export.result_layout(header)
-    plan.layout = replace(layout, coords={})
-    sums = {}
-    done = [0]
+    # the plan travels with every task: no per-pixel coordinates in it
+    plan = replace(plan, header=replace(header, row=None, col=None, lat=None, lon=None),
+                   layout=replace(layout, coords={}))
+    sums, done = {}, 0
 
     def on_block(blk):
+        nonlocal done
         sums[blk.start] = blk.extra
-        done[0] += (blk.stop - blk.start) * nx
+        done += (blk.stop - blk.start) * nx
         if progress:
-            progress(done[0], ny * nx)
+            progress(done, ny * nx)
 
-    def encoded():
-        for out in _run_blocks(ds, specs, plan, grid, clear, threads=threads):
-            out.encoded.extra = out.sums
-            yield out.encoded
+    def fitted_header():
+        if not config["bias"]["remove"] and not header.bias:  # one pass: the fit once every block is in
+            header.bias = _fit(sums, config)
+            bias_decision(header.bias, config)
+        return header
 
-    def final_attrs():
-        if not config["bias"]["remove"]:  # one pass: the fit is known once every block is in
-            total = None
-            for a in sorted(sums):
-                total = _add_sums(total, sums[a])
-            header.bias = bias_from_sums(total, config["bias"]["min_pixels"])
-            for b in header.bias.values():
-                b["applied"] = False
-        return export.result_attrs(header)
-
-    _, counts = export.write_blocks(layout, encoded(), out_path, fmt, rows, on_block, final_attrs)
+    blocks = (out.encoded for out in _run_blocks(ds, specs, plan, grid, clear, threads=threads))
+    _, counts = export.write_blocks(layout, blocks, out_path, fmt, rows, on_block,
+                                    lambda: export.result_attrs(fitted_header()))
+    fitted_header()
     fractions = {name: counts[k] / max(counts.sum(), 1) for k, name in enumerate(CLASS_NAMES)}
     return summary_row(scene.name, ny * nx, fractions, header.bias, header.skipped, header.notes)
 
 
-def _add_sums(total, sums):
-    return dict(sums) if total is None else {c: total[c] + sums[c] for c in total}
-
-
-def _source(ds, names):
-    """Per channel where its clear sky comes from (counts the scene's bt_clear_<ch> once)."""
-    import dask
-
-    valid = ds["valid"].data
-    given = {c: ((np.isfinite(ds[f"bt_clear_{c}"].data) & valid).sum(), valid.sum())
-             for c in names if f"bt_clear_{c}" in ds}
-    (given,) = dask.compute(given, scheduler="threads")
-    return clear_sky_source(given, names)
+def _fit(sums_by_start, config):
+    """The bias fit from per-block sums, added in block order (the same line however the blocks finished)."""
+    total = None
+    for start in sorted(sums_by_start):
+        s = sums_by_start[start]
+        total = dict(s) if total is None else {c: total[c] + s[c] for c in total}
+    return bias_from_sums(total, config["bias"]["min_pixels"])
 
 
 def screen_file(path, out_path, config, fmt=None, chunk_rows=None, use_edits=True, progress=None):
@@ -340,10 +319,12 @@ def screen_file(path, out_path, config, fmt=None, chunk_rows=None, use_edits=Tru
     """
     t0 = time.perf_counter()
     scene = load_scene(path, config=config, chunk_rows=chunk_rows)
-    edits = []
+    edits, problems = [], []
     jp = journal_path(path)
     if use_edits and jp.exists():
-        edits = Journal(jp, scene.data.sizes["y"] * scene.data.sizes["x"]).active()
+        journal = Journal(jp, scene.data.sizes["y"] * scene.data.sizes["x"])
+        edits, problems = journal.active(), journal.problems
     row = screen_scene_file(scene, out_path, config, fmt, edits, chunk_rows or DEFAULT_CHUNK_ROWS, progress)
-    row.update(seconds=round(time.perf_counter() - t0, 2), output=str(Path(out_path)), qa_edits=len(edits))
+    row.update(seconds=round(time.perf_counter() - t0, 2), output=str(Path(out_path)), qa_edits=len(edits),
+               notes=row["notes"] + problems)
     return row

@@ -84,8 +84,8 @@ def build_parser():
     s.add_argument("--quiet", action="store_true", help="no progress bar or summary")
     big = s.add_argument_group("large scenes and archives (Dask)")
     big.add_argument("--chunks", type=int, metavar="ROWS",
-                     help="screen chunk by chunk, ROWS grid rows at a time, with bounded memory (NetCDF/Parquet "
-                          "scenes; automatic above 4 million pixels)")
+                     help="read the scene lazily and screen it ROWS grid rows at a time, with bounded memory "
+                          "(automatic for NetCDF and Parquet scenes above 4 million pixels)")
     big.add_argument("--workers", type=int, metavar="N", help="start a local Dask cluster of N worker processes")
     big.add_argument("--scheduler", metavar="ADDRESS",
                      help="use an existing dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
@@ -146,12 +146,11 @@ def _expand(patterns):
     return files
 
 
-_FORMAT_OF_SUFFIX = {".nc": "netcdf", ".nc4": "netcdf", ".netcdf": "netcdf", ".csv": "csv"}
-
-
 def _output_format(out, fmt):
     """The format of a single output file from --format and the file name; they must agree."""
-    by_name = _FORMAT_OF_SUFFIX.get(Path(out).suffix.lower())
+    from .export import FORMAT_OF_SUFFIX
+
+    by_name = FORMAT_OF_SUFFIX.get(Path(out).suffix.lower())
     if fmt and by_name and fmt != by_name:
         raise SceneError(f"--format {fmt} but --out '{out}' ends in {Path(out).suffix}; make them agree "
                          f"(e.g. --out {Path(out).with_suffix('.nc' if fmt == 'netcdf' else '.csv')})")
@@ -159,6 +158,16 @@ def _output_format(out, fmt):
         raise SceneError(f"cannot tell the output format from '{Path(out).name}'; end --out in .nc (CF-NetCDF) "
                          f"or .csv, or give --format netcdf|csv; for a folder, end --out in '/'")
     return fmt or by_name
+
+
+def _refuse_overwriting_input(scene, out):
+    """An output must not replace its own scene or the scene's QA journal."""
+    from .journal import journal_path
+
+    target = Path(out).resolve()
+    if target in (Path(scene).resolve(), journal_path(Path(scene).resolve())):
+        raise SceneError(f"--out '{out}' would overwrite the scene it is made from; choose another output name "
+                         f"(e.g. {Path(out).with_name(Path(scene).stem + '_mask' + Path(out).suffix)})")
 
 
 def _progress(enabled, total, desc):
@@ -300,6 +309,7 @@ def _screen_files(args, cfg, files, out, many, fmt, ext, client):
                 stem = f"{Path(path).parent.name}_{stem}"
         target = out / f"{stem}_mask{ext}" if many else out
         try:
+            _refuse_overwriting_input(path, target)
             rows.append(_screen_one(path, target, cfg, fmt, args, not args.quiet and not many))
             if bar is not None:
                 bar.update(1)
@@ -322,12 +332,13 @@ def _screen_files(args, cfg, files, out, many, fmt, ext, client):
 def _print_summary(rows, failed):
     if rows:
         print(f"{'scene':<28} {'pixels':>9} {'clear':>7} {'marg.':>7} {'cloud':>7} {'no_data':>7} "
-              f"{'bias11 a/b':>14} {'time s':>7}")
+              f"{'bias a/b (channel)':>22} {'time s':>7}")
         for r in rows:
-            b = r["bias"].get("11um") or next(iter(r["bias"].values()), {})
-            bias = f"{b.get('a', float('nan')):+.2f}/{b.get('b', float('nan')):+.3f}" if b else "-"
+            ch = "11um" if "11um" in r["bias"] else next(iter(r["bias"]), None)
+            b = r["bias"].get(ch, {})
+            bias = f"{b.get('a', float('nan')):+.2f}/{b.get('b', float('nan')):+.3f} ({ch})" if b else "-"
             print(f"{r['scene'][:28]:<28} {r['pixels']:>9} {r['clear']:>7.3f} {r['marginal']:>7.3f} "
-                  f"{r['cloud']:>7.3f} {r['no_data']:>7.3f} {bias:>14} {r['seconds']:>7.1f}")
+                  f"{r['cloud']:>7.3f} {r['no_data']:>7.3f} {bias:>22} {r['seconds']:>7.1f}")
             for note in r["notes"]:
                 print(f"    note: {note}")
             print(f"    written: {r['output']}" + (f" (with {r['qa_edits']} QA edit(s))" if r["qa_edits"] else ""))
@@ -343,6 +354,7 @@ def cmd_simulate(args):
 
     cfg = load_config(args.config)
     fmt = _output_format(args.out, args.format)
+    _refuse_overwriting_input(args.scene, args.out)
     scene = load_scene(args.scene, config=cfg)
     sim = simulate(scene, cfg, levels=False)
     write_simulation(scene, sim, args.out, fmt)

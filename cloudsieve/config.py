@@ -17,6 +17,8 @@ from .errors import ConfigError
 from .registry import REGISTRY
 
 TOP_METHODS = ("fixed", "opaque", "grey")
+#: allowed range of ``[cloud] top_pressure`` [hPa] (and of the dashboard's slider)
+TOP_PRESSURE_RANGE = (10.0, 1100.0)
 
 #: Tables whose keys are open (new channel names may be added)
 _OPEN_TABLES = {("channels",), ("surface", "emissivity", "sea"), ("surface", "emissivity", "land"),
@@ -114,7 +116,8 @@ def _check_values(cfg, problems):
     need(cfg["tests"]["texture"]["window"] in (3, 5, 7, 9), "'tests.texture.window' must be 3, 5, 7 or 9 pixels.")
     cl = cfg["cloud"]
     need(cl["top"] in TOP_METHODS, f"'cloud.top' must be one of {', '.join(TOP_METHODS)}; got {cl['top']!r}.")
-    need(10 <= cl["top_pressure"] <= 1100, "'cloud.top_pressure' must lie within 10–1100 hPa.")
+    lo, hi = TOP_PRESSURE_RANGE
+    need(lo <= cl["top_pressure"] <= hi, f"'cloud.top_pressure' must lie within {lo:g}–{hi:g} hPa.")
     if "top_height" in cl:
         need(isinstance(cl["top_height"], (int, float)) and 0 <= cl["top_height"] <= 20,
              "'cloud.top_height' must be a number within 0–20 km.")

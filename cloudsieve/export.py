@@ -33,12 +33,18 @@ from .registry import REGISTRY, bit_table
 
 #: rows per NetCDF chunk (and per block of the batch pipeline unless told otherwise)
 CHUNK_ROWS = 256
-NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf")
+#: output format by file extension
+FORMAT_OF_SUFFIX = {".nc": "netcdf", ".nc4": "netcdf", ".netcdf": "netcdf", ".csv": "csv"}
+FORMATS = ("netcdf", "csv")
 
 
 def format_of(path, fmt=None):
-    """'netcdf' or 'csv': ``fmt`` if given, else from the file extension."""
-    return fmt or ("netcdf" if Path(path).suffix.lower() in NETCDF_SUFFIXES else "csv")
+    """'netcdf' or 'csv': ``fmt`` if given, else from the file extension (OutputError if neither tells)."""
+    fmt = fmt or FORMAT_OF_SUFFIX.get(Path(path).suffix.lower())
+    if fmt not in FORMATS:
+        raise OutputError(f"cannot tell the output format of '{Path(path).name}'; end the name in .nc (CF-NetCDF) "
+                          "or .csv, or give the format (netcdf or csv)")
+    return fmt
 
 
 def _physics_path():
@@ -316,10 +322,13 @@ def encode_block(start, variables, layout, fmt, chunk_rows=CHUNK_ROWS, extra=Non
     """Turn a block's output variables (name -> (rows, x)) into an :class:`EncodedBlock`.
 
     For NetCDF ``start`` must be a multiple of ``chunk_rows``; the block is split into chunks
-    of ``chunk_rows`` rows, each deflated as HDF5 stores it.
+    of ``chunk_rows`` rows, each deflated as HDF5 stores it. ``extra`` travels with the block
+    (the batch pipeline: its bias-fit sums).
     """
     rows = next(iter(variables.values())).shape[0]
     chunk_rows = min(chunk_rows, layout.ny)  # a grid smaller than a chunk is one chunk of its own size
+    if fmt == "netcdf" and start % chunk_rows:
+        raise ValueError(f"block start {start} is not a multiple of the NetCDF chunk height {chunk_rows}")
     out = {}
     for name, (dtype, _) in layout.variables.items():
         v = np.asarray(variables[name]).astype(dtype)
@@ -374,6 +383,8 @@ def write_blocks(layout, blocks, path, fmt=None, chunk_rows=CHUNK_ROWS, on_block
     path : str or Path
     fmt : {"netcdf", "csv"}, optional
         By the file extension when omitted.
+    chunk_rows : int
+        Rows per NetCDF chunk (the blocks were encoded with the same).
     on_block : callable(EncodedBlock), optional
         Called for every block as it arrives (sums, progress).
     final_attrs : callable() -> dict, optional
@@ -410,13 +421,17 @@ def write_blocks(layout, blocks, path, fmt=None, chunk_rows=CHUNK_ROWS, on_block
             step = min(chunk_rows, ny)
             with h5py.File(tmp, "r+") as h5:
                 dsets = {name: h5[name] for name in layout.variables}
+                covered = np.zeros(ny, bool)
                 for blk in blocks:
                     for name, chunks in blk.variables.items():
                         for k, data in enumerate(chunks):
                             dsets[name].id.write_direct_chunk((blk.start + k * step, 0), data)
+                    covered[blk.start:blk.stop] = True
                     counts += blk.counts.astype(np.int64)
                     if on_block:
                         on_block(blk)
+                if not covered.all():
+                    raise ValueError(f"the blocks left {int((~covered).sum())} of {ny} rows unwritten")
             attrs = dict(layout.attrs, **(final_attrs() if final_attrs else {}))
             with netCDF4.Dataset(tmp, "a") as nc:
                 nc.setncatts(attrs)
@@ -435,6 +450,8 @@ def write_blocks(layout, blocks, path, fmt=None, chunk_rows=CHUNK_ROWS, on_block
                                           coords={k: c[rows] if "y" in c.dims else c for k, c in layout.coords.items()})
                         write_table_csv(result_table(part), fh, header=nxt == 0)
                         nxt = b.stop
+                if nxt != ny or pending:
+                    raise ValueError(f"the blocks covered rows 0–{nxt} of {ny} (and {len(pending)} out of order)")
     return path, counts
 
 
@@ -447,16 +464,6 @@ def write_result(result, path, fmt=None):
     chunk_rows = min(CHUNK_ROWS, layout.ny)
     path, _ = write_blocks(layout, encode_dataset(layout, variables, fmt, chunk_rows), path, fmt, chunk_rows)
     return path
-
-
-def write_csv(result, path):
-    """Write a result Dataset as CSV atomically."""
-    return write_result(result, path, "csv")
-
-
-def write_netcdf(result, path):
-    """Write a result Dataset as compressed CF-NetCDF4 atomically."""
-    return write_result(result, path, "netcdf")
 
 
 def _atomic_target(path):

@@ -16,6 +16,7 @@ from physics import cloud as pcloud
 from physics.atmosphere import geopotential_height
 
 from .codes import CLOUD, MARGINAL
+from .simulate import level_chunk
 
 
 @dataclass
@@ -71,11 +72,6 @@ class CloudLayer:
                        **{name: nan(getattr(self, name)) for name in self.FIELDS},
                        status=np.where(keep, self.status, pcloud.STATUS_NOT_CLOUDY).astype(np.int8),
                        uncertain=keep & self.uncertain, notes=list(self.notes))
-
-    def rows(self, a, b):
-        """The layer of grid rows a:b (views)."""
-        return replace(self, emissivity=self.emissivity[:, a:b], status=self.status[a:b],
-                       uncertain=self.uncertain[a:b], **{n: getattr(self, n)[a:b] for n in self.FIELDS})
 
     def as_float32(self):
         """Float fields in float32 (what the exports write), except the top pressure: the
@@ -261,7 +257,7 @@ def invert_all(scene, sim, config, sigma_clear, bias=None, only=None, column_sim
     n_todo = idx.size if chosen is None else chosen.size
     if not n_todo:
         return layer
-    chunk = max(1024, int(config["simulation"]["chunk_pixels"]) * 16)
+    chunk = level_chunk(config)
     blocks = [slice(s, min(s + chunk, n_todo)) if chosen is None else chosen[s:s + chunk]
               for s in range(0, n_todo, chunk)]
     obs = {c: ds[f"bt_{c}"].values for c in sim.channels}

@@ -17,9 +17,10 @@ import os
 from pathlib import Path
 import threading
 
+from .codes import EDIT_CODES
 from .errors import CloudsieveError
 
-ACTIONS = ("clear", "cloud", "reset")
+ACTIONS = tuple(EDIT_CODES)  # the edit actions: clear, cloud, reset
 
 
 def journal_path(scene_path):
@@ -73,6 +74,11 @@ class Journal:
                 what = "torn last line (an edit interrupted while being written)" if last else f"unreadable line {k + 1}"
                 self.problems.append(f"QA journal {self.path.name}: {what} left out")
                 continue
+            why = self._invalid(entry)
+            if why:
+                self.problems.append(f"QA journal {self.path.name}: line {k + 1} left out ({why}); if the scene was "
+                                     "regenerated with another grid, move the old journal away")
+                continue
             self.entries.append(entry)
         if raw and not raw.endswith(b"\n"):
             # make the next append start on a fresh line
@@ -81,6 +87,21 @@ class Journal:
                 fh.flush()
                 os.fsync(fh.fileno())
         self._size = self.path.stat().st_size
+
+    def _invalid(self, entry):
+        """Why a parsed journal entry cannot be applied to this scene (None: it can)."""
+        if not isinstance(entry["id"], int):
+            return "its id is not a whole number"
+        if entry["action"] == "undo":
+            return None if isinstance(entry.get("target"), int) else "an undo without the edit it cancels"
+        if entry["action"] not in ACTIONS:
+            return f"unknown action {entry['action']!r}"
+        index = entry.get("index")
+        if not isinstance(index, list) or not all(isinstance(i, int) for i in index):
+            return "no list of pixel indices"
+        if index and (min(index) < 0 or max(index) >= self.n_pixels):
+            return f"pixel indices outside this scene's 0–{self.n_pixels - 1}"
+        return None
 
     def _refresh(self):
         """Read the file again if another writer (a second dashboard session on the same

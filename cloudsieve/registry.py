@@ -4,7 +4,7 @@ Each :class:`ScreeningTest` holds the test's margin function, the channels it ne
 it makes pixels cloudy or only flags them, its bit in the ``test_bits`` field, its label and
 help text for the dashboard, its CF long name, its tunable threshold (config key, unit,
 slider range) and the defaults of its ``[tests.<name>]`` configuration table. The screening
-(:mod:`cloudsieve.pipeline`), the export, the dashboard's sliders and help and the bit table
+(:mod:`cloudsieve.screen`), the export, the dashboard's sliders and help and the bit table
 all read this registry, so adding a test is one :func:`register` call plus its TOML table
 (DEVELOPERS.md has a worked example).
 
@@ -57,14 +57,12 @@ class ScreeningInputs:
         (y, x) water-vapour slant path W·sec θ [kg m⁻²], NaN replaced by 0.
     valid, night : ndarray
         (y, x) bool: pixel has complete data; sun below ``[screening] night_sun_zenith``.
-    night_any, day_any : bool
-        Whether the whole scene (not just this block) has valid night / daylight pixels.
     window_channel : str or None
         The window channel of the cold-departure test, or its stand-in when absent.
     notes : list of str
         Margin functions may append notes for the user here.
     cache : dict or None
-        Threshold-independent arrays kept between calls (see ``pipeline.screen_arrays``).
+        Threshold-independent arrays kept between calls (see ``screen.screen_arrays``).
     cache_key : object
         Identifies the departures the cache entries belong to.
     """
@@ -75,8 +73,6 @@ class ScreeningInputs:
     slant_path: np.ndarray
     valid: np.ndarray
     night: np.ndarray
-    night_any: bool
-    day_any: bool
     window_channel: str = None
     notes: list = field(default_factory=list)
     cache: dict = None
@@ -266,7 +262,7 @@ def _needs_window(facts):
 
 
 def _needs_night(facts):
-    return None if facts.night_any else "no night-time pixels (sun above the horizon, or sol_zenith missing)"
+    return None if facts.night_any else "no valid night-time pixels (sun above the horizon, sol_zenith missing, or no complete data at night)"
 
 
 register(ScreeningTest(

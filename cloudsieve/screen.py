@@ -13,7 +13,7 @@ import json
 import numpy as np
 
 from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, NO_DATA, per_surface
-from .invert import CloudLayer
+from .invert import CloudLayer, inversion_notes
 from .registry import REGISTRY, SceneFacts, ScreeningInputs, bit_table
 
 
@@ -36,14 +36,15 @@ class Screening:
 
     departure : dict channel -> (y, x) observed − clear (bias removed when configured) [K]
     margins : dict test -> (y, x) margin [K] (> 0: fired; NaN: not applicable)
-    mask : (y, x) int8 class code (CLASS_NAMES)
-    bits : (y, x) uint16 bit field (BIT_NAMES)
+    mask : (y, x) int8 class code (codes.CLASS_NAMES)
+    bits : (y, x) uint16 bit field (registry.bit_table())
     counts : dict class -> fraction of pixels
     bias : dict channel -> {"a", "b", "n", "rms", "applied"}
     notes : list of str (skipped tests, daylight 3.9 µm, …)
     thresholds : dict test -> (y, x) threshold actually applied [K] (for plots)
     sigma_clear : (y, x) [K]
     cloud : CloudLayer masked to non-clear pixels (or None)
+    skipped : dict test -> why it did not run
     """
 
     departure: dict
@@ -69,7 +70,7 @@ def window_channel(channels, config):
 
 
 @dataclass
-class TestPlan:
+class ScreeningPlan:
     """Which registered tests run on a scene, decided once per scene (no pixel looked at).
 
     facts : registry.SceneFacts; run : names of the tests that run, in registry order;
@@ -83,7 +84,8 @@ class TestPlan:
 
 
 def plan_tests(channels, config, night_any, day_any):
-    """The :class:`TestPlan` of a scene with ``channels`` and night / daylight valid pixels."""
+    """The :class:`ScreeningPlan` of a scene with ``channels`` and (``night_any``, ``day_any``) valid
+    night / daylight pixels (:func:`scene_flags`)."""
     facts = SceneFacts(tuple(channels), window_channel(channels, config), bool(night_any), bool(day_any))
     run, skipped, notes = [], {}, []
     for name, test in REGISTRY.items():
@@ -103,10 +105,13 @@ def plan_tests(channels, config, night_any, day_any):
     wanted = config["tests"]["cold_departure"]["channel"]
     if facts.window_channel and facts.window_channel != wanted:
         notes.append(f"window-channel tests use {facts.window_channel} ({wanted} absent)")
+    if not any(REGISTRY[t].makes_cloud for t in run):
+        notes.append("NO CLOUD TEST COULD RUN on this scene: every valid pixel is classed clear by default, "
+                      "so the mask says nothing about cloud; give the channels the tests need (see the notes above)")
     if "3p9um" in facts.channels and day_any:
         notes.append("3.9 µm not used on daylight pixels: by day it carries reflected sunlight that the "
                      "thermal model does not simulate (bit daylight_3p9um_unused marks them)")
-    return TestPlan(facts, tuple(run), skipped, notes)
+    return ScreeningPlan(facts, tuple(run), skipped, notes)
 
 
 def night_mask(sol_zenith, config):
@@ -114,7 +119,24 @@ def night_mask(sol_zenith, config):
     return np.isfinite(sol_zenith) & (sol_zenith > config["screening"]["night_sun_zenith"])
 
 
-def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=None, cache=None, cache_key=None):
+def scene_flags(sol_zenith, valid, config):
+    """(night_any, day_any): whether a scene has valid night / daylight pixels.
+
+    ``sol_zenith`` [deg] and ``valid`` are (y, x) arrays, numpy or dask (one pass).
+    """
+    import dask
+
+    night = night_mask(sol_zenith, config)
+    n, d = dask.compute((night & valid).any(), (~night & valid).any(), scheduler="threads")
+    return bool(n), bool(d)
+
+
+def scene_plan(fields, config, channels):
+    """The :class:`ScreeningPlan` of a whole scene from its (y, x) ``sol_zenith`` and ``valid``."""
+    return plan_tests(tuple(channels), config, *scene_flags(fields["sol_zenith"], fields["valid"], config))
+
+
+def run_tests(fields, config, departure, sigma_clear, plan=None, cache=None, cache_key=None):
     """Margins [K] of every registered test that runs (> 0 means the test fired), thresholds, notes.
 
     Parameters
@@ -124,30 +146,26 @@ def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=No
     config : dict
     departure : dict channel -> (y, x) observed − clear [K]
     sigma_clear : (y, x) expected clear-sky error [K]
-    night_any, day_any : bool, optional
-        Whether the whole scene has night / daylight valid pixels (a block of a chunked
-        scene cannot tell); computed from ``fields`` when omitted.
+    plan : ScreeningPlan, optional
+        The scene's plan (a block of a scene cannot tell whether the scene has night pixels);
+        from ``fields`` as a whole scene when omitted.
     cache : dict, optional
         Keeps threshold-independent statistics (the texture test's) between calls (see
         :func:`screen_scene`); ``cache_key`` names the departures they belong to.
 
     Returns
     -------
-    TestOutcome
+    MarginSet
     """
     valid = fields["valid"]
     night = night_mask(fields["sol_zenith"], config)
-    if night_any is None:
-        night_any = bool(night.any())
-    if day_any is None:
-        day_any = bool((~night & valid).any())
-    plan = plan_tests(tuple(departure), config, night_any, day_any)
+    if plan is None:
+        plan = scene_plan(fields, config, tuple(departure))
     inp = ScreeningInputs(
         departure=departure, sigma_clear=sigma_clear, surface=fields["surface"],
-        slant_path=np.nan_to_num(fields["slant_path"]), valid=valid, night=night, night_any=night_any,
-        day_any=day_any, window_channel=plan.facts.window_channel, notes=list(plan.notes), cache=cache,
-        cache_key=cache_key)
-    out = TestOutcome({}, {}, dict(plan.skipped), inp.notes, night)
+        slant_path=np.nan_to_num(fields["slant_path"]), valid=valid, night=night,
+        window_channel=plan.facts.window_channel, notes=list(plan.notes), cache=cache, cache_key=cache_key)
+    out = MarginSet({}, {}, dict(plan.skipped), inp.notes, night)
     for name in plan.run:
         test = REGISTRY[name]
         m = test.margin(inp, config["tests"].get(name, test.defaults))
@@ -157,7 +175,7 @@ def run_tests(fields, config, departure, sigma_clear, night_any=None, day_any=No
 
 
 @dataclass
-class TestOutcome:
+class MarginSet:
     """What :func:`run_tests` found: per test the margin and threshold [K] on the grid, the tests
     skipped with why, notes for the user, and the night mask it used."""
 
@@ -254,9 +272,9 @@ def bias_from_sums(sums, min_pixels):
         # accumulated in a different order (the chunked path adds them block by block) give
         # the very same line.
         a, b = round(float(a), 9), round(float(b), 12)
-        # residual sum of squares Σ(y − a − b x)² expanded in the sums
+        # residual sum of squares Σ(y − a − b x)² expanded in the sums (rounded likewise)
         rss = syy - 2 * a * sy - 2 * b * sxy + n * a * a + 2 * a * b * sx + b * b * sxx
-        out[ch] = {"a": float(a), "b": float(b), "n": n, "rms": float(np.sqrt(max(rss, 0.0) / n))}
+        out[ch] = {"a": float(a), "b": float(b), "n": n, "rms": round(float(np.sqrt(max(rss, 0.0) / n)), 9)}
     return out
 
 
@@ -290,8 +308,7 @@ class ScreenedArrays:
     notes: list
 
 
-def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, night_any=None, day_any=None,
-                  cache=None):
+def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, plan=None, cache=None):
     """Departures, test margins, classes and bits for a grid or a block of one (no scene-wide step).
 
     Parameters
@@ -303,8 +320,8 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, nig
         Clear-sky bias line to subtract from the departures.
     edit_codes : (y, x) int8, optional
         Analyst overrides (codes.EDIT_CODES).
-    night_any, day_any : bool, optional
-        Scene-wide flags (see :func:`run_tests`).
+    plan : ScreeningPlan, optional
+        The scene's test plan (see :func:`run_tests`).
     cache : dict, optional
         See :func:`screen_scene`.
 
@@ -332,7 +349,7 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, nig
         sigma = sigma_from_path(fields["surface"], fields["slant_path"], config)
         if cache is not None:
             cache[("departure", bias_key)], cache[sigma_key] = departure, sigma
-    tests = run_tests(fields, config, departure, sigma, night_any, day_any, cache, bias_key)
+    tests = run_tests(fields, config, departure, sigma, plan, cache, bias_key)
     mask, bits = classify(fields["valid"], tests.margins, tests.thresholds, config["screening"]["marginal_fraction"],
                           tests.night, "3p9um" in departure, edit_codes)
     return ScreenedArrays(departure, tests.margins, tests.thresholds, mask, bits, sigma, tests.skipped, tests.notes)
@@ -371,12 +388,16 @@ def screen_scene(scene, sim, config, edits=None, cache=None):
     obs = {ch: ds[f"bt_{ch}"].values for ch in sim.channels}
     clear = {ch: sim.bt_clear[i] for i, ch in enumerate(sim.channels)}
     edit_codes = edits_grid(fields["valid"].shape, edits) if edits else None
-    out = screen_arrays(obs, clear, fields, config, None, edit_codes, cache=cache)
+    if cache is not None and "flags" not in cache:
+        cache["flags"] = scene_flags(fields["sol_zenith"], fields["valid"], config)
+    flags = cache["flags"] if cache is not None else scene_flags(fields["sol_zenith"], fields["valid"], config)
+    plan = plan_tests(sim.channels, config, *flags)
+    out = screen_arrays(obs, clear, fields, config, None, edit_codes, plan, cache=cache)
     bias = bias_from_sums(bias_sums(out.departure, sim.slant_path, out.mask, out.bits, fields["valid"]),
                           config["bias"]["min_pixels"])
     applied, note = bias_decision(bias, config)
     if applied:
-        out = screen_arrays(obs, clear, fields, config, bias, edit_codes, cache=cache)
+        out = screen_arrays(obs, clear, fields, config, bias, edit_codes, plan, cache=cache)
     notes = out.notes + ([note] if note else [])
     counts = {name: float(np.mean(out.mask == code)) for code, name in enumerate(CLASS_NAMES)}
     return Screening(out.departure, out.margins, out.mask, out.bits, counts, bias, notes, out.thresholds, out.sigma,
@@ -395,6 +416,12 @@ def bias_decision(bias, config):
     for b in bias.values():
         b["applied"] = applied
     return applied, note
+
+
+def result_notes(plan, bias_note, inversion_channels, config):
+    """The notes of a screened scene, in the order every output gives them: the test plan's,
+    the bias fit's, the cloud inversion's."""
+    return list(plan.notes) + ([bias_note] if bias_note else []) + inversion_notes(inversion_channels, config)
 
 
 def summary_row(name, pixels, fractions, bias, skipped, notes):

@@ -21,8 +21,8 @@ import numpy as np
 
 from physics import cloud as pcloud
 
-from .codes import CLASS_NAMES, CLEAR, CLOUD, MARGINAL, SURFACES
-from .config import TOP_METHODS, load_config
+from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, SURFACES
+from .config import TOP_METHODS, TOP_PRESSURE_RANGE, load_config
 from .export import result_dataset, write_result
 from .invert import invert_all
 from .journal import Journal, StaleEditsError, journal_path
@@ -47,7 +47,7 @@ class Session:
     journal : Journal or None or bool
         The QA journal: ``True`` (default) opens the one beside the scene file, ``False`` or
         ``None`` applies no edits (and refuses new ones), a Journal is used as given.
-    sim : pipeline.Simulation, optional
+    sim : simulate.Simulation, optional
         A simulation of this scene under this configuration to reuse (the dashboard shares
         one per file between browser sessions); computed when omitted.
     invert_scope : {"all", "flagged"}
@@ -70,7 +70,7 @@ class Session:
         self.lean = self.sim.level_pressure is None
         self._cloud = None
         self._cloud_key = None
-        self._screen_cache = {}  # threshold-independent screening arrays of this scene (pipeline.screen)
+        self._screen_cache = {}  # threshold-independent screening arrays of this scene (screen.screen_scene)
         self._shown_latest_edit = None
         self.result = None
         self.timings = {"simulate_s": self.sim.seconds}
@@ -102,15 +102,27 @@ class Session:
     def configure(self, cloud_top=None, top_pressure=None, remove_bias=None, marginal_fraction=None):
         """Change any of the tunable settings at once, then rescreen (once).
 
-        A new ``top_pressure`` replaces a configured ``[cloud] top_height``: the analyst chose
-        a pressure.
+        Parameters
+        ----------
+        cloud_top : {"fixed", "opaque", "grey"}, optional
+        top_pressure : float, optional
+            Fixed cloud-top pressure [hPa]; replaces a configured ``[cloud] top_height`` (the
+            analyst chose a pressure).
+        remove_bias : bool, optional
+        marginal_fraction : float, optional
+            Marginal band as a fraction of each test's threshold [1].
         """
         cc = self.config["cloud"]
+        lo, hi = TOP_PRESSURE_RANGE
+        if cloud_top is not None and cloud_top not in TOP_METHODS:
+            raise ValueError(f"cloud_top must be one of {', '.join(TOP_METHODS)}")
+        if top_pressure is not None and not lo <= float(top_pressure) <= hi:
+            raise ValueError(f"top_pressure must lie within {lo:g}–{hi:g} hPa")
+        if marginal_fraction is not None and not 0.0 <= float(marginal_fraction) <= 1.0:
+            raise ValueError("marginal_fraction must lie within 0–1")
         if cloud_top is not None:
-            if cloud_top not in TOP_METHODS:
-                raise ValueError(f"cloud_top must be one of {TOP_METHODS}")
             cc["top"] = cloud_top
-        if top_pressure is not None and float(top_pressure) != cc["top_pressure"]:
+        if top_pressure is not None:
             cc["top_pressure"] = float(top_pressure)
             cc.pop("top_height", None)
         if remove_bias is not None:
@@ -219,7 +231,7 @@ class Session:
         n_cloud, n_clear); rates are NaN without labels of that kind.
         """
         codes = edits_grid(self.result.mask.shape, self.edits())
-        pos, neg = codes == 2, codes == 1
+        pos, neg = codes == EDIT_CODES["cloud"], codes == EDIT_CODES["clear"]
         out = {}
         for test, m in self.result.margins.items():
             fired = np.nan_to_num(m, nan=-np.inf) > 0

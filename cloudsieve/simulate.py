@@ -209,24 +209,42 @@ def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=Non
     return out
 
 
-def user_clear_sky(fields, names, flat_index):
-    """The scene's own clear-sky brightness temperatures (``bt_clear_<ch>``) at ``flat_index``.
+def level_chunk(config):
+    """Columns whose level data exist at once when the inversion re-simulates them (≈ 0.8 kB each)."""
+    return max(1024, int(config["simulation"]["chunk_pixels"]) * 16)
 
-    Returns dict channel -> (n,) float32 [K] with NaN where the scene gives none (channels
-    without a ``bt_clear_<ch>`` field are left out).
+
+def use_scene_clear_sky(res, fields, chset, flat_index):
+    """Put the scene's own clear-sky values (``bt_clear_<ch>``, where finite) into a ColumnResult.
+
+    ``res`` holds the simulated columns of pixels ``flat_index`` of ``fields``; its brightness
+    temperatures [K] and radiances are replaced in place where the scene gives a value.
     """
-    return {ch: np.asarray(fields[f"bt_clear_{ch}"]).ravel()[flat_index].astype(np.float32)
-            for ch in names if f"bt_clear_{ch}" in fields}
+    for i, ch in enumerate(chset.names):
+        if f"bt_clear_{ch}" not in fields:
+            continue
+        given = np.asarray(fields[f"bt_clear_{ch}"]).ravel()[flat_index].astype(np.float32)
+        use = np.isfinite(given)
+        res.brightness_temperature[i] = np.where(use, given, res.brightness_temperature[i])
+        res.radiance[i] = np.where(use, chset.channels[i].radiance(given), res.radiance[i])
+    return res
 
 
-def clear_sky_source(given, names):
-    """Per channel: "simulated", "user" (every valid pixel given) or "user+simulated".
+def clear_sky_source(fields, names):
+    """Per channel where the clear sky comes from: "simulated", "user" (the scene gives
+    ``bt_clear_<ch>`` at every valid pixel) or "user+simulated".
 
-    ``given`` : channel -> (valid pixels with a ``bt_clear_<ch>`` value, valid pixels).
+    ``fields`` maps names to (y, x) arrays, numpy or dask (counted in one pass).
     """
+    import dask
+
+    valid = fields["valid"]
+    counts = {c: ((np.isfinite(fields[f"bt_clear_{c}"]) & valid).sum(), valid.sum())
+              for c in names if f"bt_clear_{c}" in fields}
+    (counts,) = dask.compute(counts, scheduler="threads")
     out = {}
     for ch in names:
-        n_given, n_valid = given.get(ch, (0, 0))
+        n_given, n_valid = counts.get(ch, (0, 0))
         out[ch] = "user" if n_given and n_given == n_valid else ("user+simulated" if n_given else "simulated")
     return out
 
@@ -298,19 +316,13 @@ def simulate(scene, config, progress=None, levels=None):
     cols = gather_columns(fields, emis, idx)
     res = simulate_columns(cols, chset, config["simulation"], levels=levels,
                            threads=max(1, int(config["simulation"].get("threads", 1))), progress=progress)
-    bt, rad = res.brightness_temperature, res.radiance
-    user = user_clear_sky(fields, names, idx)
+    use_scene_clear_sky(res, fields, chset, idx)
     bt_full = np.full((len(names), ny * nx), np.nan, np.float32)
-    for i, ch in enumerate(names):
-        if ch in user:
-            use = np.isfinite(user[ch])
-            bt[i] = np.where(use, user[ch], bt[i])
-            rad[i] = np.where(use, chset.channels[i].radiance(user[ch]), rad[i])
-        bt_full[i, idx] = bt[i]
-    given = {c: (int(np.isfinite(u).sum()), u.size) for c, u in user.items()}
-    return Simulation(names, bt_full.reshape(len(names), ny, nx), clear_sky_source(given, names),
+    bt_full[:, idx] = res.brightness_temperature
+    return Simulation(names, bt_full.reshape(len(names), ny, nx), clear_sky_source(fields, names),
                       slant_path(fields["tcwv"], fields["sat_zenith"]), idx, res.level_pressure,
-                      res.level_temperature, res.opaque_radiance, rad.T.copy(), chset, time.perf_counter() - t0)
+                      res.level_temperature, res.opaque_radiance, res.radiance.T.copy(), chset,
+                      time.perf_counter() - t0)
 
 
 class ColumnSimulator:

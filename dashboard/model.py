@@ -4,10 +4,9 @@ Every tunable setting is a parameter (widgets come from ``from_param``); changin
 the session, which rescreens, and bumps ``version`` so that views redraw. The model holds no
 results of its own: ``scene``, ``sim``, ``result``, ``journal`` … are the session's.
 """
-import numpy as np
 import param
 
-from cloudsieve.config import TOP_METHODS
+from cloudsieve.config import TOP_METHODS, TOP_PRESSURE_RANGE
 from cloudsieve.session import Session
 
 
@@ -15,7 +14,7 @@ class ScreeningModel(param.Parameterized):
     """A screened scene with tunable settings, QA edits and exports, for one browser session."""
 
     cloud_top = param.Selector(default="opaque", objects=list(TOP_METHODS), doc="Cloud-top choice of the inversion")
-    top_pressure = param.Number(default=500.0, bounds=(50.0, 1050.0), step=10.0,
+    top_pressure = param.Number(default=500.0, bounds=TOP_PRESSURE_RANGE, step=10.0,
                                 doc="Cloud-top pressure for the fixed choice [hPa]")
     remove_bias = param.Boolean(default=False, doc="Subtract the clear-sky bias fit and screen again")
     marginal_fraction = param.Number(default=0.25, bounds=(0.0, 1.0), step=0.05,
@@ -25,14 +24,16 @@ class ScreeningModel(param.Parameterized):
     busy = param.Boolean(default=False, doc="An update is running")
     message = param.String(default="", doc="Last user-facing message (errors included)")
 
-    def __init__(self, scene, config=None, journal=True, sim=None, **params):
-        """``scene``, ``config``, ``journal`` and ``sim`` as :class:`cloudsieve.session.Session`."""
+    def __init__(self, scene=None, config=None, journal=True, sim=None, session=None, **params):
+        """A new :class:`cloudsieve.session.Session` of ``scene`` (``config``, ``journal`` and ``sim``
+        as there), or an existing ``session``."""
         super().__init__(**params)
-        self.session = Session(scene, config, journal=journal, sim=sim)
+        self.session = session if session is not None else Session(scene, config, journal=journal, sim=sim)
         s = self.session
+        scene = s.scene
         with param.parameterized.discard_events(self):
-            self.param.update(cloud_top=s.cloud_top, top_pressure=float(np.clip(s.top_pressure, 50, 1050)),
-                              remove_bias=s.remove_bias, marginal_fraction=s.marginal_fraction)
+            self.param.update(cloud_top=s.cloud_top, top_pressure=s.top_pressure, remove_bias=s.remove_bias,
+                              marginal_fraction=s.marginal_fraction)
         self.param.channel.objects = list(scene.channels)
         self.channel = "11um" if "11um" in scene.channels else scene.channels[0]
         if s.problems:
@@ -41,8 +42,7 @@ class ScreeningModel(param.Parameterized):
     @classmethod
     def open(cls, path, config=None, journal=True):
         """Load, validate and simulate a scene file (raises SceneError with the report)."""
-        s = Session.open(path, config, journal=journal)
-        return cls(s.scene, s.config, journal=s.journal or False, sim=s.sim)
+        return cls(session=Session.open(path, config, journal=journal))
 
     # ------------------------------------------------------------------ the session's state
     scene = property(lambda self: self.session.scene)
@@ -85,11 +85,11 @@ class ScreeningModel(param.Parameterized):
         return self.session.optical_depth_curve(row, col, taus)
 
     # ------------------------------------------------------------------ changes
-    def _run(self, call, *args):
+    def _run(self, call, *args, **kwargs):
         """Call the session (which rescreens), then tell the views."""
         self.busy = True
         try:
-            return call(*args)
+            return call(*args, **kwargs)
         finally:
             self.busy = False
             self.version += 1
@@ -112,6 +112,9 @@ class ScreeningModel(param.Parameterized):
 
     @param.depends("cloud_top", "top_pressure", "remove_bias", "marginal_fraction", watch=True)
     def _settings_changed(self):
-        self._run(lambda: self.session.configure(cloud_top=self.cloud_top, top_pressure=self.top_pressure,
-                                                 remove_bias=self.remove_bias,
-                                                 marginal_fraction=self.marginal_fraction))
+        # only what the analyst changed goes to the session (an unchanged top pressure must not
+        # replace a configured top height)
+        changed = {name: getattr(self, name) for name in ("cloud_top", "top_pressure", "remove_bias",
+                                                          "marginal_fraction")
+                   if getattr(self, name) != getattr(self.session, name)}
+        self._run(self.session.configure, **changed)

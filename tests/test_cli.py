@@ -168,3 +168,34 @@ def test_a_folder_that_refuses_files_is_an_output_error_not_a_bug(tmp_path, caps
 def test_debug_is_accepted_after_the_command(tmp_path):
     assert main(["screen", str(SMALL), "--out", str(tmp_path / "m.nc"), "--quiet", "--debug"]) == 0
 
+
+
+def test_out_must_not_overwrite_its_own_scene(tmp_path):
+    scene = tmp_path / "s.csv"
+    scene.write_bytes(SMALL.read_bytes())
+    out = run("screen", scene, "--out", scene)
+    assert out.returncode == 2 and "would overwrite the scene" in out.stderr
+    assert scene.read_bytes() == SMALL.read_bytes()
+    out = run("simulate", scene, "--out", scene)
+    assert out.returncode == 2 and scene.read_bytes() == SMALL.read_bytes()
+
+
+def test_a_journal_from_another_grid_is_reported_not_a_crash(tmp_path):
+    """QA edits whose pixels lie outside the scene (the scene was regenerated smaller): the
+    edits are left out and the summary says why; no internal error."""
+    from cloudsieve.journal import journal_path
+
+    scene = tmp_path / "s.csv"
+    scene.write_bytes(SMALL.read_bytes())
+    journal_path(scene).write_text('{"id":1,"time":"t","action":"cloud","count":1,"index":[999999]}\n'
+                                   '{"id":2,"time":"t","action":"undo"}\n')
+    out = run("screen", scene, "--out", tmp_path / "m.nc")
+    assert out.returncode == 0, out.stderr
+    assert "outside this scene" in out.stdout and "undo without" in out.stdout
+
+
+def test_a_scene_no_cloud_test_can_screen_says_so(tmp_path):
+    scene = tmp_path / "only3p9.csv"
+    pd.read_csv(SMALL).drop(columns=["bt_8p6um", "bt_11um", "bt_12um"]).to_csv(scene, index=False)
+    out = run("screen", scene, "--out", tmp_path / "m.nc")
+    assert out.returncode == 0 and "NO CLOUD TEST COULD RUN" in out.stdout

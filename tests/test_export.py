@@ -36,7 +36,7 @@ def _checker():
 
 def test_netcdf_passes_cf_checker(tmp_path, result):
     """CF-1.10 conformance by the IOOS compliance-checker (registry package)."""
-    path = export.write_netcdf(result, tmp_path / "mask.nc")
+    path = export.write_result(result, tmp_path / "mask.nc", "netcdf")
     exe = _checker()
     assert exe, "compliance-checker must be installed (pip install compliance-checker)"
     out = subprocess.run([exe, "--test=cf:1.10", "--criteria=normal", "--format=json", "-o", "-", str(path)],
@@ -49,7 +49,7 @@ def test_netcdf_passes_cf_checker(tmp_path, result):
 
 
 def test_netcdf_round_trip(tmp_path, result):
-    path = export.write_netcdf(result, tmp_path / "mask.nc")
+    path = export.write_result(result, tmp_path / "mask.nc", "netcdf")
     back = xr.open_dataset(path)
     np.testing.assert_array_equal(back["mask"].values, result["mask"].values)
     np.testing.assert_array_equal(back["test_bits"].values, result["test_bits"].values)
@@ -63,7 +63,7 @@ def test_netcdf_round_trip(tmp_path, result):
 
 
 def test_csv_columns_and_values(tmp_path, result):
-    path = export.write_csv(result, tmp_path / "mask.csv")
+    path = export.write_result(result, tmp_path / "mask.csv", "csv")
     df = pd.read_csv(path)
     for col in ("row", "col", "lat", "lon", "mask", "test_bits", "margin_cold_departure", "departure_11um",
                 "bt_clear_11um", "cloud_optical_depth", "cloud_top_pressure", "inversion_status"):
@@ -83,14 +83,14 @@ def test_interrupted_write_leaves_old_file(tmp_path, result, monkeypatch):
 
     monkeypatch.setattr(export, "write_table_csv", boom)
     with pytest.raises(export.OutputError, match="No space left"):
-        export.write_csv(result, target)
+        export.write_result(result, target, "csv")
     assert target.read_text() == "old content\n"
     assert [p.name for p in tmp_path.iterdir()] == ["mask.csv"]  # no temporary left behind
 
 
 def test_missing_output_folder(tmp_path, result):
     with pytest.raises(export.OutputError, match="does not exist"):
-        export.write_netcdf(result, tmp_path / "nope" / "mask.nc")
+        export.write_result(result, tmp_path / "nope" / "mask.nc", "netcdf")
 
 
 def test_outputs_get_the_usual_file_mode_not_the_temporary_ones(tmp_path):
@@ -111,3 +111,17 @@ def test_outputs_get_the_usual_file_mode_not_the_temporary_ones(tmp_path):
         assert stat.S_IMODE((tmp_path / "a.csv").stat().st_mode) == 0o640
     finally:
         os.umask(old)
+
+
+def test_the_writer_refuses_misaligned_or_missing_blocks(tmp_path, result):
+    """NetCDF blocks start on chunk boundaries and every row is written once (else: a bug)."""
+    layout = export.Layout(result.sizes["y"], result.sizes["x"], {k: result[k].variable for k in result.coords},
+                           {k: (v.dtype, dict(v.attrs)) for k, v in result.data_vars.items()}, dict(result.attrs))
+    variables = {k: v.values for k, v in result.data_vars.items()}
+    with pytest.raises(ValueError, match="multiple of the NetCDF chunk"):
+        export.encode_block(3, {k: v[3:10] for k, v in variables.items()}, layout, "netcdf", 8)
+    for fmt, name in (("netcdf", "gap.nc"), ("csv", "gap.csv")):
+        first = export.encode_block(0, {k: v[:8] for k, v in variables.items()}, layout, fmt, 8)
+        with pytest.raises(ValueError, match="rows"):
+            export.write_blocks(layout, [first], tmp_path / name, fmt, 8)
+        assert not (tmp_path / name).exists()

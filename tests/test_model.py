@@ -312,3 +312,23 @@ def test_inspector_text_explains_an_emissivity_outside_the_grey_model(model):
     inspector = PixelInspector(model, Focus(model.result.mask.shape), Notices())
     text = inspector.text((y, x))
     assert "outside the grey-cloud model" in text
+
+
+def test_changing_one_setting_leaves_a_configured_top_alone(scene_path, tmp_path):
+    """Found in review: every setting change sent the slider's top pressure to the session, so a
+    configured top pressure outside the slider range, or a top height, was silently replaced."""
+    from cloudsieve.config import merge_config
+
+    model = ScreeningModel.open(scene_path, merge_config({"cloud": {"top": "fixed", "top_pressure": 20.0}}),
+                                journal=False)
+    model.marginal_fraction = 0.4
+    assert model.session.top_pressure == 20.0
+    model = ScreeningModel.open(scene_path, merge_config({"cloud": {"top": "fixed", "top_height": 2.0}}),
+                                journal=False)
+    tops = model.result.cloud.top_pressure.copy()
+    model.marginal_fraction = 0.4
+    assert model.config["cloud"]["top_height"] == 2.0
+    same = np.isfinite(tops) & np.isfinite(model.result.cloud.top_pressure)
+    np.testing.assert_array_equal(tops[same], model.result.cloud.top_pressure[same])
+    model.top_pressure = 300.0  # the analyst's own choice replaces the height
+    assert "top_height" not in model.config["cloud"]

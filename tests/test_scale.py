@@ -20,6 +20,9 @@ SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 
 def _compare(a, b, tol=1e-6):
     assert set(a.data_vars) == set(b.data_vars)
+    # the same notes (in the same order) and the same bias fit in both files
+    for attr in ("cloudsieve_notes", "cloudsieve_bias_fit", "cloudsieve_channels", "cloudsieve_qa_edits"):
+        assert a.attrs[attr] == b.attrs[attr], attr
     for name in a.data_vars:
         x = a[name].values.astype(float)
         y = b[name].values.astype(float)
@@ -147,3 +150,41 @@ def test_cloud_top_height_works_on_both_paths(tmp_path):
     assert 400 < np.nanmin(top) and np.nanmax(top) < 650 and np.nanstd(top) > 0.1
     batch.screen_file(path, tmp_path / "b.nc", cfg, chunk_rows=64)
     _compare(mem, xr.open_dataset(tmp_path / "b.nc"))
+
+
+def test_bias_removal_on_a_two_worker_cluster_equals_the_session(tmp_path):
+    """Blocks finish in any order on a cluster: the first pass's clear sky and sums must still
+    land in their own rows (found in review: they were paired with blocks by position)."""
+    cfg_file = tmp_path / "bias.toml"
+    cfg_file.write_text("[bias]\nremove = true\n")
+    path = SAMPLES / "night_front.nc"
+    mem = Session.open(path, merge_config({"bias": {"remove": True}}), journal=False).result_dataset()
+    out = tmp_path / "w.nc"
+    assert main(["screen", str(path), "--out", str(out), "--config", str(cfg_file), "--workers", "2",
+                 "--chunks", "23", "--quiet", "--no-edits"]) == 0
+    _compare(mem, xr.open_dataset(out))
+
+
+def test_csv_output_reports_the_bias_fit(tmp_path):
+    cfg = load_config()
+    small = SAMPLES / "night_front_small.csv"
+    a = batch.screen_file(small, tmp_path / "m.csv", cfg)
+    b = batch.screen_file(small, tmp_path / "m.nc", cfg)
+    assert np.isfinite(a["bias"]["11um"]["a"]) and a["bias"] == b["bias"]
+
+
+def test_a_scene_without_valid_night_pixels_is_screened_alike_on_both_paths(tmp_path):
+    """Night rows whose 11 µm is missing: no valid night pixel, so the night test does not run
+    — on the session's path and the batch path alike, saying why."""
+    df = pd.read_csv(SAMPLES / "night_front_small.csv")
+    night = df["row"] >= 20
+    df.loc[~night, "sol_zenith"] = 60.0
+    df.loc[night, "bt_11um"] = np.nan
+    path = tmp_path / "terminator.csv"
+    df.to_csv(path, index=False)
+    cfg = load_config()
+    mem = Session.open(path, cfg, journal=False).result_dataset()
+    assert "margin_night_fog_contrast" not in mem
+    assert "no valid night-time pixels" in mem.attrs["cloudsieve_notes"]
+    batch.screen_file(path, tmp_path / "t.nc", cfg, chunk_rows=16)
+    _compare(mem, xr.open_dataset(tmp_path / "t.nc"))
