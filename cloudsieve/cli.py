@@ -245,10 +245,15 @@ def cmd_screen(args):
         if out.exists() and not out.is_dir():
             raise SceneError(f"several scenes need --out to be a folder; '{out}' is a file")
         if not out.exists():
+            from .errors import OutputError
+
             if not out.parent.is_dir():
-                from .errors import OutputError
                 raise OutputError(f"folder '{out.parent}' does not exist; create it or choose another --out")
-            out.mkdir()
+            try:
+                out.mkdir()
+            except OSError as exc:  # read-only parent, /proc, a full disk
+                raise OutputError(f"cannot make the output folder '{out}' ({exc.strerror or exc}); "
+                                  "choose another --out") from None
     fmt = args.format or (None if not many else "netcdf")
     ext = {"netcdf": ".nc", "csv": ".csv", None: ".nc"}[fmt]
     if args.workers is not None and args.workers < 1:

@@ -3,7 +3,7 @@
 Checks that
 (a) the modules of ``physics`` import each other without a cycle,
 (b) ``physics`` imports nothing from ``cloudsieve`` or ``dashboard``,
-(c) ``cloudsieve`` imports nothing from ``dashboard`` (skipped while ``cloudsieve/`` does not exist).
+(c) ``cloudsieve`` imports nothing from ``dashboard`` but the Panel app, inside the serve command.
 
 Every ``import`` and ``from … import`` statement counts, also one inside a function or under
 ``if TYPE_CHECKING:`` (a deferred import still ties the modules together), and so does

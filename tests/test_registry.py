@@ -12,7 +12,7 @@ import pytest
 import xarray as xr
 
 from cloudsieve import batch
-from cloudsieve.codes import CLOUD, FLAG_BITS
+from cloudsieve.codes import CLOUD
 from cloudsieve.config import default_config, load_config, merge_config
 from cloudsieve.registry import REGISTRY, Margin, ScreeningTest, Tunable, bit_table, register, unregister
 from cloudsieve.session import Session
@@ -23,7 +23,9 @@ SMALL = SAMPLES / "night_front_small.csv"
 
 def test_bits_are_the_published_file_format():
     """test_bits values written since the first release (README, scene outputs): never renumbered."""
-    assert {name: bit for name, bit in bit_table().items() if name in REGISTRY or name in FLAG_BITS} == {
+    published = ("cold_departure", "split_window_excess", "texture", "night_fog_contrast", "warm_departure",
+                 "daylight_3p9um_unused", "analyst_clear", "analyst_cloud")
+    assert {name: bit for name, bit in bit_table().items() if name in published} == {
         "cold_departure": 1, "split_window_excess": 2, "texture": 4, "night_fog_contrast": 8, "warm_departure": 16,
         "daylight_3p9um_unused": 32, "analyst_clear": 64, "analyst_cloud": 128}
 
@@ -55,52 +57,52 @@ def _twelve_cold(inp, t):
 @pytest.fixture
 def toy():
     test = register(ScreeningTest(
-        "twelve_cold", bit=9, kind="cloud", channels=("12um",), label="12 µm cold",
+        "toy_twelve_cold", bit=15, kind="cloud", channels=("12um",), label="12 µm cold",
         help="Toy test: 12 µm colder than clear sky by more than the threshold [K].",
         long_name="toy: cold departure of the 12 um channel", tunable=Tunable("threshold", "K", (0.0, 30.0), 0.5),
         margin=_twelve_cold, defaults={"enabled": True, "threshold": {"sea": 1.0, "land": 1.0, "ice": 1.0}}))
     yield test
-    unregister("twelve_cold")
+    unregister("toy_twelve_cold")
 
 
 def test_a_new_test_reaches_config_screening_export_and_batch(toy, tmp_path):
     cfg = load_config()
-    assert cfg["tests"]["twelve_cold"]["threshold"]["sea"] == 1.0  # its defaults join the configuration
+    assert cfg["tests"]["toy_twelve_cold"]["threshold"]["sea"] == 1.0  # its defaults join the configuration
     session = Session.open(SMALL, cfg, journal=False)
     res = session.result
-    margin = res.margins["twelve_cold"]
+    margin = res.margins["toy_twelve_cold"]
     fired = margin > 0
     assert fired.any() and (~fired).any()
     np.testing.assert_allclose(margin, -res.departure["12um"] - 1.0)
-    bit = bit_table()["twelve_cold"]
-    assert bit == 1 << 9
+    bit = bit_table()["toy_twelve_cold"]
+    assert bit == 1 << 15
     np.testing.assert_array_equal((res.bits & bit) > 0, fired)
     assert np.all(res.mask[fired] == CLOUD)  # a cloud test: firing makes the pixel cloud
     ds = session.result_dataset()
-    assert "toy: cold departure" in ds["margin_twelve_cold"].attrs["long_name"]
-    assert "twelve_cold" in ds["test_bits"].attrs["flag_meanings"]
+    assert "toy: cold departure" in ds["margin_toy_twelve_cold"].attrs["long_name"]
+    assert "toy_twelve_cold" in ds["test_bits"].attrs["flag_meanings"]
     # the batch path writes the same
     out = tmp_path / "m.nc"
     batch.screen_file(SMALL, out, cfg)
     with xr.open_dataset(out) as got:
-        np.testing.assert_allclose(got["margin_twelve_cold"].values, ds["margin_twelve_cold"].values, atol=1e-6,
+        np.testing.assert_allclose(got["margin_toy_twelve_cold"].values, ds["margin_toy_twelve_cold"].values, atol=1e-6,
                                    equal_nan=True)
         np.testing.assert_array_equal(got["test_bits"].values, ds["test_bits"].values)
     batch.screen_file(SMALL, tmp_path / "m.csv", cfg)
-    assert "margin_twelve_cold" in pd.read_csv(tmp_path / "m.csv").columns
+    assert "margin_toy_twelve_cold" in pd.read_csv(tmp_path / "m.csv").columns
     # a user's configuration may tune it like any other test; retuning the session too
-    tuned = merge_config({"tests": {"twelve_cold": {"threshold": 300.0}}})
-    assert not (Session.open(SMALL, tuned, journal=False).result.margins["twelve_cold"] > 0).any()
-    session.set_threshold("twelve_cold", 300.0)
-    assert not (session.result.margins["twelve_cold"] > 0).any()
+    tuned = merge_config({"tests": {"toy_twelve_cold": {"threshold": 300.0}}})
+    assert not (Session.open(SMALL, tuned, journal=False).result.margins["toy_twelve_cold"] > 0).any()
+    session.set_threshold("toy_twelve_cold", 300.0)
+    assert not (session.result.margins["toy_twelve_cold"] > 0).any()
 
 
 def test_a_new_test_is_skipped_when_its_channel_is_absent(toy, tmp_path):
     path = tmp_path / "only11.csv"
     pd.read_csv(SMALL).drop(columns=["bt_12um"]).to_csv(path, index=False)
     res = Session.open(path, load_config(), journal=False).result
-    assert res.skipped["twelve_cold"] == "needs 12um"
-    assert "twelve_cold" not in res.margins
+    assert res.skipped["toy_twelve_cold"] == "needs 12um"
+    assert "toy_twelve_cold" not in res.margins
 
 
 def test_a_new_test_gets_a_slider_in_the_dashboard(toy):
@@ -110,10 +112,10 @@ def test_a_new_test_gets_a_slider_in_the_dashboard(toy):
 
     model = ScreeningModel.open(SMALL, load_config(), journal=False)
     panel = TuningPanel(model, Notices())
-    slider = panel.sliders["twelve_cold"]
+    slider = panel.sliders["toy_twelve_cold"]
     assert slider.end == 30.0 and slider.value == 1.0
-    model.set_threshold("twelve_cold", 300.0)
-    assert not (model.result.margins["twelve_cold"] > 0).any()
+    model.set_threshold("toy_twelve_cold", 300.0)
+    assert not (model.result.margins["toy_twelve_cold"] > 0).any()
 
 
 def test_the_readme_table_of_tests_is_the_registry():

@@ -1,6 +1,6 @@
 """Messages for the analyst, and the guard that turns exceptions into them.
 
-Our own errors (:class:`dashboard.errors.CloudsieveError`) carry a message that says how to
+Our own errors (:class:`cloudsieve.errors.CloudsieveError`) carry a message that says how to
 fix the input; it is shown as it is. Anything else is a bug: the page shows one short line,
 the server log gets the traceback, and the app stays usable.
 """

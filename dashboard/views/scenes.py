@@ -2,7 +2,7 @@
 
 Neither opens files by itself: the picker hands a name to the session, which resolves it
 inside the data folder; the upload box validates the uploaded bytes and hands over a
-checked :class:`dashboard.scene.Scene`.
+checked :class:`cloudsieve.scene.Scene`.
 """
 import asyncio
 import functools
