@@ -170,8 +170,9 @@ class Journal:
         """Edits in force, in order (those not undone)."""
         with self._lock:
             self._refresh()
-        undone = {e["target"] for e in self.entries if e["action"] == "undo"}
-        return [e for e in self.entries if e["action"] in ACTIONS and e["id"] not in undone]
+            entries = list(self.entries)  # a snapshot: another thread's refresh may rebuild the list
+        undone = {e["target"] for e in entries if e["action"] == "undo"}
+        return [e for e in entries if e["action"] in ACTIONS and e["id"] not in undone]
 
     def listing(self):
         """(time, count, action) of the active edits, newest first."""
