@@ -218,9 +218,64 @@ class Diagnostics(Viewer):
         # a flex box: on a laptop-width window the plots wrap onto more rows instead of being
         # cut off at the right edge
         self._layout = pn.FlexBox(
-            DepartureHistogram(model), SplitWindowScatter(model), BiasFitPlot(model),
+            DepartureHistogram(model), SplitWindowScatter(model), BiasFitPlot(model), SigmaCalibration(model),
             pn.Column(SceneSummary(model), width=520),
             flex_wrap="wrap", align_items="flex-start", sizing_mode="stretch_width")
 
     def __panel__(self):
         return self._layout
+
+
+class SigmaCalibration(_ModelPlot):
+    """Clear pixels' departures over their σ, per surface, against a unit normal; σ proposed
+    from the scene (shown, never applied by itself)."""
+
+    def __init__(self, model, **params):
+        super().__init__(model, **params)
+        self._table = pn.pane.Markdown(pn.bind(self.table, version=model.param.version), width=520,
+                                       css_classes=["cs-calibration"])
+
+    def __panel__(self):
+        return pn.Column(self._pane, self._table)
+
+    def _calibration(self):
+        from cloudsieve.calibration import session_calibration
+
+        return session_calibration(self.model.session)
+
+    def plot(self, version=None):
+        from scipy import stats
+
+        from cloudsieve.calibration import Z_EDGES
+
+        ch, cal = self._calibration()
+        zd = hv.Dimension("z", label=f"(observed − clear − bias line) / σ, {channel_label(ch)}", unit="1")
+        yd = hv.Dimension("density", label="probability density")
+        grid = np.linspace(Z_EDGES[0], Z_EDGES[-1], 241)
+        layers = [hv.Curve((grid, stats.norm.pdf(grid)), kdims=[zd], vdims=[yd], label="unit normal")
+                  .opts(color="#f4f6f8", line_dash="dashed", line_width=2)]
+        colours = {"sea": "#56B4E9", "land": "#E69F00", "ice": "#F0E442"}
+        for name, c in cal.items():
+            layers.append(hv.Histogram((Z_EDGES, c.z_density), kdims=[zd], vdims=[yd],
+                                       label=f"{name} (spread {c.z_spread:.2f})")
+                          .opts(fill_alpha=0.0, line_color=colours[name], line_width=2))
+        return hv.Overlay(layers).opts(
+            title="Clear pixels against their σ (a right σ gives the unit normal)", frame_width=520,
+            frame_height=240, bgcolor=_DARK, legend_position="right", toolbar="above", show_grid=False)
+
+    def table(self, version=None):
+        from cloudsieve.calibration import proposal_toml
+
+        ch, cal = self._calibration()
+        unc = self.model.config["clear_sky_uncertainty"]
+        if not cal:
+            return "Too few clear pixels on any surface to judge the clear-sky σ."
+        rows = ["| surface | clear pixels | bias a [K] | b [K per kg m⁻²] | spread of dep./σ | σ base [K] "
+                "now → fitted | σ per path [K per kg m⁻²] now → fitted |", "|---|---|---|---|---|---|---|"]
+        for name, c in cal.items():
+            rows.append(f"| {name} | {c.pixels:,} | {c.bias_a:+.2f} | {c.bias_b:+.4f} | **{c.z_spread:.2f}** | "
+                        f"{unc['base'][name]:.2f} → {c.base:.2f} | {unc['per_path'][name]:.4f} → {c.per_path:.4f} |")
+        return ("\n".join(rows) + "\n\nA spread above 1: the background is worse than the configuration assumes "
+                "(false alarms follow); below 1: the cold test could be sharper. σ fitted to this scene's clear "
+                "pixels, **not applied** — to use it, put this in a configuration file (`--config`):\n\n"
+                "```toml\n" + proposal_toml(cal, self.model.config) + "```")

@@ -1,0 +1,90 @@
+"""Calibration of the clear-sky uncertainty: normalised clear departures and σ fitted to a scene.
+
+The truths here are statistical, from outside the project: normal deviates of a known σ
+(numpy's generator) and the normal distribution's quartile from scipy.stats.
+"""
+from pathlib import Path
+import tomllib
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from cloudsieve.calibration import MAD_TO_SIGMA, calibrate, proposal_toml, robust_std, session_calibration
+from cloudsieve.codes import CLOUD
+from cloudsieve.config import load_config, merge_config
+from cloudsieve.session import Session
+
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
+
+
+def test_mad_constant_is_the_normal_quartile():
+    # 1/Φ⁻¹(3/4) (scipy.stats.norm), the consistency constant of the MAD for a normal population
+    assert MAD_TO_SIGMA == pytest.approx(1 / stats.norm.ppf(0.75), rel=1e-12)
+    rng = np.random.default_rng(1)
+    assert robust_std(rng.normal(5.0, 2.0, 400_000)) == pytest.approx(2.0, rel=0.01)
+
+
+def _population(n=60_000, seed=2, base=0.35, per_path=0.012, leak=0.02):
+    """Clear sea pixels with σ² = base² + (per_path·x)², a bias line, and a few cloud leaks."""
+    rng = np.random.default_rng(seed)
+    x = rng.uniform(10.0, 120.0, n)
+    sig = np.sqrt(base**2 + (per_path * x) ** 2)
+    d = 0.2 + 0.003 * x + rng.normal(0.0, 1.0, n) * sig
+    d[rng.random(n) < leak] -= 6.0  # thin cloud that slipped through
+    shape = (1, n)
+    fields = {"slant_path": x.reshape(shape), "surface": np.zeros(shape, np.int8), "valid": np.ones(shape, bool),
+              "bits": np.zeros(shape, np.uint16)}
+    return d.reshape(shape), sig.reshape(shape), fields
+
+
+def test_the_right_sigma_gives_unit_spread_and_is_recovered():
+    d, sig, f = _population()
+    mask = np.zeros(d.shape, np.int8)
+    cal = calibrate(d, sig, f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
+    assert cal.z_spread == pytest.approx(1.0, abs=0.04)
+    assert cal.bias_b == pytest.approx(0.003, abs=0.001)
+    assert cal.base == pytest.approx(0.35, rel=0.15)
+    assert cal.per_path == pytest.approx(0.012, rel=0.10)
+    # a configuration that assumes half the true σ shows a spread of 2
+    half = calibrate(d, sig / 2, f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
+    assert half.z_spread == pytest.approx(2.0, abs=0.1)
+
+
+def test_the_cold_cut_of_the_screening_does_not_bias_the_spread():
+    d, sig, f = _population(leak=0.0)
+    r = d - (0.2 + 0.003 * f["slant_path"])
+    mask = np.where(r < -3 * sig, CLOUD, 0).astype(np.int8)  # what the cold-departure test removes
+    cal = calibrate(d, sig, f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
+    assert cal.z_spread == pytest.approx(1.0, abs=0.04)
+
+
+def test_a_scene_calibration_and_its_proposal_are_usable():
+    session = Session.open(SAMPLES / "day_coast.nc", load_config(), journal=False)
+    ch, cal = session_calibration(session)
+    assert ch == "11um" and set(cal) <= {"sea", "land", "ice"} and cal
+    for c in cal.values():
+        assert c.pixels >= 100 and np.isfinite(c.z_spread) and c.base >= 0 and c.per_path >= 0
+    text = proposal_toml(cal, session.config)
+    cfg = merge_config(tomllib.loads(text))  # the proposal is a valid configuration
+    for s, c in cal.items():
+        assert cfg["clear_sky_uncertainty"]["base"][s] == pytest.approx(c.base, abs=0.005)
+
+
+def test_the_diagnostics_show_the_calibration_and_the_proposal():
+    """The dashboard's calibration card draws the unit normal and each surface, and shows the
+    proposal as a configuration to copy (not applied)."""
+    import holoviews as hv
+
+    from dashboard.model import ScreeningModel
+    from dashboard.views.diagnostics import SigmaCalibration
+
+    model = ScreeningModel.open(SAMPLES / "day_coast.nc", load_config(), journal=False)
+    view = SigmaCalibration(model)
+    plot = view.plot()
+    labels = [el.label for el in plot]
+    assert "unit normal" in labels and any(lab.startswith("land (spread") for lab in labels)
+    text = view.table()
+    assert "[clear_sky_uncertainty]" in text and "not applied" in text
+    assert "| land |" in text and "1.50 →" in text  # the configured land σ base beside the fitted one
+    assert isinstance(plot, hv.Overlay)
