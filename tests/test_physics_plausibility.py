@@ -172,3 +172,50 @@ def test_layer_absorber_amounts_sum_to_the_columns():
     assert_allclose(x[..., 2].sum(axis=-1), column_water_vapour(prof.pressure, prof.specific_humidity), rtol=1e-12)
     ps, top = prof.pressure[..., 0], prof.pressure[..., -1]
     assert_allclose(x[..., 3].sum(axis=-1), (ps**2 - top**2) / 1013.25**2, rtol=1e-12)
+
+
+#: From memory: in warm, moist atmospheres the 11 µm atmospheric correction T_s − T11 at nadir
+#: grows by about 0.10–0.18 K per kg m⁻² of precipitable water (the range quoted in the
+#: split-window sea-surface-temperature literature; no table at hand to cite).
+DEFICIT_SLOPE_RANGE = (0.10, 0.18)
+
+
+def _deficit_slope(table):
+    """Slope of T_s − T11 [K] against water vapour [kg m⁻²]: 298 K air over a black surface at
+    the air temperature, nadir, 10–50 kg m⁻², with the absorption coefficients of ``table``."""
+    from physics.absorption import channel_coefficients
+
+    tcwv = np.array([10.0, 20.0, 30.0, 40.0, 50.0])
+    t_air = np.full(tcwv.shape, 298.0)
+    prof = profile_from_surface(t_air, tcwv)
+    sky = simulate_clear_sky(prof, t_air, np.ones(tcwv.shape + (len(channels()),)), np.zeros(tcwv.shape),
+                             channels(), channel_coefficients(channels(), table))
+    return float(np.polyfit(tcwv, t_air - sky.brightness_temperature[:, I11], 1)[0])
+
+
+def _scaled_continuum(factor):
+    import copy
+
+    table = copy.deepcopy(absorption_table())
+    sc = table["self_continuum"]
+    for key in ("a", "b"):
+        sc[key]["value"] *= factor
+    sc["outside_k296"]["value"] = [v * factor for v in sc["outside_k296"]["value"]]
+    return table
+
+
+def test_window_deficit_slope_per_water_vapour():
+    slope = _deficit_slope(absorption_table())
+    lo, hi = DEFICIT_SLOPE_RANGE
+    assert lo <= slope <= hi, slope
+    # the configuration's clear-sky σ (cloudsieve/data/default_config.toml, [clear_sky_uncertainty])
+    # is reasoned from "dT/dW of ~0.13 K per kg m-2 at 11 um": the physics must give it
+    assert slope == pytest.approx(0.13, rel=0.15)
+
+
+@pytest.mark.parametrize("factor", [0.5, 2.0])
+def test_the_slope_check_rejects_a_halved_or_doubled_continuum(factor):
+    """The window of the slope check is narrow enough to matter: with the self continuum halved
+    or doubled (the water-vapour absorber that dominates the 11 µm window) the slope leaves it."""
+    lo, hi = DEFICIT_SLOPE_RANGE
+    assert not lo <= _deficit_slope(_scaled_continuum(factor)) <= hi
