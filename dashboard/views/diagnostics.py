@@ -122,16 +122,24 @@ class SplitWindowScatter(_ModelPlot):
             legend_position="top_left", show_grid=False, toolbar="above", active_tools=["pan"])
 
 
-class BiasFitPlot(_ModelPlot):
-    """Departure against slant water-vapour path W·secθ over clear pixels, with each fit line."""
+class _PlotWithTable(_ModelPlot):
+    """A model plot with a Markdown table (``table``) below it, both redrawn with the results."""
+
+    table_css = "cs-table"
 
     def __init__(self, model, **params):
         super().__init__(model, **params)
         self._table = pn.pane.Markdown(pn.bind(self.table, version=model.param.version), width=520,
-                                       css_classes=["cs-bias-table"])
+                                       css_classes=[self.table_css])
 
     def __panel__(self):
         return pn.Column(self._pane, self._table)
+
+
+class BiasFitPlot(_PlotWithTable):
+    """Departure against slant water-vapour path W·secθ over clear pixels, with each fit line."""
+
+    table_css = "cs-bias-table"
 
     def plot(self, version=None):
         m = self.model
@@ -226,17 +234,11 @@ class Diagnostics(Viewer):
         return self._layout
 
 
-class SigmaCalibration(_ModelPlot):
+class SigmaCalibration(_PlotWithTable):
     """Clear pixels' departures over their σ, per surface, against a unit normal; σ proposed
     from the scene (shown, never applied by itself)."""
 
-    def __init__(self, model, **params):
-        super().__init__(model, **params)
-        self._table = pn.pane.Markdown(pn.bind(self.table, version=model.param.version), width=520,
-                                       css_classes=["cs-calibration"])
-
-    def __panel__(self):
-        return pn.Column(self._pane, self._table)
+    table_css = "cs-calibration"
 
     def _calibration(self):
         from cloudsieve.calibration import session_calibration
