@@ -239,11 +239,15 @@ class SigmaCalibration(_PlotWithTable):
     from the scene (shown, never applied by itself)."""
 
     table_css = "cs-calibration"
+    _cached = (None, None)  # (model version, calibration)
 
     def _calibration(self):
+        """The session's calibration, computed once per result (the plot and the table share it)."""
         from cloudsieve.calibration import session_calibration
 
-        return session_calibration(self.model.session)
+        if self._cached[0] != self.model.version:
+            self._cached = (self.model.version, session_calibration(self.model.session))
+        return self._cached[1]
 
     def plot(self, version=None):
         from scipy import stats
