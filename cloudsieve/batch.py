@@ -145,7 +145,7 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     cfg, chset = plan.config, plan.chset
     names = chset.names
     valid = fields["valid"]
-    emis = surface_emissivity(fields, names, cfg)
+    emis = surface_emissivity(fields, chset, cfg)
     if clear is None:
         idx = np.flatnonzero(valid.ravel())
         res = simulate_columns(gather_columns(fields, emis, idx), chset, cfg["simulation"])

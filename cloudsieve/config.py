@@ -104,6 +104,14 @@ def _check_values(cfg, problems):
         ok = isinstance(spec, dict) and set(spec) == {"centre", "width"} and all(
             isinstance(v, (int, float)) and not isinstance(v, bool) for v in spec.values())
         need(ok, f"'channels.{name}' must be a table {{ centre = <cm-1>, width = <cm-1> }}; got {spec!r}.")
+    angle = cfg["surface"]["sea_view_angle"]
+    need(angle["model"] in ("fixed", "fresnel"),
+         f"'surface.sea_view_angle.model' must be \"fixed\" or \"fresnel\"; got {angle['model']!r}.")
+    nodes = [angle[key] for key in ("wavelength", "n", "k")]
+    need(len({len(v) for v in nodes}) == 1 and len(nodes[0]) >= 2
+         and all(isinstance(x, (int, float)) for v in nodes for x in v)
+         and all(b > a for a, b in zip(nodes[0], nodes[0][1:])) and min(nodes[1]) >= 1.0 and min(nodes[2]) >= 0.0,
+         "'surface.sea_view_angle' needs lists wavelength [um, increasing], n [≥ 1] and k [≥ 0] of equal length ≥ 2.")
     need(0 <= cfg["screening"]["marginal_fraction"] <= 1, "'screening.marginal_fraction' must lie within 0–1.")
     need(0 <= cfg["screening"]["night_sun_zenith"] <= 120, "'screening.night_sun_zenith' must lie within 0–120°.")
     for test, table in cfg["tests"].items():

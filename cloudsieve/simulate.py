@@ -18,8 +18,9 @@ from physics.absorption import channel_coefficients
 from physics.atmosphere import profile_levels_first
 from physics.channels import default_channels
 from physics.clearsky import simulate_channel_major
+from physics.surface import emissivity_angle_factor
 
-from .codes import per_surface
+from .codes import SURFACE_CODES, per_surface
 from .config import absorption_table
 
 #: Above this many valid pixels the dashboard's simulation keeps no per-level data (≈ 0.8 kB
@@ -56,17 +57,37 @@ class ChannelSet:
         return cls(tuple(names), chans, channel_coefficients(chans, absorption_table(config)))
 
 
-def surface_emissivity(fields, channels, config):
+def surface_emissivity(fields, chset, config):
     """(n_ch, y, x) emissivity: ``emis_<ch>`` where the scene gives it, else the surface default.
 
-    ``fields`` is a mapping of (y, x) arrays holding ``surface`` and any ``emis_<ch>``.
+    Parameters
+    ----------
+    fields : mapping of (y, x) arrays
+        ``surface`` codes, ``sat_zenith`` [deg] and any ``emis_<ch>`` [1].
+    chset : ChannelSet
+    config : dict
+        ``[surface.emissivity]`` nadir values per surface type; with ``[surface.sea_view_angle]
+        model = "fresnel"`` the sea value is scaled by the smooth-water emissivity's fall with
+        view angle (physics.surface.emissivity_angle_factor) at the channel's central wavelength.
+
+    Returns
+    -------
+    ndarray (n_ch, y, x) [1]
     """
     codes = fields["surface"]
     table = config["surface"]["emissivity"]
+    angle = config["surface"]["sea_view_angle"]
     out = []
-    for ch in channels:
+    for chan in chset.channels:
+        ch = chan.name
         default = {s: table[s].get(ch, table[s].get("11um", 0.98)) for s in ("sea", "land", "ice")}
         e = per_surface(default, codes)
+        if angle["model"] == "fresnel":
+            wavelength = 1.0e4 / chan.central_wavenumber  # [um]
+            n = np.interp(wavelength, angle["wavelength"], angle["n"])
+            k = np.interp(wavelength, angle["wavelength"], angle["k"])
+            zen = np.nan_to_num(np.asarray(fields["sat_zenith"], dtype=float))
+            e = np.where(codes == SURFACE_CODES["sea"], e * emissivity_angle_factor(n, k, zen), e)
         given = fields.get(f"emis_{ch}")
         if given is not None:
             e = np.where(np.isfinite(given), given, e)
@@ -312,7 +333,7 @@ def simulate(scene, config, progress=None, levels=None):
     idx = np.flatnonzero(fields["valid"].ravel())
     if levels is None:
         levels = idx.size <= LEVELS_PIXEL_LIMIT
-    emis = surface_emissivity(fields, names, config)
+    emis = surface_emissivity(fields, chset, config)
     cols = gather_columns(fields, emis, idx)
     res = simulate_columns(cols, chset, config["simulation"], levels=levels,
                            threads=max(1, int(config["simulation"].get("threads", 1))), progress=progress)
@@ -337,7 +358,7 @@ class ColumnSimulator:
         self.fields = scene_fields(scene.data)
         self.chset = ChannelSet.for_scene(tuple(scene.channels), config)
         self.sim_cfg = config["simulation"]
-        self.emis = surface_emissivity(self.fields, self.chset.names, config)
+        self.emis = surface_emissivity(self.fields, self.chset, config)
 
     def levels(self, idx):
         """(level pressure, level temperature, opaque radiance) of flat pixel indices ``idx``."""

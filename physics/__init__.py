@@ -10,6 +10,7 @@ absorption  channel-effective gas optical depths (water-vapour continuum, lines,
 transfer    Schwarzschild's equation along a slant path, level-to-space quantities
 clearsky    clear-sky simulation of channel radiances from a profile and a surface
 cloud       single-layer grey cloud: forward model and emissivity/optical-depth inversion
+surface     emissivity of a smooth water surface against view angle (Fresnel, Kirchhoff)
 fused       compiled float32 kernels of the clear-sky hot path, and the numpy/compiled dispatch
 
 No module here reads files, prints or imports a user-interface library. Every array
