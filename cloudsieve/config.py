@@ -22,7 +22,7 @@ TOP_PRESSURE_RANGE = (10.0, 1100.0)
 
 #: Tables whose keys are open (new channel names may be added)
 _OPEN_TABLES = {("channels",), ("surface", "emissivity", "sea"), ("surface", "emissivity", "land"),
-                ("surface", "emissivity", "ice"), ("absorption",)}
+                ("surface", "emissivity", "ice"), ("absorption",), ("instrument", "nedt")}
 
 
 def _read_toml_resource(package, name):
@@ -104,6 +104,14 @@ def _check_values(cfg, problems):
         ok = isinstance(spec, dict) and set(spec) == {"centre", "width"} and all(
             isinstance(v, (int, float)) and not isinstance(v, bool) for v in spec.values())
         need(ok, f"'channels.{name}' must be a table {{ centre = <cm-1>, width = <cm-1> }}; got {spec!r}.")
+    for key, table in cfg["background_errors"].items():
+        for surf, v in table.items():
+            need(isinstance(v, (int, float)) and v >= 0,
+                 f"'background_errors.{key}.{surf}' must be a number ≥ 0; got {v!r}.")
+    inst = cfg["instrument"]
+    need(150 <= inst["reference_temperature"] <= 350, "'instrument.reference_temperature' must lie within 150–350 K.")
+    for ch, v in dict(inst["nedt"], default=inst["nedt_default"]).items():
+        need(isinstance(v, (int, float)) and 0 < v <= 5, f"'instrument.nedt.{ch}' must lie within 0–5 K; got {v!r}.")
     angle = cfg["surface"]["sea_view_angle"]
     need(angle["model"] in ("fixed", "fresnel"),
          f"'surface.sea_view_angle.model' must be \"fixed\" or \"fresnel\"; got {angle['model']!r}.")

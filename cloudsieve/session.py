@@ -302,6 +302,37 @@ class Session:
                 "inputs": inputs, "channels": channels, "margins": margins, "cloud": cloud,
                 "curve": self.optical_depth_curve(row, col)}
 
+    def error_budget(self, row, col):
+        """The clear-sky error budget of one pixel (cloudsieve.uncertainty), for the inspector.
+
+        Returns dict with "components" (name -> label, σ of the input, unit), per channel the
+        contribution of each component [K], the noise [K] and the total σ [K], the dominant
+        component, and the σ of T11 − T12 [K] (None without both channels); None for a pixel
+        without data.
+        """
+        from .simulate import gather_columns, surface_emissivity
+        from .uncertainty import COMPONENTS, error_budget
+
+        ny, nx = self.result.mask.shape
+        flat = row * nx + col
+        fields = simulation.scene_fields(self.scene.data)
+        if not fields["valid"].ravel()[flat]:
+            return None
+        chset = self.sim.chset
+        idx = np.array([flat])
+        cols = gather_columns(fields, surface_emissivity(fields, chset, self.config), idx)
+        b = error_budget(cols, chset, self.config, fields["surface"].ravel()[idx])
+        labels = {key: (label, unit) for key, label, unit, _ in COMPONENTS}
+        out = {"components": {k: (labels[k][0], float(b.input_sigma[0, j]), labels[k][1])
+                              for j, k in enumerate(b.components)},
+               "channels": {}, "split_window": None if b.split_window is None else float(b.split_window[0])}
+        for i, ch in enumerate(b.channels):
+            contrib = {k: float(b.contribution[0, i, j]) for j, k in enumerate(b.components)}
+            parts = dict(contrib, noise=float(b.noise[0, i]))
+            out["channels"][ch] = {"contribution": contrib, "noise": float(b.noise[0, i]),
+                                   "total": float(b.total[0, i]), "dominant": max(parts, key=parts.get)}
+        return out
+
     def optical_depth_curve(self, row, col, taus=None):
         """Modelled brightness temperature against cloud optical depth at the pixel's top.
 

@@ -167,7 +167,7 @@ class ColumnResult:
     opaque_radiance: np.ndarray = None
 
 
-def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=None):
+def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=None, profile_options=None):
     """Simulate pixel columns chunk by chunk (the one column loop of cloudsieve).
 
     Parameters
@@ -181,6 +181,9 @@ def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=Non
     threads : int
         Chunks run on this many threads (each writes its own columns of the outputs).
     progress : callable(n_done, n_total), optional
+    profile_options : mapping, optional
+        Other parameters of the profile built from the surface numbers
+        (physics.atmosphere.profile_levels_first: ``lapse_rate`` [K m⁻¹], ``humidity_exponent`` [1]).
 
     Returns
     -------
@@ -203,7 +206,7 @@ def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=Non
             p, t, q = (np.ascontiguousarray(a[:, sl]) for a in cols.profiles)
         else:
             p, t, q = profile_levels_first(cols.t_air[sl], cols.tcwv[sl], cols.p_surf[sl], n_lev,
-                                           sim_cfg["top_pressure"], dtype=f32)
+                                           sim_cfg["top_pressure"], dtype=f32, **(profile_options or {}))
         r = simulate_channel_major(p, t, q, cols.t_skin[sl], np.ascontiguousarray(cols.emissivity[:, sl]),
                                    cols.sat_zenith[sl], chset.channels, chset.coefficients, levels=levels)
         out.radiance[:, sl] = r.radiance

@@ -112,7 +112,33 @@ class PixelInspector(Viewer):
         if info["class"] == "clear":
             out.append("\n<span class='cs-muted'>Clear pixel: no cloud retrieval; the curve below shows what a "
                        "grey cloud at the reference top would do.</span>")
+        out += self._budget_lines(pixel)
         return "\n".join(out)
+
+    def _budget_lines(self, pixel):
+        """The clear-sky error budget of the pixel: what each background error does to each channel."""
+        try:
+            budget = self.model.session.error_budget(*pixel)
+        except Exception as exc:  # noqa: BLE001 — shown in the page, never a traceback
+            self.notices.report(exc, "computing the clear-sky error budget")
+            return []
+        if budget is None:
+            return []
+        chans = list(budget["channels"])
+        lines = ["", "**Clear-sky error budget** (1 σ, K; background errors per surface from the configuration; "
+                 "not yet used by the tests)", "",
+                 "| source (σ) | " + " | ".join(channel_label(c) for c in chans) + " |",
+                 "|---|" + "---|" * len(chans)]
+        for key, (label, sigma, unit) in budget["components"].items():
+            cells = [f"{budget['channels'][c]['contribution'][key]:.2f}" for c in chans]
+            lines.append(f"| {label} ({sigma:g} {unit}) | " + " | ".join(cells) + " |")
+        lines.append("| instrument noise | " + " | ".join(f"{budget['channels'][c]['noise']:.2f}" for c in chans)
+                     + " |")
+        lines.append("| **total** | " + " | ".join(f"**{budget['channels'][c]['total']:.2f}**" for c in chans) + " |")
+        if budget["split_window"] is not None:
+            lines.append(f"\n11 − 12 µm difference: σ {budget['split_window']:.2f} K (errors common to both "
+                         "channels cancel).")
+        return lines
 
     def curve(self, pixel=None, version=None):
         tau_dim = hv.Dimension("tau", label="cloud optical depth (absorption)")

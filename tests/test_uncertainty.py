@@ -1,0 +1,94 @@
+"""The clear-sky error budget: Jacobians by re-simulated columns, instrument noise, correlations.
+
+Outside references: astropy's Planck function (the temperature dependence of a detector's
+noise-equivalent temperature), the analytic surface-temperature sensitivity of Schwarzschild's
+equation ε t_s B'(T_s)/B'(T) from the numpy reference simulation's surface transmittance, and
+the sign of the water-vapour sensitivity (common practice).
+"""
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from cloudsieve.config import load_config
+from cloudsieve.simulate import ChannelSet, Columns
+from cloudsieve.uncertainty import COMPONENTS, error_budget, noise_equivalent_temperature
+
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
+NAMES = ("3p9um", "8p6um", "11um", "12um")
+
+
+@pytest.fixture(scope="module")
+def chset():
+    return ChannelSet.for_scene(NAMES, load_config())
+
+
+@pytest.mark.parametrize("name, t", [("3p9um", 240.0), ("11um", 220.0), ("12um", 320.0)])
+def test_noise_equivalent_temperature_follows_the_planck_slope(chset, name, t):
+    """Constant radiance noise: NEΔT(T)/NEΔT(300 K) = B'(300 K)/B'(T), here from astropy's black
+    body at the channel's central wavenumber (monochromatic; the band correction moves it < 2 %)."""
+    import astropy.units as u
+    from astropy.modeling.physical_models import BlackBody
+
+    ch = chset.channels[NAMES.index(name)]
+    nu = ch.central_wavenumber / u.cm
+
+    def slope(temp):
+        bb = BlackBody(temperature=temp * u.K)
+        return (bb(nu.to(u.Hz, equivalencies=u.spectral())) - BlackBody(temperature=(temp - 0.01) * u.K)(
+            nu.to(u.Hz, equivalencies=u.spectral()))).value / 0.01
+
+    expected = 0.1 * slope(300.0) / slope(t)
+    assert noise_equivalent_temperature(ch, t, 0.1, 300.0) == pytest.approx(expected, rel=0.02)
+    if name == "3p9um":  # from memory: 3.9 µm noise grows about tenfold from 300 K to 240 K
+        assert noise_equivalent_temperature(ch, t, 0.1, 300.0) > 0.8
+
+
+def _columns(t_air, tcwv, zenith=0.0, emis=0.99):
+    f32 = np.float32
+    n = len(t_air)
+    return Columns(np.asarray(t_air, f32), np.asarray(tcwv, f32), np.full(n, 1013.25, f32), np.asarray(t_air, f32),
+                   np.full(n, zenith, f32), np.full((len(NAMES), n), emis, f32))
+
+
+def test_skin_temperature_sensitivity_is_the_analytic_one(chset):
+    """∂T/∂T_s = ε t_s B'(T_s)/B'(T): Schwarzschild's equation is linear in the surface emission;
+    t_s from the numpy reference simulation (float64), against the re-simulated float32 columns."""
+    from physics.atmosphere import profile_from_surface
+    from physics.clearsky import simulate_clear_sky
+
+    cfg = load_config()
+    t_air, tcwv = np.array([285.0, 295.0, 300.0]), np.array([10.0, 30.0, 50.0])
+    budget = error_budget(_columns(t_air, tcwv), chset, cfg, np.zeros(3, np.int8))
+    sky = simulate_clear_sky(profile_from_surface(t_air, tcwv), t_air, np.full((3, 4), 0.99), np.zeros(3),
+                             chset.channels, chset.coefficients)
+    k = COMPONENTS.index(next(c for c in COMPONENTS if c[0] == "skin_temperature"))
+    for i, ch in enumerate(chset.channels):
+        analytic = 0.99 * sky.surface_transmittance[:, i] * ch.radiance_derivative(t_air + 0.25) / \
+            ch.radiance_derivative(sky.brightness_temperature[:, i])
+        np.testing.assert_allclose(budget.jacobian[:, i, k], analytic, rtol=0.03, err_msg=ch.name)
+
+
+def test_water_vapour_cools_and_the_split_window_errors_are_correlated(chset):
+    cfg = load_config()
+    b = error_budget(_columns([298.0], [40.0]), chset, cfg, np.zeros(1, np.int8))
+    k = [c[0] for c in COMPONENTS].index("water_vapour")
+    i11, i12 = NAMES.index("11um"), NAMES.index("12um")
+    # common practice: more water vapour over a surface warmer than the air above it, colder window BT
+    assert b.jacobian[0, i11, k] < 0 and b.jacobian[0, i12, k] < b.jacobian[0, i11, k]
+    # the difference's σ: errors common to both channels cancel, so it is below the two σ's added
+    assert b.split_window[0] < np.hypot(b.total[0, i11], b.total[0, i12])
+    assert np.all(b.total >= b.noise) and np.all(b.contribution >= 0)
+
+
+def test_the_inspector_shows_the_budget():
+    from dashboard.model import ScreeningModel
+    from dashboard.views.focus import Focus
+    from dashboard.views.inspector import PixelInspector
+    from dashboard.views.notices import Notices
+
+    model = ScreeningModel.open(SAMPLES / "polar_ice.nc", load_config(), journal=False)
+    budget = model.session.error_budget(60, 70)
+    assert budget["channels"]["3p9um"]["noise"] > budget["channels"]["11um"]["noise"]  # cold scene
+    text = PixelInspector(model, Focus(model.result.mask.shape), Notices()).text((60, 70))
+    assert "Clear-sky error budget" in text and "instrument noise" in text and "11 − 12 µm difference" in text
