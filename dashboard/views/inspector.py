@@ -131,7 +131,11 @@ class PixelInspector(Viewer):
                  "|---|" + "---|" * len(chans)]
         for key, (label, sigma, unit) in budget["components"].items():
             cells = [f"{budget['channels'][c]['contribution'][key]:.2f}" for c in chans]
-            lines.append(f"| {label} ({sigma:g} {unit}) | " + " | ".join(cells) + " |")
+            if "(relative)" in label:
+                label, size = label.replace(" (relative)", ""), f"{100 * sigma:g} %"
+            else:
+                size = f"{sigma:g}" + ("" if unit == "1" else f" {unit}")
+            lines.append(f"| {label} ({size}) | " + " | ".join(cells) + " |")
         lines.append("| instrument noise | " + " | ".join(f"{budget['channels'][c]['noise']:.2f}" for c in chans)
                      + " |")
         lines.append("| **total** | " + " | ".join(f"**{budget['channels'][c]['total']:.2f}**" for c in chans) + " |")
