@@ -3,14 +3,12 @@
 give the same outcome — the same SceneError message, or the same report word for word, and
 for usable scenes the same Dataset.
 
-The bad inputs are the table of ``test_bad_inputs.py`` (run there through the CLI), plus
+The bad inputs are the table of ``scene_cases.py`` (run through the CLI in test_bad_inputs.py), plus
 cases where the two paths used to drift apart: text surface codes in Parquet, temperatures
 partly in °C, explicit profiles in NetCDF.
 
 Only :mod:`cloudsieve.scene`, :mod:`cloudsieve.config` and :mod:`cloudsieve.errors` are imported.
 """
-import ast
-from pathlib import Path
 
 import dask.array as da
 import numpy as np
@@ -22,55 +20,9 @@ import cloudsieve.scene as scene_mod
 from cloudsieve.config import load_config
 from cloudsieve.errors import SceneError
 from cloudsieve.scene import check_scene, load_scene
+from scene_cases import CASES, SAMPLES, table, written
 
-HERE = Path(__file__).resolve().parent
-SAMPLES = HERE.parent / "sample_scenes"
-SMALL = SAMPLES / "night_front_small.csv"
 CHUNK = 8  # grid rows per chunk on the lazy path
-
-
-def _bad_input_cases():
-    """``CASES`` of test_bad_inputs.py: (id, file name, maker, exit code, words of the message).
-
-    The module's definitions are run without its imports of the package (it imports the
-    CLI for its own tests; the cases need only their makers) and without its tests.
-    """
-    path = HERE / "test_bad_inputs.py"
-    tree = ast.parse(path.read_text(encoding="utf-8"), str(path))
-
-    def wanted(node):
-        if isinstance(node, (ast.Import, ast.ImportFrom)):
-            mods = [node.module or ""] if isinstance(node, ast.ImportFrom) else [a.name for a in node.names]
-            return not any(m.split(".")[0] in ("cloudsieve", "dashboard") for m in mods)
-        return not (isinstance(node, ast.FunctionDef) and node.name.startswith("test_"))
-
-    body = ast.Module([n for n in tree.body if wanted(n)], type_ignores=[])
-    namespace = {"__file__": str(path), "__name__": "_bad_input_cases"}
-    exec(compile(body, str(path), "exec"), namespace)  # noqa: S102 — our own test module
-    return namespace["CASES"]
-
-
-BAD_INPUTS = _bad_input_cases()
-
-
-def _table():
-    return pd.read_csv(SMALL)
-
-
-def _to_parquet(fn):
-    def make(path):
-        df = _table()
-        out = fn(df)
-        (df if out is None else out).to_parquet(path)
-    return make
-
-
-def _to_csv(fn):
-    def make(path):
-        df = _table()
-        out = fn(df)
-        (df if out is None else out).to_csv(path, index=False)
-    return make
 
 
 def _set(col, value, rows=slice(None)):
@@ -159,37 +111,37 @@ def _nc_dims_named_otherwise(ds):
 
 # (id, file name, maker, error expected, words the outcome must contain)
 NEW_CASES = [
-    ("Parquet surface desert on some rows", "s.parquet", _to_parquet(_set("surface", "desert", slice(None, None, 7))),
+    ("Parquet surface desert on some rows", "s.parquet", written(_set("surface", "desert", slice(None, None, 7)), "parquet"),
      True, ["'desert'", "sea, land or ice"]),
-    ("CSV surface desert on some rows", "s.csv", _to_csv(_set("surface", "desert", slice(None, None, 7))),
+    ("CSV surface desert on some rows", "s.csv", written(_set("surface", "desert", slice(None, None, 7))),
      True, ["'desert'", "sea, land or ice"]),
-    ("half of bt_11um in °C", "s.csv", _to_csv(_shift("bt_11um", -273.15, 0.5)), True,
+    ("half of bt_11um in °C", "s.csv", written(_shift("bt_11um", -273.15, 0.5)), True,
      ["bt_11um", "outside 150–350"]),
-    ("half of bt_11um in °C, Parquet", "s.parquet", _to_parquet(_shift("bt_11um", -273.15, 0.5)), True,
+    ("half of bt_11um in °C, Parquet", "s.parquet", written(_shift("bt_11um", -273.15, 0.5), "parquet"), True,
      ["bt_11um", "outside 150–350"]),
-    ("most of bt_11um in °C", "s.csv", _to_csv(_shift("bt_11um", -273.15, 0.6)), True, ["bt_11um", "°C", "273.15"]),
-    ("a tenth of t_air in °C", "s.csv", _to_csv(_shift("t_air", -273.15, 0.1)), True, ["t_air", "smallest"]),
-    ("tcwv in kg m-2 × 10", "s.csv", _to_csv(lambda d: d.__setitem__("tcwv", d["tcwv"] * 10)), True,
+    ("most of bt_11um in °C", "s.csv", written(_shift("bt_11um", -273.15, 0.6)), True, ["bt_11um", "°C", "273.15"]),
+    ("a tenth of t_air in °C", "s.csv", written(_shift("t_air", -273.15, 0.1)), True, ["t_air", "smallest"]),
+    ("tcwv in kg m-2 × 10", "s.csv", written(lambda d: d.__setitem__("tcwv", d["tcwv"] * 10)), True,
      ["tcwv", "divide by 10"]),
-    ("Parquet non-numeric cell", "s.parquet", _to_parquet(_set("t_skin", "warm", [4, 9])), True,
+    ("Parquet non-numeric cell", "s.parquet", written(_set("t_skin", "warm", [4, 9]), "parquet"), True,
      ["'warm'", "line(s) 6, 11"]),
-    ("Parquet duplicate grid position", "s.parquet", lambda p: pd.concat([_table(), _table().iloc[[3]]]).to_parquet(p),
+    ("Parquet duplicate grid position", "s.parquet", lambda p: pd.concat([table(), table().iloc[[3]]]).to_parquet(p),
      True, ["more than once"]),
-    ("Parquet ragged grid, rows dropped", "s.parquet", _to_parquet(lambda d: d.drop(index=[7, 8, 30])), False,
+    ("Parquet ragged grid, rows dropped", "s.parquet", written(lambda d: d.drop(index=[7, 8, 30]), "parquet"), False,
      ["ragged", "3 pixel(s) miss a required value"]),
-    ("Parquet fractional grid index", "s.parquet", _to_parquet(lambda d: d.__setitem__("col", d["col"] + 0.5)), True,
+    ("Parquet fractional grid index", "s.parquet", written(lambda d: d.__setitem__("col", d["col"] + 0.5), "parquet"), True,
      ["whole numbers"]),
-    ("Parquet true/false column", "s.parquet", _to_parquet(lambda d: d.__setitem__("tcwv", d["tcwv"] > 20)), True,
+    ("Parquet true/false column", "s.parquet", written(lambda d: d.__setitem__("tcwv", d["tcwv"] > 20), "parquet"), True,
      ["true/false"]),
-    ("Parquet surface as codes 0/1/2", "s.parquet", _to_parquet(lambda d: d.__setitem__("surface", 1)), False,
+    ("Parquet surface as codes 0/1/2", "s.parquet", written(lambda d: d.__setitem__("surface", 1), "parquet"), False,
      ["usable"]),
-    ("CSV missing and infinite cells", "s.csv", _to_csv(_holes), False, ["no_data", "36 pixel(s) miss"]),
-    ("Parquet missing and infinite cells", "s.parquet", _to_parquet(_holes), False,
+    ("CSV missing and infinite cells", "s.csv", written(_holes), False, ["no_data", "36 pixel(s) miss"]),
+    ("Parquet missing and infinite cells", "s.parquet", written(_holes, "parquet"), False,
      ["32 infinite value(s)", "36 pixel(s) miss"]),
-    ("CSV unused columns, lone emissivity", "s.csv", _to_csv(_unused_columns), False,
+    ("CSV unused columns, lone emissivity", "s.csv", written(_unused_columns), False,
      ["not used", "'emis_8p6um' given"]),
     ("CSV without the optional columns", "s.csv",
-     _to_csv(lambda d: d.drop(columns=["sol_zenith", "p_surf", "surface", "lat", "lon"])), False, ["usable"]),
+     written(lambda d: d.drop(columns=["sol_zenith", "p_surf", "surface", "lat", "lon"])), False, ["usable"]),
     ("NetCDF without the optional variables", "s.nc",
      _nc_edit(lambda ds: ds.drop_vars(["sol_zenith", "p_surf", "surface", "lat", "lon"])), False, ["usable"]),
     ("NetCDF with explicit profiles", "s.nc", _nc_cutout(profiles=True), False, ["usable"]),
@@ -246,7 +198,7 @@ def _make(tmp_path, name, make):
     return path
 
 
-@pytest.mark.parametrize("case", BAD_INPUTS, ids=[c[0] for c in BAD_INPUTS])
+@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
 def test_bad_input_same_outcome_on_both_paths(tmp_path, cfg, case):
     _, name, make, code, words = case
     (kind, text), a, _ = _same_on_both_paths(_make(tmp_path, name, make), cfg)
@@ -297,7 +249,7 @@ def test_netcdf_opened_lazily_in_row_chunks(tmp_path, cfg):
 
 def test_parquet_read_in_batches_gives_the_same_report(tmp_path, cfg, monkeypatch):
     """Cell, position and surface problems summed over batches (97 rows each) as over one table."""
-    df = _table()
+    df = table()
     df["t_skin"] = df["t_skin"].astype(str)
     df.loc[[5, 150, 151, 1500], "t_skin"] = "warm"
     df.loc[[20, 400, 1200], "surface"] = "desert"
@@ -315,7 +267,7 @@ def test_parquet_read_in_batches_gives_the_same_report(tmp_path, cfg, monkeypatc
 
 
 def test_range_errors_name_the_extreme_values(tmp_path, cfg):
-    df = _table()
+    df = table()
     df.loc[3, "sat_zenith"] = 85.0
     df.loc[7, "sat_zenith"] = 97.5
     df.loc[9, "sat_zenith"] = -2.0
