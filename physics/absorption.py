@@ -2,9 +2,10 @@
 
 Three absorbers matter in the infrared windows:
 
-1. the water-vapour continuum, self-broadened (∝ e·u, strongly temperature dependent) and
-   foreign-broadened (∝ (p − e)·u), in the empirical form of Roberts, Selby & Biberman
-   (1976), Appl. Opt. 15, 2085–2090;
+1. the water-vapour continuum, self-broadened (∝ e·u) and foreign-broadened (∝ (p − e)·u),
+   both with the temperature factor exp(T₀ (1/T − 1/296)), in the empirical form of
+   Roberts, Selby & Biberman (1976), Appl. Opt. 15, 2085–2090, as usually quoted:
+   k(ν, T) = k(ν, 296) exp(T₀ (1/T − 1/296)) times e + γ (p − e);
 2. water-vapour lines, as an effective mass absorption coefficient scaled by (p/p₀)ⁿ
    (band-model pressure scaling; approximate);
 3. well-mixed dry gases, as a column optical depth distributed in proportion to
@@ -139,7 +140,7 @@ def layer_absorber_amounts(pressure, temperature, specific_humidity, continuum_t
     Returns
     -------
     ndarray
-        Shape (..., n_layers, 4): u·(e/p₀)·f(T), u·((p − e)/p₀), u·(p/p₀)ⁿ, 2 p Δp / p₀²,
+        Shape (..., n_layers, 4): u·(e/p₀)·f(T), u·((p − e)/p₀)·f(T), u·(p/p₀)ⁿ, 2 p Δp / p₀²,
         with u the layer water vapour [kg m⁻²] and f(T) = exp(T₀ (1/T − 1/296)).
 
     Notes
@@ -174,9 +175,11 @@ def _absorber_amounts_levels_first(p, t, q, continuum_t0, line_pressure_exponent
     else:
         x = np.empty((4,) + p_lay.shape, dtype=dtype)
         terms = [x[i] for i in range(4)]
-    np.multiply(u * e * inv_p0, np.exp(f(continuum_t0) * (f(1.0) / t_lay - f(1.0 / CONTINUUM_REFERENCE_T))),
-                out=terms[0])
-    np.multiply(u, p_rel - e * inv_p0, out=terms[1])
+    # both continua carry the temperature factor f(T) = exp(T₀ (1/T − 1/296)): Roberts et al.
+    # (1976) as usually quoted, k(ν, T) = k(ν, 296) f(T) applied to e + γ (p − e)
+    u_f = u * np.exp(f(continuum_t0) * (f(1.0) / t_lay - f(1.0 / CONTINUUM_REFERENCE_T)))
+    np.multiply(u_f, e * inv_p0, out=terms[0])
+    np.multiply(u_f, p_rel - e * inv_p0, out=terms[1])
     np.multiply(u, np.exp(f(line_pressure_exponent) * np.log(p_rel)), out=terms[2])
     np.multiply(f(2.0) * p_rel, dp * inv_p0, out=terms[3])
     return x

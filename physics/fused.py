@@ -324,8 +324,9 @@ if numba is not None:
                     u = q_lay * dp * u_scale
                     e = q_lay * p_lay / (eps + one_minus_eps * q_lay)
                     p_rel = p_lay * inv_p0
-                    x_self[i] = u * e * inv_p0 * exp32(continuum_t0 * (_ONE / t_lay - inv_t_ref))
-                    x_for[i] = u * (p_rel - e * inv_p0)
+                    u_f = u * exp32(continuum_t0 * (_ONE / t_lay - inv_t_ref))  # both continua: f(T)
+                    x_self[i] = u_f * (e * inv_p0)
+                    x_for[i] = u_f * (p_rel - e * inv_p0)
                     x_line[i] = u  # times (p/p₀)ⁿ below
                     x_dry[i] = F(2.0) * p_rel * (dp * inv_p0)
                 # square-root scaling (n = ½, the data file's value) needs no exponential

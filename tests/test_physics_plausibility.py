@@ -141,7 +141,7 @@ def test_self_continuum_follows_roberts_form_inside_its_range():
 def test_layer_optical_depth_matches_the_data_file_formula():
     # the optical-depth formula stated in the header of physics/data/absorption.toml, written
     # out independently for every layer and channel:
-    # τ = u [K_self (e/p₀) f(T) + K_foreign ((p − e)/p₀) + K_line (p/p₀)ⁿ] + K_dry 2 p Δp / p₀²
+    # τ = u [(K_self (e/p₀) + K_foreign ((p − e)/p₀)) f(T) + K_line (p/p₀)ⁿ] + K_dry 2 p Δp / p₀²
     prof = profile_from_surface(296.0, 45.0)
     coef = coefficients()
     p0 = 1013.25
@@ -154,11 +154,26 @@ def test_layer_optical_depth_matches_the_data_file_formula():
     f_t = np.exp(coef.continuum_t0 * (1.0 / t - 1.0 / 296.0))
     expected = (
         u[:, None] * (coef.self_continuum * (e * f_t / p0)[:, None]
-                      + coef.foreign_continuum * ((p - e) / p0)[:, None]
+                      + coef.foreign_continuum * ((p - e) * f_t / p0)[:, None]
                       + coef.line * ((p / p0) ** coef.line_pressure_exponent)[:, None])
         + coef.dry_column * (2.0 * p * dp / p0**2)[:, None]
     )
     assert_allclose(layer_optical_depth(*prof, coef), expected, rtol=1e-12)
+
+
+def test_both_continua_carry_the_temperature_factor():
+    # Roberts, Selby & Biberman (1976) as usually quoted: k(ν, T) = k(ν, 296 K) exp(T₀ (1/T − 1/296))
+    # multiplies e + γ (p − e), so the self and the foreign term grow alike in cold air
+    # (T₀ = 1800 K: about 2 % per kelvin near 296 K); the line and dry-gas terms do not depend on T
+    t0 = coefficients().continuum_t0
+    p = np.array([1000.0, 900.0])
+    q = np.array([0.010, 0.008])
+    warm = layer_absorber_amounts(p, np.array([296.0, 296.0]), q, t0, 0.5)
+    cold = layer_absorber_amounts(p, np.array([260.0, 260.0]), q, t0, 0.5)
+    factor = np.exp(1800.0 * (1.0 / 260.0 - 1.0 / 296.0))  # ≈ 2.32
+    assert_allclose(cold[..., 0] / warm[..., 0], factor, rtol=1e-12)
+    assert_allclose(cold[..., 1] / warm[..., 1], factor, rtol=1e-12)
+    assert_allclose(cold[..., 2:], warm[..., 2:], rtol=1e-12)
 
 
 def test_layer_absorber_amounts_sum_to_the_columns():
