@@ -33,6 +33,7 @@ from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, resul
                      summary_row)
 from .simulate import (ChannelSet, clear_sky_source, gather_columns, level_chunk, simulate_columns, slant_path,
                        surface_emissivity, use_scene_clear_sky)
+from .uncertainty import sigma_grids
 
 DEFAULT_CHUNK_ROWS = export.CHUNK_ROWS
 #: Above this many pixels a NetCDF or Parquet scene is screened lazily (``cloudsieve screen``)
@@ -146,17 +147,20 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     names = chset.names
     valid = fields["valid"]
     emis = surface_emissivity(fields, chset, cfg)
+    idx = np.flatnonzero(valid.ravel())
+    cols = gather_columns(fields, emis, idx)
     if clear is None:
-        idx = np.flatnonzero(valid.ravel())
-        res = simulate_columns(gather_columns(fields, emis, idx), chset, cfg["simulation"])
+        res = simulate_columns(cols, chset, cfg["simulation"])
         use_scene_clear_sky(res, fields, chset, idx)
         clear = np.full((len(names),) + valid.shape, np.nan, np.float32)
         clear.reshape(len(names), -1)[:, idx] = res.brightness_temperature
+    sigma = sigma_grids(cols, fields["surface"].ravel()[idx], clear.reshape(len(names), -1)[:, idx], chset, cfg, idx,
+                        valid.shape)
     path = slant_path(fields["tcwv"], fields["sat_zenith"])
     obs = {c: fields[f"bt_{c}"] for c in names}
     screen_fields = {"surface": fields["surface"], "valid": valid, "sol_zenith": fields["sol_zenith"],
                      "slant_path": path}
-    scr = screen_arrays(obs, {c: clear[i] for i, c in enumerate(names)}, screen_fields, cfg, plan.bias, edits,
+    scr = screen_arrays(obs, {c: clear[i] for i, c in enumerate(names)}, screen_fields, cfg, sigma, plan.bias, edits,
                         plan.tests)
     core = slice(spec.start - spec.lo, spec.stop - spec.lo)
     mask, bits = scr.mask[core], scr.bits[core]
@@ -173,9 +177,9 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
         r = simulate_columns(gather_columns(core_fields, emis[:, core], part), chset, cfg["simulation"], levels=True)
         invert_pixels(cloud, part, {c: v[core] for c, v in obs.items()}, {c: clear[i, core] for i, c in enumerate(names)},
                       (r.level_pressure, r.level_temperature, r.opaque_radiance), fields["sat_zenith"][core],
-                      scr.sigma[core], chset, cfg, path[core], bias_line)
+                      {c: v[core] for c, v in sigma.items()}, chset, cfg, path[core], bias_line)
     result = export.ResultBlock(spec.start, clear[:, core], departure, {t: m[core] for t, m in scr.margins.items()},
-                                mask, bits, cloud)
+                                mask, bits, cloud, {c: sigma[c][core] for c in names})
     variables = export.block_variables(result, plan.header)
     encoded = export.encode_block(spec.start, variables, plan.layout, plan.fmt, plan.chunk_rows, extra=sums)
     return BlockOutcome(spec.start, spec.stop, sums, encoded)

@@ -5,7 +5,8 @@ pixels classed clear, divided by their σ, spread like a unit normal (after the 
 line is taken off). A spread well above 1 means the background is worse than the
 configuration assumes (false alarms follow); well below 1, the cold-departure test is less
 sensitive than it could be. :func:`calibrate` reports the spread per surface type and proposes
-``[clear_sky_uncertainty]`` values fitted to the scene's clear pixels; nothing is applied.
+a factor on that surface's ``[background_errors]`` (and ``[background_noise]``) that makes the
+clear pixels' spread fit, given the instrument noise, which is known; nothing is applied.
 
 The clear population is cut at −k·σ by the cold-departure test itself, so the spread is
 estimated robustly (1.4826 × the median absolute deviation, exact for a normal population and
@@ -14,7 +15,6 @@ blind to a one-sided cut beyond 3σ and to a few cloudy pixels that slipped thro
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import nnls
 
 from .codes import CLEAR, SURFACES
 from .registry import bit_table
@@ -42,9 +42,8 @@ class SurfaceCalibration:
     bias_a [K], bias_b [K per kg m⁻²] : the bias line of this surface's clear departures
     z_spread : robust spread of (departure − bias line)/σ [1] (1 where σ is right)
     z_mean : mean of (departure − bias line)/σ [1]
-    base [K], per_path [K per kg m⁻²] : proposed ``[clear_sky_uncertainty]`` values, fitted so
-        that σ² = base² + (per_path · W secθ)² matches the spread in bins of slant path (NaN
-        with too few pixels)
+    factor : proposed factor f on this surface's background errors [1]: the departures divided
+        by √(f² σ_bg² + NEΔT²) have unit robust spread (σ² = σ_bg² + NEΔT² as configured)
     z_density : probability density of (departure − bias line)/σ in the bins of ``Z_EDGES``
         (values beyond them in the end bins) [1]
     """
@@ -55,25 +54,23 @@ class SurfaceCalibration:
     bias_b: float
     z_spread: float
     z_mean: float
-    base: float
-    per_path: float
+    factor: float
     z_density: np.ndarray
 
 
-def calibrate(departure, sigma, slant_path, surface, mask, bits, valid, min_pixels=100, bins=8):
+def calibrate(departure, sigma, noise, slant_path, surface, mask, bits, valid, min_pixels=100):
     """Per surface type: how (observed − clear)/σ of clear pixels spreads, and σ fitted to them.
 
     Parameters
     ----------
     departure : (y, x) observed − clear of the window channel, before any bias removal [K]
     sigma : (y, x) clear-sky 1-σ the screening used [K]
+    noise : (y, x) its instrument-noise part [K]
     slant_path : (y, x) W·secθ [kg m⁻²]
     surface : (y, x) surface codes; mask, bits : the screening's classes and test bits
     valid : (y, x) bool
     min_pixels : int
         Fewer clear pixels of a surface than this: no figures for it.
-    bins : int
-        Slant-path bins (equal counts) for the σ fit.
 
     Returns
     -------
@@ -86,36 +83,40 @@ def calibrate(departure, sigma, slant_path, surface, mask, bits, valid, min_pixe
         n = int(sel.sum())
         if n < min_pixels:
             continue
-        d, x, s = departure[sel].astype(float), np.nan_to_num(slant_path[sel].astype(float)), sigma[sel]
+        d, x = departure[sel].astype(float), np.nan_to_num(slant_path[sel].astype(float))
+        s, nz = sigma[sel].astype(float), noise[sel].astype(float)
         if np.ptp(x) > 1e-9:
             b, a = np.polyfit(x, d, 1)
         else:
             a, b = float(np.median(d)), 0.0
         r = d - (a + b * x)
         z = r / s
-        base, per_path = _fit_sigma(r, x, bins)
+        factor = _fit_factor(r, np.maximum(s * s - nz * nz, 0.0), nz * nz)
         density, _ = np.histogram(np.clip(z, Z_EDGES[0], Z_EDGES[-1]), Z_EDGES, density=True)
-        out[name] = SurfaceCalibration(name, n, float(a), float(b), robust_std(z), float(np.mean(z)), base, per_path,
+        out[name] = SurfaceCalibration(name, n, float(a), float(b), robust_std(z), float(np.mean(z)), float(factor),
                                        density)
     return out
 
 
-def _fit_sigma(residual, path, bins):
-    """(base, per_path) of σ² = base² + (per_path·x)² from robust spreads in bins of x (non-negative)."""
-    edges = np.unique(np.quantile(path, np.linspace(0, 1, bins + 1)))
-    rows, rhs = [], []
-    for lo, hi in zip(edges[:-1], edges[1:]):
-        inside = (path >= lo) & (path <= hi)
-        if inside.sum() < 20:
-            continue
-        xm = float(np.median(path[inside]))
-        rows.append([1.0, xm * xm])
-        rhs.append(robust_std(residual[inside]) ** 2)
-    if len(rows) < 2:
-        s = robust_std(residual)
-        return s, 0.0
-    (b2, c2), _ = nnls(np.asarray(rows), np.asarray(rhs))
-    return float(np.sqrt(b2)), float(np.sqrt(c2))
+def _fit_factor(residual, var_bg, var_noise):
+    """f ≥ 0 with robust_std(residual / √(f² var_bg + var_noise)) = 1 (NaN without a background part).
+
+    The spread falls as f grows, so the root is bracketed and found by Brent's method; a spread
+    below 1 even at f = 0 (the noise alone explains it) gives 0."""
+    from scipy.optimize import brentq
+
+    if not np.any(var_bg > 0):
+        return float("nan")
+
+    def excess(f):
+        return robust_std(residual / np.sqrt(f * f * var_bg + var_noise + 1e-12)) - 1.0
+
+    if excess(0.0) <= 0:
+        return 0.0
+    hi = 1.0
+    while excess(hi) > 0 and hi < 1e3:
+        hi *= 2.0
+    return float(brentq(excess, 0.0, hi, xtol=1e-3))
 
 
 def session_calibration(session):
@@ -126,21 +127,26 @@ def session_calibration(session):
     ch = window_channel(sim.channels, session.config)
     i = sim.channels.index(ch)
     raw = ds[f"bt_{ch}"].values - sim.bt_clear[i]  # before any bias removal
-    return ch, calibrate(raw, res.sigma_clear, sim.slant_path, ds["surface"].values, res.mask, res.bits,
-                         ds["valid"].values, session.config["bias"]["min_pixels"])
+    return ch, calibrate(raw, res.sigma_clear, sim.sigma[f"noise:{ch}"], sim.slant_path, ds["surface"].values,
+                         res.mask, res.bits, ds["valid"].values, session.config["bias"]["min_pixels"])
 
 
 def proposal_toml(calibration, config):
-    """The proposed ``[clear_sky_uncertainty]`` table as TOML text (surfaces without a fit keep
-    the configured value)."""
-    unc = config["clear_sky_uncertainty"]
+    """``[background_errors]`` and ``[background_noise]`` scaled per surface by the fitted factor,
+    as TOML text (surfaces without a fit keep the configured values)."""
+    def scaled(table, digits):
+        lines = []
+        for key, per in table.items():
+            vals = {}
+            for s in SURFACES:
+                c = calibration.get(s)
+                f = c.factor if c is not None and np.isfinite(c.factor) else 1.0
+                vals[s] = round(per[s] * f, digits)
+            lines.append(f"{key} = {{ " + ", ".join(f"{s} = {v:g}" for s, v in vals.items()) + " }")
+        return "\n".join(lines)
 
-    def table(key, fmt):
-        vals = {s: (getattr(calibration[s], key) if s in calibration and np.isfinite(getattr(calibration[s], key))
-                    else unc[key][s]) for s in SURFACES}
-        return "{ " + ", ".join(f"{s} = {format(v, fmt)}" for s, v in vals.items()) + " }"
-
-    return ("[clear_sky_uncertainty]\n"
-            "# fitted to the clear pixels of one scene: base [K], per_path [K per kg m-2 of W sec(theta)]\n"
-            f"base = {table('base', '.2f')}\n"
-            f"per_path = {table('per_path', '.4f')}\n")
+    factors = ", ".join(f"{s} × {c.factor:.2f}" for s, c in calibration.items() if np.isfinite(c.factor))
+    return ("# fitted to the clear pixels of one scene: the background errors scaled per surface "
+            f"({factors or 'no fit'})\n"
+            "[background_errors]\n" + scaled(config["background_errors"], 4) + "\n\n"
+            "[background_noise]\n" + scaled(config["background_noise"], 4) + "\n")

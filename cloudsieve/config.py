@@ -22,7 +22,22 @@ TOP_PRESSURE_RANGE = (10.0, 1100.0)
 
 #: Tables whose keys are open (new channel names may be added)
 _OPEN_TABLES = {("channels",), ("surface", "emissivity", "sea"), ("surface", "emissivity", "land"),
-                ("surface", "emissivity", "ice"), ("absorption",), ("instrument", "nedt")}
+                ("surface", "emissivity", "ice"), ("absorption",), ("instrument", "nedt"), ("background_noise",)}
+
+
+#: Keys of earlier versions and what replaced them (a user's old file gets this instead of "unknown key")
+_REPLACED = {
+    ("clear_sky_uncertainty",): "the clear-sky σ is now computed per pixel from [background_errors], "
+                                "[background_noise] and [instrument]; set those instead",
+    ("tests", "split_window_excess", "threshold"): "the split-window test's threshold is now k_sigma × the σ of "
+                                                   "the 11 − 12 µm difference; set 'tests.split_window_excess.k_sigma'",
+    ("tests", "split_window_excess", "per_path"): "the σ of the 11 − 12 µm difference grows with the water-vapour "
+                                                  "path by itself; set 'tests.split_window_excess.k_sigma'",
+    ("tests", "night_fog_contrast", "threshold"): "the night fog test's threshold is now k_sigma × the σ of the "
+                                                  "3.9 − 11 µm difference; set 'tests.night_fog_contrast.k_sigma'",
+    ("tests", "night_fog_contrast", "per_path"): "the σ of the 3.9 − 11 µm difference grows with the water-vapour "
+                                                 "path by itself; set 'tests.night_fog_contrast.k_sigma'",
+}
 
 
 def _read_toml_resource(package, name):
@@ -59,6 +74,10 @@ def _merge(base, override, path, problems):
         if key not in base:
             if path in _OPEN_TABLES or (path[:1] == ("absorption",)):
                 base[key] = value
+                continue
+            if here in _REPLACED:
+                problems.append(f"'{dotted}' is no longer used: {_REPLACED[here]} "
+                                "(`cloudsieve config --show` prints the defaults).")
                 continue
             close = [k for k in base if k.lower() == key.lower() or k.replace("_", "") == key.replace("_", "")]
             close = close or difflib.get_close_matches(key, [str(k) for k in base], n=1, cutoff=0.75)
@@ -108,6 +127,16 @@ def _check_values(cfg, problems):
         for surf, v in table.items():
             need(isinstance(v, (int, float)) and v >= 0,
                  f"'background_errors.{key}.{surf}' must be a number ≥ 0; got {v!r}.")
+    for key, table in cfg["background_noise"].items():
+        if not isinstance(table, dict):
+            table = cfg["background_noise"][key] = {s: table for s in SURFACES}
+        need(key in cfg["background_errors"], f"'background_noise.{key}': not an input of [background_errors] "
+             f"(one of {', '.join(cfg['background_errors'])}).")
+        for surf, v in table.items():
+            total = cfg["background_errors"].get(key, {}).get(surf, 0.0)
+            need(isinstance(v, (int, float)) and 0 <= v <= total,
+                 f"'background_noise.{key}.{surf}' must be a number within 0 and its total "
+                 f"'background_errors.{key}.{surf}' = {total}; got {v!r}.")
     inst = cfg["instrument"]
     need(150 <= inst["reference_temperature"] <= 350, "'instrument.reference_temperature' must lie within 150–350 K.")
     for ch, v in dict(inst["nedt"], default=inst["nedt_default"]).items():

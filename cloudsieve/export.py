@@ -102,6 +102,7 @@ class ResultBlock:
     margins : test -> (rows, x) [K]
     mask : (rows, x) int8 class codes; bits : (rows, x) uint16
     cloud : invert.CloudLayer of the rows (masked to non-clear pixels)
+    sigma : channel -> (rows, x) 1-σ uncertainty of the clear-sky brightness temperature [K]
     """
 
     start: int
@@ -111,6 +112,7 @@ class ResultBlock:
     mask: np.ndarray
     bits: np.ndarray
     cloud: object
+    sigma: dict
 
 
 @dataclass
@@ -162,6 +164,12 @@ def _coordinates_attr(coords):
     return " ".join(c for c in ("row", "col", "lat", "lon") if c in coords)
 
 
+def _uncertainty_attrs(ch):
+    return {"standard_name": "toa_brightness_temperature_assuming_clear_sky standard_error", "units": "K",
+            "long_name": f"1-sigma uncertainty of the clear-sky brightness temperature, {ch}: the pixel's "
+                         "Jacobians times the configured background errors, with the instrument noise"}
+
+
 def result_layout(h):
     """The :class:`Layout` of a screening result (variables, CF attributes, global attributes)."""
     bits = bit_table()
@@ -179,7 +187,9 @@ def result_layout(h):
             " (clear-sky bias removed)" if h.bias.get(ch, {}).get("applied") else ""), "units": "K"})
         v[f"bt_clear_{ch}"] = (np.float32, {"standard_name": "toa_brightness_temperature_assuming_clear_sky",
                                             "units": "K",
-                                            "long_name": f"clear-sky brightness temperature, {ch} ({h.source[ch]})"})
+                                            "long_name": f"clear-sky brightness temperature, {ch} ({h.source[ch]})",
+                                            "ancillary_variables": f"bt_clear_uncertainty_{ch}"})
+        v[f"bt_clear_uncertainty_{ch}"] = (np.float32, _uncertainty_attrs(ch))
     for ch in h.cloud_channels:
         v[f"cloud_emissivity_{ch}"] = (np.float32, {
             "long_name": f"emissivity of channel {ch} at the retrieved cloud top, unclipped: "
@@ -249,6 +259,7 @@ def block_variables(block, h):
     for i, ch in enumerate(h.channels):
         out[f"departure_{ch}"] = block.departure[ch]
         out[f"bt_clear_{ch}"] = block.bt_clear[i]
+        out[f"bt_clear_uncertainty_{ch}"] = block.sigma[ch]
     out.update({f"cloud_emissivity_{ch}": cl.emissivity[k] for k, ch in enumerate(h.cloud_channels)})
     out.update({"cloud_emissivity": np.clip(cl.emissivity[k_ref], 0.0, 1.0), "cloud_optical_depth": cl.optical_depth,
                 "cloud_optical_depth_uncertainty": cl.optical_depth_sigma,
@@ -276,7 +287,8 @@ def whole_scene_result(scene, sim, res, config, edits=None, action="screen"):
                      tuple(cl.channels), cl.method, res.bias, list(res.notes) + list(cl.notes), dict(res.skipped),
                      config, len(edits or []), action, ds["row"].values, ds["col"].values,
                      ds["lat"].values if has_latlon else None, ds["lon"].values if has_latlon else None)
-    block = ResultBlock(0, sim.bt_clear, res.departure, res.margins, res.mask, res.bits, cl)
+    block = ResultBlock(0, sim.bt_clear, res.departure, res.margins, res.mask, res.bits, cl,
+                        {ch: sim.sigma[ch] for ch in sim.channels})
     return h, block
 
 
@@ -606,7 +618,10 @@ def write_simulation(scene, sim, path, fmt=None):
     for i, ch in enumerate(sim.channels):
         out[f"bt_clear_{ch}"] = xr.Variable(("y", "x"), sim.bt_clear[i].astype(np.float32), {
             "standard_name": "toa_brightness_temperature_assuming_clear_sky", "units": "K",
-            "long_name": f"clear-sky brightness temperature, {ch} ({sim.source[ch]})"})
+            "long_name": f"clear-sky brightness temperature, {ch} ({sim.source[ch]})",
+            "ancillary_variables": f"bt_clear_uncertainty_{ch}"})
+        out[f"bt_clear_uncertainty_{ch}"] = xr.Variable(("y", "x"), sim.sigma[ch].astype(np.float32),
+                                                        _uncertainty_attrs(ch))
         out[f"departure_{ch}"] = xr.Variable(("y", "x"), (ds[f"bt_{ch}"].values - sim.bt_clear[i]).astype(np.float32),
                                              {"long_name": f"observed minus clear-sky brightness temperature, {ch}",
                                               "units": "K"})

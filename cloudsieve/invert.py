@@ -143,7 +143,7 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     level_pressure, level_temperature : (n, n_levels) [hPa], [K]
     opaque : (n, n_levels, n_inv) opaque-level radiances [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹]
     sat_zenith : (n,) [deg]
-    sigma_clear : (n,) clear-sky 1-σ [K]
+    sigma_clear : (n,) or (n, n_inv) clear-sky 1-σ [K] (one for every channel, or per channel)
     chans : physics Channels of the inversion channels; inv : their names
     config : dict (fallbacks of the top choice: :func:`inversion_notes`)
 
@@ -158,7 +158,9 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     obs = np.stack([ch.radiance(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     clr = np.stack([ch.radiance(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     s_obs = np.stack([cc["nedt"] * ch.radiance_derivative(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-    s_clr = np.stack([sigma_clear * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    s_in = np.asarray(sigma_clear, dtype=float)
+    s_in = np.broadcast_to(s_in[:, None] if s_in.ndim == 1 else s_in, clr_bt.shape)
+    s_clr = np.stack([s_in[:, k] * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     lp = np.asarray(level_pressure, dtype=float)
     lt = np.asarray(level_temperature, dtype=float)
     opq = np.asarray(opaque, dtype=float)
@@ -207,7 +209,8 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
     obs, clear : mapping channel -> (y, x) observed and clear-sky brightness temperature [K]
     levels : (level pressure (n, L) [hPa], level temperature (n, L) [K], opaque radiance
         (n, L, n_ch of ``chset``)) of exactly these pixels, in this order
-    sat_zenith, sigma_clear : (y, x) [deg], [K]
+    sat_zenith : (y, x) [deg]
+    sigma_clear : mapping channel -> (y, x) clear-sky 1-σ [K] (or one (y, x) array for all)
     chset : simulate.ChannelSet of the scene
     config : dict
     slant_path : (y, x) [kg m⁻²], with ``bias`` : dict channel -> (a [K], b [K per kg m⁻²])
@@ -223,7 +226,9 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
         clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * path if c in bias else np.zeros(path.size)
                                     for c in inv], axis=-1)
     lp, lt, opq = levels
-    res = invert_columns(obs_bt, clr_bt, lp, lt, opq[:, :, ci], take(sat_zenith), take(sigma_clear),
+    sig = (np.stack([take(sigma_clear[c]) for c in inv], axis=-1) if isinstance(sigma_clear, dict)
+           else take(sigma_clear))
+    res = invert_columns(obs_bt, clr_bt, lp, lt, opq[:, :, ci], take(sat_zenith), sig,
                          [chset.channels[i] for i in ci], inv, config)
     layer.put(flat_index, res)
 
@@ -237,7 +242,7 @@ def invert_all(scene, sim, config, sigma_clear, bias=None, only=None, column_sim
     sim : simulate.Simulation (with or without levels: without, ``column_simulator``
         simulates each block's columns again)
     config : dict
-    sigma_clear : (y, x) clear-sky 1-σ [K]
+    sigma_clear : mapping channel -> (y, x) clear-sky 1-σ [K] (``Simulation.sigma``)
     bias : dict channel -> (a, b), optional
         Clear-sky bias fit to add to the clear sky (when bias removal is on).
     only : (y, x) bool array, optional

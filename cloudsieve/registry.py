@@ -50,7 +50,11 @@ class ScreeningInputs:
         Channel -> (y, x) observed − clear-sky brightness temperature [K] (bias removed when
         configured).
     sigma_clear : ndarray
-        (y, x) expected 1-σ error of the clear-sky brightness temperature [K].
+        (y, x) expected 1-σ error of the window channel's clear-sky brightness temperature [K].
+    sigma : dict
+        The pixel's own clear-sky σ's [K], (y, x) each (cloudsieve.uncertainty.ClearSkySigma.as_dict):
+        ``<ch>`` of a channel, ``"<a>-<b>"`` of a channel difference (errors correlated),
+        ``"pixel:<ch>"`` the part independent from pixel to pixel.
     surface : ndarray
         (y, x) surface codes (0 sea, 1 land, 2 ice).
     slant_path : ndarray
@@ -69,6 +73,7 @@ class ScreeningInputs:
 
     departure: dict
     sigma_clear: np.ndarray
+    sigma: dict
     surface: np.ndarray
     slant_path: np.ndarray
     valid: np.ndarray
@@ -199,8 +204,8 @@ def _cold_departure(inp, t):
 
 
 def _split_window_excess(inp, t):
-    """(T11 − T12) observed minus clear above a threshold growing with the slant path."""
-    thr = per_surface(t["threshold"], inp.surface) + per_surface(t["per_path"], inp.surface) * inp.slant_path
+    """(T11 − T12) observed minus clear above k times the σ of the clear-sky difference."""
+    thr = per_surface(t["k_sigma"], inp.surface) * inp.sigma["11um-12um"]
     return Margin(inp.departure["11um"] - inp.departure["12um"] - thr, thr)
 
 
@@ -233,7 +238,9 @@ def _texture(inp, t):
         warmest = ndimage.maximum_filter(np.where(ok, d, -np.inf), size=win, mode="nearest")
         if inp.cache is not None:
             inp.cache[key] = (std, warmest)
-    thr = per_surface(t["threshold"], inp.surface)
+    # the departure field of clear sky is rough by the instrument noise and the background's own
+    # pixel-to-pixel noise: the threshold allows for noise_k times that σ
+    thr = np.hypot(per_surface(t["threshold"], inp.surface), t["noise_k"] * inp.sigma[f"pixel:{ch}"])
     # A rough neighbourhood alone does not make the pixel cloudy: a clear pixel beside a
     # cloud sits in a rough window too, but it is the warmest there. The pixel must also be
     # colder than the warmest of its neighbours by twice the threshold.
@@ -241,8 +248,8 @@ def _texture(inp, t):
 
 
 def _night_fog_contrast(inp, t):
-    """At night, (T3.9 − T11) observed minus clear below −threshold: water droplets."""
-    thr = per_surface(t["threshold"], inp.surface) + per_surface(t["per_path"], inp.surface) * inp.slant_path
+    """At night, (T3.9 − T11) observed minus clear below −k times its clear-sky σ: water droplets."""
+    thr = per_surface(t["k_sigma"], inp.surface) * inp.sigma["3p9um-11um"]
     m = -(inp.departure["3p9um"] - inp.departure["11um"]) - thr
     # fog and low water cloud have tops near the surface temperature; a pixel much colder
     # than clear at 11 µm is a high (often ice) cloud, for which a 3.9 µm deficit is no
@@ -271,33 +278,36 @@ register(ScreeningTest(
          "Threshold: k [× σ].",
     long_name="cold departure of the window channel beyond its expected clear-sky uncertainty",
     tunable=Tunable("k_sigma", "× σ", (0.0, 10.0), 0.1), margin=_cold_departure, requires=_needs_window,
-    fires_when="11 µm observed − clear < −k·σ, σ = √(base² + (c·W·secθ)²)",
-    why="clouds are colder than the surface they hide; σ grows with water-vapour path and view angle"))
+    fires_when="11 µm observed − clear < −k·σ, σ the pixel's clear-sky error from its Jacobians and background errors",
+    why="clouds are colder than the surface they hide; σ grows with water-vapour path, view angle and surface "
+        "uncertainty"))
 register(ScreeningTest(
     "split_window_excess", bit=1, kind="cloud", channels=("11um", "12um"), label="Split-window excess",
-    help="11 − 12 µm difference above its clear-sky value: thin ice cloud widens it. "
-         "Threshold [K] (grows with slant water-vapour path).",
+    help="11 − 12 µm difference above its clear-sky value by more than k times the expected error σ of "
+         "that difference (the pixel's own, from its background errors): thin ice cloud widens it. "
+         "Threshold: k [× σ].",
     long_name="11-12 um difference above the simulated clear-sky difference",
-    tunable=Tunable("threshold", "K"), margin=_split_window_excess,
-    fires_when="(T11 − T12)obs − (T11 − T12)clear > threshold + c·W·secθ",
+    tunable=Tunable("k_sigma", "× σ", (0.0, 10.0), 0.1), margin=_split_window_excess,
+    fires_when="(T11 − T12)obs − (T11 − T12)clear > k·σ₁₁₋₁₂, the pixel's σ of the clear-sky difference",
     why="thin ice cloud absorbs more at 12 µm than at 11 µm"))
 register(ScreeningTest(
     "texture", bit=2, kind="cloud", channels=(), label="Texture",
     help="Rough window-channel departure in a small window, with the pixel colder than its "
-         "warmest neighbour. Threshold on the local standard deviation [K].",
+         "warmest neighbour. Threshold on the local standard deviation [K], raised to allow for the "
+         "instrument's and the background's pixel-to-pixel noise.",
     long_name="local standard deviation of the window-channel departure",
     tunable=Tunable("threshold", "K"), margin=_texture, requires=_needs_window,
-    fires_when="local std of the 11 µm departure > threshold, and the pixel is colder than its window's warmest "
-               "pixel by 2× threshold",
+    fires_when="local std of the 11 µm departure > t = √(threshold² + (noise_k·σ_pixel)²), and the pixel is "
+               "colder than its window's warmest pixel by 2t",
     why="broken cloud and cloud edges are rough; clear pixels bordering a cloud are the warm ones"))
 register(ScreeningTest(
     "night_fog_contrast", bit=3, kind="cloud", channels=("3p9um", "11um"), label="Night fog contrast",
-    help="Night only: 3.9 µm colder than 11 µm relative to clear sky, the mark of water droplets "
-         "(fog, low cloud). Threshold [K].",
+    help="Night only: 3.9 µm colder than 11 µm relative to clear sky by more than k times the expected "
+         "error σ of that difference, the mark of water droplets (fog, low cloud). Threshold: k [× σ].",
     long_name="night-time 3.9-11 um difference below the clear-sky difference",
-    tunable=Tunable("threshold", "K"), margin=_night_fog_contrast, requires=_needs_night,
+    tunable=Tunable("k_sigma", "× σ", (0.0, 10.0), 0.1), margin=_night_fog_contrast, requires=_needs_night,
     fires_when="at night, where the 11 µm departure is within `max_cold_11um` of clear: (T3.9 − T11)obs − clear "
-               "< −(threshold + c·W·secθ)",
+               "< −k·σ₃.₉₋₁₁, the pixel's σ of the clear-sky difference (3.9 µm noise grows at cold scenes)",
     why="water droplets emit less at 3.9 µm than at 11 µm: fog and low water cloud (tops near the surface "
         "temperature)"))
 register(ScreeningTest(

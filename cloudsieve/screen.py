@@ -8,26 +8,12 @@ bias fit is a closed-form least-squares line from sums that add over blocks
 :func:`screen_scene` give the same line.
 """
 from dataclasses import dataclass, field
-import json
 
 import numpy as np
 
 from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, NO_DATA, per_surface
 from .invert import CloudLayer, inversion_notes
 from .registry import REGISTRY, SceneFacts, ScreeningInputs, bit_table
-
-
-def sigma_from_path(surface, slant_path, config):
-    """Expected 1-σ error of the clear-sky brightness temperature, (y, x) [K].
-
-    σ = sqrt(base² + (per_path · W sec θ)²) with base and per_path per surface type
-    (config [clear_sky_uncertainty]); ``slant_path`` W sec θ [kg m⁻²].
-    """
-    unc = config["clear_sky_uncertainty"]
-    base = per_surface(unc["base"], surface)
-    per = per_surface(unc["per_path"], surface)
-    return np.sqrt(base**2 + (per * np.nan_to_num(slant_path)) ** 2)
-
 
 
 @dataclass
@@ -42,7 +28,8 @@ class Screening:
     bias : dict channel -> {"a", "b", "n", "rms", "applied"}
     notes : list of str (skipped tests, daylight 3.9 µm, …)
     thresholds : dict test -> (y, x) threshold actually applied [K] (for plots)
-    sigma_clear : (y, x) [K]
+    sigma_clear : (y, x) the window channel's clear-sky σ [K]
+    sigma : dict of (y, x) clear-sky σ's [K] (uncertainty.ClearSkySigma.as_dict keys)
     cloud : CloudLayer masked to non-clear pixels (or None)
     skipped : dict test -> why it did not run
     """
@@ -58,6 +45,7 @@ class Screening:
     sigma_clear: np.ndarray
     cloud: CloudLayer = None
     skipped: dict = field(default_factory=dict)
+    sigma: dict = field(default_factory=dict)
 
 
 
@@ -136,7 +124,7 @@ def scene_plan(fields, config, channels):
     return plan_tests(tuple(channels), config, *scene_flags(fields["sol_zenith"], fields["valid"], config))
 
 
-def run_tests(fields, config, departure, sigma_clear, plan=None, cache=None, cache_key=None):
+def run_tests(fields, config, departure, sigma, plan=None, cache=None, cache_key=None):
     """Margins [K] of every registered test that runs (> 0 means the test fired), thresholds, notes.
 
     Parameters
@@ -145,7 +133,7 @@ def run_tests(fields, config, departure, sigma_clear, plan=None, cache=None, cac
         ``surface`` (codes), ``valid`` (bool), ``sol_zenith`` [deg], ``slant_path`` [kg m⁻²].
     config : dict
     departure : dict channel -> (y, x) observed − clear [K]
-    sigma_clear : (y, x) expected clear-sky error [K]
+    sigma : dict of (y, x) expected clear-sky errors [K] (uncertainty.ClearSkySigma.as_dict)
     plan : ScreeningPlan, optional
         The scene's plan (a block of a scene cannot tell whether the scene has night pixels);
         from ``fields`` as a whole scene when omitted.
@@ -161,8 +149,9 @@ def run_tests(fields, config, departure, sigma_clear, plan=None, cache=None, cac
     night = night_mask(fields["sol_zenith"], config)
     if plan is None:
         plan = scene_plan(fields, config, tuple(departure))
+    win = plan.facts.window_channel
     inp = ScreeningInputs(
-        departure=departure, sigma_clear=sigma_clear, surface=fields["surface"],
+        departure=departure, sigma_clear=sigma[win] if win else None, sigma=sigma, surface=fields["surface"],
         slant_path=np.nan_to_num(fields["slant_path"]), valid=valid, night=night,
         window_channel=plan.facts.window_channel, notes=list(plan.notes), cache=cache, cache_key=cache_key)
     out = MarginSet({}, {}, dict(plan.skipped), inp.notes, night)
@@ -294,7 +283,7 @@ class ScreenedArrays:
     departure : dict channel -> (y, x) observed − clear (bias removed when given) [K]
     margins, thresholds : dict test -> (y, x) [K] (see registry.Margin)
     mask : (y, x) int8 class codes; bits : (y, x) uint16 test_bits
-    sigma : (y, x) clear-sky 1-σ [K]
+    sigma : (y, x) the window channel's clear-sky 1-σ [K] (None without a window channel)
     skipped : dict test -> why; notes : list of str
     """
 
@@ -308,7 +297,7 @@ class ScreenedArrays:
     notes: list
 
 
-def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, plan=None, cache=None):
+def screen_arrays(obs, bt_clear, fields, config, sigma, bias=None, edit_codes=None, plan=None, cache=None):
     """Departures, test margins, classes and bits for a grid or a block of one (no scene-wide step).
 
     Parameters
@@ -316,6 +305,7 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, pla
     obs, bt_clear : dict channel -> (y, x) observed and clear-sky brightness temperature [K]
     fields : mapping of (y, x) arrays: surface, valid, sol_zenith, slant_path
     config : dict
+    sigma : dict of (y, x) clear-sky σ's [K] (uncertainty.ClearSkySigma.as_dict keys)
     bias : dict channel -> {"a", "b"}, optional
         Clear-sky bias line to subtract from the departures.
     edit_codes : (y, x) int8, optional
@@ -330,7 +320,6 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, pla
     ScreenedArrays
     """
     bias_key = tuple(sorted((c, b["a"], b["b"]) for c, b in bias.items())) if bias else None
-    sigma_key = ("sigma", json.dumps(config["clear_sky_uncertainty"], sort_keys=True))
     if cache is not None:
         # keep the arrays of the raw departures and of the latest bias line only
         for k in [k for k in cache if isinstance(k, tuple) and k[0] in ("departure", "texture")
@@ -338,21 +327,24 @@ def screen_arrays(obs, bt_clear, fields, config, bias=None, edit_codes=None, pla
             del cache[k]
     # float64 throughout: a float32 field would keep float32 arithmetic (numpy promotion rules)
     fields = dict(fields, slant_path=np.asarray(fields["slant_path"], dtype=float))
-    if cache is not None and ("departure", bias_key) in cache and sigma_key in cache:
-        departure, sigma = cache[("departure", bias_key)], cache[sigma_key]
+    if plan is None:
+        plan = scene_plan(fields, config, tuple(bt_clear))
+    if cache is not None and ("departure", bias_key) in cache:
+        departure = cache[("departure", bias_key)]
     else:
         departure = {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float))
                      for ch in bt_clear}
         if bias:
             departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * fields["slant_path"])
                          for ch, d in departure.items()}
-        sigma = sigma_from_path(fields["surface"], fields["slant_path"], config)
         if cache is not None:
-            cache[("departure", bias_key)], cache[sigma_key] = departure, sigma
+            cache[("departure", bias_key)] = departure
     tests = run_tests(fields, config, departure, sigma, plan, cache, bias_key)
     mask, bits = classify(fields["valid"], tests.margins, tests.thresholds, config["screening"]["marginal_fraction"],
                           tests.night, "3p9um" in departure, edit_codes)
-    return ScreenedArrays(departure, tests.margins, tests.thresholds, mask, bits, sigma, tests.skipped, tests.notes)
+    win = plan.facts.window_channel
+    return ScreenedArrays(departure, tests.margins, tests.thresholds, mask, bits, sigma[win] if win else None,
+                          tests.skipped, tests.notes)
 
 
 def screen_fields(scene, sim):
@@ -392,16 +384,16 @@ def screen_scene(scene, sim, config, edits=None, cache=None):
         cache["flags"] = scene_flags(fields["sol_zenith"], fields["valid"], config)
     flags = cache["flags"] if cache is not None else scene_flags(fields["sol_zenith"], fields["valid"], config)
     plan = plan_tests(sim.channels, config, *flags)
-    out = screen_arrays(obs, clear, fields, config, None, edit_codes, plan, cache=cache)
+    out = screen_arrays(obs, clear, fields, config, sim.sigma, None, edit_codes, plan, cache=cache)
     bias = bias_from_sums(bias_sums(out.departure, sim.slant_path, out.mask, out.bits, fields["valid"]),
                           config["bias"]["min_pixels"])
     applied, note = bias_decision(bias, config)
     if applied:
-        out = screen_arrays(obs, clear, fields, config, bias, edit_codes, plan, cache=cache)
+        out = screen_arrays(obs, clear, fields, config, sim.sigma, bias, edit_codes, plan, cache=cache)
     notes = out.notes + ([note] if note else [])
     counts = {name: float(np.mean(out.mask == code)) for code, name in enumerate(CLASS_NAMES)}
     return Screening(out.departure, out.margins, out.mask, out.bits, counts, bias, notes, out.thresholds, out.sigma,
-                     None, out.skipped)
+                     None, out.skipped, sim.sigma)
 
 
 def bias_decision(bias, config):

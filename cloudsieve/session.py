@@ -28,7 +28,7 @@ from .invert import invert_all
 from .journal import Journal, StaleEditsError, journal_path
 from .registry import REGISTRY, bit_table
 from .scene import load_scene
-from .screen import edits_grid, screen_scene, sigma_from_path, summary_row
+from .screen import edits_grid, screen_scene, summary_row
 from . import simulate as simulation
 
 #: Where the cloud inversion runs: every valid pixel once (the dashboard, so that retuning
@@ -163,8 +163,7 @@ class Session:
                None if only is None else hash(np.packbits(only).tobytes()))
         if key != self._cloud_key:
             t0 = time.perf_counter()
-            sigma = sigma_from_path(self.scene.data["surface"].values, self.sim.slant_path, cfg)
-            self._cloud = invert_all(self.scene, self.sim, cfg, sigma,
+            self._cloud = invert_all(self.scene, self.sim, cfg, self.sim.sigma,
                                      {c: (b["a"], b["b"]) for c, b in bias_applied.items()} if bias_applied else None,
                                      only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None)
             if self.lean:

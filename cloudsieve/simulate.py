@@ -287,6 +287,7 @@ class Simulation:
     clear_radiance : (n_valid, n_ch) float32 [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹]
     chset : the scene's ChannelSet
     seconds : wall time of the simulation [s]
+    sigma : {name: (y, x) float32} the clear-sky σ's [K] (cloudsieve.uncertainty.sigma_grids)
     """
 
     channels: tuple
@@ -300,6 +301,7 @@ class Simulation:
     clear_radiance: np.ndarray
     chset: ChannelSet
     seconds: float = 0.0
+    sigma: dict = None
 
     @property
     def channel_objects(self):
@@ -341,12 +343,16 @@ def simulate(scene, config, progress=None, levels=None):
     res = simulate_columns(cols, chset, config["simulation"], levels=levels,
                            threads=max(1, int(config["simulation"].get("threads", 1))), progress=progress)
     use_scene_clear_sky(res, fields, chset, idx)
+    from .uncertainty import sigma_grids  # uncertainty re-simulates columns with this module's loop
+
+    sigma = sigma_grids(cols, fields["surface"].ravel()[idx], res.brightness_temperature, chset, config, idx,
+                        (ny, nx), threads=max(1, int(config["simulation"].get("threads", 1))))
     bt_full = np.full((len(names), ny * nx), np.nan, np.float32)
     bt_full[:, idx] = res.brightness_temperature
     return Simulation(names, bt_full.reshape(len(names), ny, nx), clear_sky_source(fields, names),
                       slant_path(fields["tcwv"], fields["sat_zenith"]), idx, res.level_pressure,
                       res.level_temperature, res.opaque_radiance, res.radiance.T.copy(), chset,
-                      time.perf_counter() - t0)
+                      time.perf_counter() - t0, sigma)
 
 
 class ColumnSimulator:

@@ -16,9 +16,14 @@ temperature's) cancel instead of adding. The instrument noise is a constant radi
 NEΔL = NEΔT_ref · dB/dT(T_ref): its temperature equivalent NEΔT(T) = NEΔL / (dB/dT)(T) grows
 fast at cold scenes, above all at 3.9 µm.
 
-Seven extra simulations per column: used for the pixel inspector's breakdown; the screening
-does not use it yet. A scene with explicit profiles gets no profile components (their
-Jacobians are zero: the profile given is not rebuilt from the surface numbers).
+:func:`error_budget` simulates each column seven more times (the pixel inspector's
+breakdown). The screening's per-pixel σ (:func:`clear_sky_sigma`) evaluates the same
+Jacobians once per bin of background state, so a scene costs a small fraction of a second
+simulation; the emissivity error that differs between channels (``emissivity_contrast``) and
+the part of the background errors that is independent from pixel to pixel
+(``[background_noise]``, for the texture test) are added there. A scene with explicit
+profiles has no profile-shape components (lapse rate, humidity exponent); its air temperature
+and water vapour are shifted and scaled in the profile given.
 """
 from dataclasses import dataclass, replace
 import copy
@@ -30,7 +35,7 @@ from physics.atmosphere import DEFAULT_HUMIDITY_EXPONENT, DEFAULT_LAPSE_RATE
 
 from .codes import per_surface
 from .config import absorption_table
-from .simulate import ChannelSet, simulate_columns
+from .simulate import ChannelSet, Columns, simulate_columns
 
 #: The inputs of the budget: (config key of its σ, label, unit of σ, step of the perturbation)
 COMPONENTS = (
@@ -42,6 +47,9 @@ COMPONENTS = (
     ("emissivity", "surface emissivity", "1", 0.005),
     ("continuum", "water-vapour continuum strength (relative)", "1", 0.10),
 )
+#: Components of the profile's shape: zero for explicit profiles, which are not rebuilt from the
+#: surface numbers (their air temperature and water vapour are shifted and scaled as given)
+PROFILE_COMPONENTS = ("lapse_rate", "humidity_exponent")
 
 
 @dataclass
@@ -55,6 +63,7 @@ class ErrorBudget:
     noise : (n, n_ch) instrument NEΔT at the clear-sky brightness temperature [K]
     total : (n, n_ch) σ of the clear-sky brightness temperature [K]
     split_window : (n,) σ of T11 − T12 with the two channels' errors correlated [K], or None
+    contrast : (n, n_ch) part from the emissivity error that differs between channels [K]
     """
 
     channels: tuple
@@ -65,6 +74,7 @@ class ErrorBudget:
     noise: np.ndarray
     total: np.ndarray
     split_window: np.ndarray = None
+    contrast: np.ndarray = None
 
 
 def noise_equivalent_temperature(channel, temperature, nedt_ref, t_ref):
@@ -87,21 +97,27 @@ def _scaled_continuum(chset, config, factor):
     return ChannelSet(chset.names, chset.channels, channel_coefficients(chset.channels, table))
 
 
-def error_budget(cols, chset, config, surface):
-    """The :class:`ErrorBudget` of columns ``cols`` (simulate.Columns) on ``surface`` codes (n,)."""
+def _jacobians(cols, chset, config, threads=1):
+    """Clear-sky brightness temperature (n_ch, n) and its Jacobians (n, n_ch, n_comp) of
+    columns ``cols``, by re-simulated columns (one input changed at a time, ``COMPONENTS``)."""
     sim_cfg = config["simulation"]
-    errs = config["background_errors"]
-    base = simulate_columns(cols, chset, sim_cfg).brightness_temperature.astype(np.float64)  # (n_ch, n)
+    base = simulate_columns(cols, chset, sim_cfg, threads=threads).brightness_temperature.astype(np.float64)
     profile_default = {"lapse_rate": DEFAULT_LAPSE_RATE, "humidity_exponent": DEFAULT_HUMIDITY_EXPONENT}
-    jac, sig = [], []
+    jac = []
     for key, _, _, step in COMPONENTS:
         c, cs, opts = cols, chset, None
         if key == "skin_temperature":
             c = replace(cols, t_skin=cols.t_skin + np.float32(step))
+        elif key == "air_temperature" and cols.profiles is not None:  # the whole profile given
+            pr, tm, q = cols.profiles
+            c = replace(cols, profiles=(pr, tm + np.float32(step), q))
         elif key == "air_temperature":
             c = replace(cols, t_air=cols.t_air + np.float32(step))
         elif key == "lapse_rate":  # K km⁻¹ → the profile builder's K m⁻¹
             opts = dict(profile_default, lapse_rate=DEFAULT_LAPSE_RATE + step / 1000.0)
+        elif key == "water_vapour" and cols.profiles is not None:
+            pr, tm, q = cols.profiles
+            c = replace(cols, profiles=(pr, tm, q * np.float32(1.0 + step)))
         elif key == "water_vapour":
             c = replace(cols, tcwv=cols.tcwv * np.float32(1.0 + step))
         elif key == "humidity_exponent":
@@ -110,25 +126,215 @@ def error_budget(cols, chset, config, surface):
             c = replace(cols, emissivity=np.minimum(cols.emissivity + np.float32(step), np.float32(1.0)))
         elif key == "continuum":
             cs = _scaled_continuum(chset, config, 1.0 + step)
-        bt = simulate_columns(c, cs, sim_cfg, profile_options=opts).brightness_temperature.astype(np.float64)
+        if cols.profiles is not None and key in PROFILE_COMPONENTS:
+            jac.append(np.zeros_like(base))  # an explicit profile is not rebuilt from the surface numbers
+            continue
+        bt = simulate_columns(c, cs, sim_cfg, profile_options=opts, threads=threads).brightness_temperature
+        bt = bt.astype(np.float64)
         if key == "emissivity":  # the step may be cut at 1
             d_eps = (c.emissivity - cols.emissivity).astype(np.float64)
             jac.append(np.where(d_eps > 0, (bt - base) / np.where(d_eps > 0, d_eps, 1.0), 0.0))
         else:
             jac.append((bt - base) / step)
-        sig.append(per_surface(errs[key], surface))
-    jacobian = np.moveaxis(np.stack(jac), (0, 1, 2), (2, 1, 0))  # (n, n_ch, n_comp)
-    input_sigma = np.stack(sig, axis=-1)  # (n, n_comp)
-    contribution = np.abs(jacobian) * input_sigma[:, None, :]
+    return base, np.moveaxis(np.stack(jac), (0, 1, 2), (2, 1, 0))
+
+
+def _noise(chset, bt, config):
+    """(n, n_ch) instrument NEΔT [K] at brightness temperatures ``bt`` (n_ch, n) [K]."""
     inst = config["instrument"]
-    noise = np.stack([noise_equivalent_temperature(ch, base[i], inst["nedt"].get(ch.name, inst["nedt_default"]),
-                                                   inst["reference_temperature"])
-                      for i, ch in enumerate(chset.channels)], axis=-1)  # (n, n_ch)
-    total = np.sqrt(np.sum(contribution**2, axis=-1) + noise**2)
+    return np.stack([noise_equivalent_temperature(ch, bt[i], inst["nedt"].get(ch.name, inst["nedt_default"]),
+                                                  inst["reference_temperature"])
+                     for i, ch in enumerate(chset.channels)], axis=-1)
+
+
+def error_budget(cols, chset, config, surface):
+    """The :class:`ErrorBudget` of columns ``cols`` (simulate.Columns) on ``surface`` codes (n,),
+    each column simulated at its own state (the pixel inspector's breakdown)."""
+    errs = config["background_errors"]
+    base, jacobian = _jacobians(cols, chset, config)
+    input_sigma = np.stack([per_surface(errs[key], surface) for key, *_ in COMPONENTS], axis=-1)  # (n, n_comp)
+    contribution = np.abs(jacobian) * input_sigma[:, None, :]
+    noise = _noise(chset, base, config)
+    contrast = _contrast_sigma(jacobian, surface, config)  # (n, n_ch)
+    total = np.sqrt(np.sum(contribution**2, axis=-1) + contrast**2 + noise**2)
     split = None
     if "11um" in chset.names and "12um" in chset.names:
         i, j = chset.names.index("11um"), chset.names.index("12um")
         diff = (jacobian[:, i] - jacobian[:, j]) * input_sigma
-        split = np.sqrt(np.sum(diff**2, axis=-1) + noise[:, i] ** 2 + noise[:, j] ** 2)
+        split = np.sqrt(np.sum(diff**2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2
+                        + noise[:, i] ** 2 + noise[:, j] ** 2)
     return ErrorBudget(chset.names, tuple(k for k, *_ in COMPONENTS), input_sigma, jacobian, contribution, noise,
-                       total, split)
+                       total, split, contrast)
+
+
+def _contrast_sigma(jacobian, surface, config):
+    """(n, n_ch) σ [K] from the emissivity error that differs between channels (independent per
+    channel): |∂T/∂ε| σ_contrast."""
+    k = [c[0] for c in COMPONENTS].index("emissivity")
+    return np.abs(jacobian[:, :, k]) * per_surface(config["background_errors"]["emissivity_contrast"],
+                                                   surface)[:, None]
+
+
+# ---------------------------------------------------------------------------------------
+# σ of every pixel of a scene: Jacobians at binned states
+# ---------------------------------------------------------------------------------------
+#: Bin widths of the background state at which a pixel's Jacobians are evaluated (ours):
+#: ln tcwv [1], t_air [K], t_skin − t_air [K], sec θ [1], p_surf [hPa], emissivity [1]. The
+#: Jacobians change by a few per cent across a bin (tests/test_uncertainty.py holds the
+#: binned σ to the per-pixel budget), while a scene of smooth fields has few distinct bins.
+BIN_WIDTHS = {"log_tcwv": 0.04, "t_air": 1.0, "skin_minus_air": 1.0, "sec_zenith": 0.02, "p_surf": 10.0,
+              "emissivity": 0.005}
+
+#: Channel pairs whose difference a test uses: its σ has its own budget (correlated errors)
+DIFFERENCES = (("11um", "12um"), ("3p9um", "11um"))
+
+
+@dataclass
+class ClearSkySigma:
+    """Expected 1-σ error of the clear-sky brightness temperatures of n pixels [K].
+
+    channels : channel names
+    total : (n_ch, n) all background errors and the instrument noise
+    pixel : (n_ch, n) the part independent from pixel to pixel: ``[background_noise]`` and the
+        instrument noise (what roughens a clear departure field on the pixel scale)
+    noise : (n_ch, n) the instrument NEΔT alone
+    difference : dict "a-b" -> (n,) σ of T_a − T_b with the two channels' errors correlated
+    bins : number of distinct background states the Jacobians were evaluated at
+    """
+
+    channels: tuple
+    total: np.ndarray
+    pixel: np.ndarray
+    noise: np.ndarray
+    difference: dict
+    bins: int = 0
+
+    def as_dict(self, parts=None):
+        """{channel: σ, "a-b": σ of the difference, "pixel:<ch>": the pixel-to-pixel σ, "noise:<ch>":
+        the NEΔT}, the last two for the channels ``parts`` only (all when None; memory)."""
+        out = {c: self.total[i] for i, c in enumerate(self.channels)}
+        out.update(self.difference)
+        for i, c in enumerate(self.channels):
+            if parts is None or c in parts:
+                out[f"pixel:{c}"], out[f"noise:{c}"] = self.pixel[i], self.noise[i]
+        return out
+
+
+def _bin_keys(cols, surface):
+    """(n, k) int64 bin indices of the background state of each column (``BIN_WIDTHS``)."""
+    w = BIN_WIDTHS
+    f64 = np.float64
+    sec = 1.0 / np.cos(np.deg2rad(cols.sat_zenith.astype(f64)))
+    keys = [np.asarray(surface, np.int64),
+            np.rint(np.log(np.maximum(cols.tcwv.astype(f64), 1e-3)) / w["log_tcwv"]),
+            np.rint(cols.t_air.astype(f64) / w["t_air"]),
+            np.rint((cols.t_skin.astype(f64) - cols.t_air) / w["skin_minus_air"]),
+            np.rint(sec / w["sec_zenith"]),
+            np.rint(cols.p_surf.astype(f64) / w["p_surf"])]
+    keys += [np.rint(e.astype(f64) / w["emissivity"]) for e in cols.emissivity]
+    return np.stack(keys, axis=-1).astype(np.int64)
+
+
+def _unique_rows(keys):
+    """(unique rows, inverse index) of an int64 key matrix, by one packed integer when it fits."""
+    low = keys.min(axis=0)
+    span = keys.max(axis=0) - low + 1
+    if np.prod(span.astype(float)) < 2.0**62:
+        mult = np.cumprod(np.concatenate([[1], span[:-1]])).astype(np.int64)
+        code, inverse = np.unique((keys - low) @ mult, return_inverse=True)
+        rows = np.empty((code.size, keys.shape[1]), np.int64)
+        rest = code.copy()
+        for j in range(keys.shape[1] - 1, -1, -1):
+            rows[:, j], rest = rest // mult[j] + low[j], rest % mult[j]
+        return rows, inverse.ravel()
+    rows, inverse = np.unique(keys, axis=0, return_inverse=True)
+    return rows, inverse.ravel()
+
+
+def _bin_columns(rows, n_ch):
+    """The :class:`Columns` at the centres of bins ``rows`` (see :func:`_bin_keys`)."""
+    w = BIN_WIDTHS
+    f32 = np.float32
+    t_air = rows[:, 2] * w["t_air"]
+    sec = np.maximum(rows[:, 4] * w["sec_zenith"], 1.0)
+    return Columns(t_air.astype(f32), np.exp(rows[:, 1] * w["log_tcwv"]).astype(f32),
+                   (rows[:, 5] * w["p_surf"]).astype(f32), (t_air + rows[:, 3] * w["skin_minus_air"]).astype(f32),
+                   np.rad2deg(np.arccos(1.0 / sec)).astype(f32),
+                   np.ascontiguousarray((rows[:, 6:6 + n_ch] * w["emissivity"]).T.astype(f32)))
+
+
+def clear_sky_sigma(cols, surface, bt_clear, chset, config, threads=1):
+    """:class:`ClearSkySigma` of pixel columns ``cols`` (simulate.Columns).
+
+    Parameters
+    ----------
+    cols : Columns
+    surface : (n,) surface codes
+    bt_clear : (n_ch, n) clear-sky brightness temperature of the columns [K] (for NEΔT(T))
+    chset : ChannelSet
+    config : dict
+        ``[background_errors]``, ``[background_noise]``, ``[instrument]``, ``[simulation]``.
+    threads : int
+
+    Notes
+    -----
+    The background part of σ depends on the pixel through its Jacobians. They are evaluated at
+    the centre of the pixel's bin of background state (``BIN_WIDTHS``), by the same re-simulated
+    columns as :func:`error_budget`, once per distinct bin; columns with explicit profiles are
+    evaluated each at its own state (their profile components are zero). The instrument noise
+    is evaluated at each pixel's own clear-sky brightness temperature. With σ_i the background
+    error of input i on the pixel's surface type (``[background_errors]``), σ_c the channel-
+    independent emissivity error (``emissivity_contrast``) and NEΔT the noise:
+
+        σ_ch² = Σ_i (J_ch,i σ_i)² + (J_ch,ε σ_c)² + NEΔT_ch²
+        σ_a−b² = Σ_i ((J_a,i − J_b,i) σ_i)² + (J_a,ε σ_c)² + (J_b,ε σ_c)² + NEΔT_a² + NEΔT_b²
+        σ_pixel,ch² = Σ_i (J_ch,i ν_i)² + NEΔT_ch²    (ν_i: ``[background_noise]``)
+    """
+    n = cols.size
+    n_ch = len(chset.names)
+    names = chset.names
+    surface = np.asarray(surface).ravel()
+    if n == 0:
+        empty = np.empty((n_ch, 0), np.float32)
+        return ClearSkySigma(names, empty, empty, empty,
+                             {f"{a}-{b}": np.empty(0, np.float32) for a, b in DIFFERENCES if a in names and b in names})
+    if cols.profiles is None:
+        rows, inverse = _unique_rows(_bin_keys(cols, surface))
+        _, jac = _jacobians(_bin_columns(rows, n_ch), chset, config, threads)
+        bin_surface = rows[:, 0]
+    else:
+        _, jac = _jacobians(cols, chset, config, threads)
+        inverse, bin_surface = np.arange(n), surface
+    errs, noise_cfg = config["background_errors"], config["background_noise"]
+    sig = np.stack([per_surface(errs[key], bin_surface) for key, *_ in COMPONENTS], axis=-1)  # (m, n_comp)
+    nu = np.stack([per_surface(noise_cfg.get(key, {"sea": 0.0, "land": 0.0, "ice": 0.0}), bin_surface)
+                   for key, *_ in COMPONENTS], axis=-1)
+    contrast = _contrast_sigma(jac, bin_surface, config)  # (m, n_ch)
+    var_bg = np.sum((jac * sig[:, None, :]) ** 2, axis=-1) + contrast**2  # (m, n_ch)
+    var_px = np.sum((jac * nu[:, None, :]) ** 2, axis=-1)
+    noise = _noise(chset, np.asarray(bt_clear, np.float64), config).T  # (n_ch, n)
+    total = np.sqrt(var_bg[inverse].T + noise**2).astype(np.float32)
+    pixel = np.sqrt(var_px[inverse].T + noise**2).astype(np.float32)
+    diff = {}
+    for a, b in DIFFERENCES:
+        if a in names and b in names:
+            i, j = names.index(a), names.index(b)
+            v = np.sum(((jac[:, i] - jac[:, j]) * sig) ** 2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2
+            diff[f"{a}-{b}"] = np.sqrt(v[inverse] + noise[i] ** 2 + noise[j] ** 2).astype(np.float32)
+    return ClearSkySigma(names, total, pixel, noise.astype(np.float32), diff, int(jac.shape[0]))
+
+
+def sigma_grids(cols, surface, bt_clear, chset, config, flat_index, shape, threads=1):
+    """:func:`clear_sky_sigma` of the columns ``cols`` of pixels ``flat_index`` of a (y, x) grid
+    of ``shape``, as grids: {name: (y, x) float32 [K]} (``ClearSkySigma.as_dict`` keys, the pixel
+    and noise parts of the window channel only; NaN at the other pixels). ``surface`` and
+    ``bt_clear`` are those of the columns ((n,), (n_ch, n))."""
+    from .screen import window_channel
+
+    sig = clear_sky_sigma(cols, surface, bt_clear, chset, config, threads)
+    out = {}
+    for name, values in sig.as_dict((window_channel(chset.names, config),)).items():
+        grid = np.full(int(np.prod(shape)), np.nan, np.float32)
+        grid[flat_index] = values
+        out[name] = grid.reshape(shape)
+    return out

@@ -367,7 +367,8 @@ of physically based tests give each pixel a class:
 
 {legend_html()}
 
-- **Maps & QA** — six linked maps (pan or zoom one, all follow). Click a pixel to inspect it. With the
+- **Maps & QA** — eight linked maps (pan or zoom one, all follow): observed, clear sky and their departure,
+  the class, cloud optical depth and top, the clear-sky σ of each pixel and the departure in units of it. Click a pixel to inspect it. With the
   box or lasso tool from the toolbar, select pixels and mark them clear or cloud; edits are saved at once
   beside the scene (`<scene>.qa.jsonl`), shown outlined in magenta on the class map, and used by the
   downloads and by `cloudsieve screen`.

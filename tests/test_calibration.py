@@ -25,38 +25,50 @@ def test_mad_constant_is_the_normal_quartile():
     assert robust_std(rng.normal(5.0, 2.0, 400_000)) == pytest.approx(2.0, rel=0.01)
 
 
-def _population(n=60_000, seed=2, base=0.35, per_path=0.012, leak=0.02):
-    """Clear sea pixels with σ² = base² + (per_path·x)², a bias line, and a few cloud leaks."""
+def _population(n=60_000, seed=2, factor=1.0, noise=0.12, leak=0.02):
+    """Clear sea pixels whose background σ grows with slant path x (σ_bg = 0.25 + 0.01 x), with
+    instrument noise, a bias line and a few cloud leaks; the true background errors are
+    ``factor`` times the configured ones."""
     rng = np.random.default_rng(seed)
     x = rng.uniform(10.0, 120.0, n)
-    sig = np.sqrt(base**2 + (per_path * x) ** 2)
-    d = 0.2 + 0.003 * x + rng.normal(0.0, 1.0, n) * sig
+    bg = 0.25 + 0.01 * x
+    sig = np.sqrt(bg**2 + noise**2)  # the σ the screening assumes
+    d = 0.2 + 0.003 * x + rng.normal(0.0, 1.0, n) * np.sqrt((factor * bg) ** 2 + noise**2)
     d[rng.random(n) < leak] -= 6.0  # thin cloud that slipped through
     shape = (1, n)
     fields = {"slant_path": x.reshape(shape), "surface": np.zeros(shape, np.int8), "valid": np.ones(shape, bool),
-              "bits": np.zeros(shape, np.uint16)}
+              "bits": np.zeros(shape, np.uint16), "noise": np.full(shape, noise)}
     return d.reshape(shape), sig.reshape(shape), fields
 
 
-def test_the_right_sigma_gives_unit_spread_and_is_recovered():
+def _calibrate(d, sig, f, mask=None):
+    mask = np.zeros(d.shape, np.int8) if mask is None else mask
+    return calibrate(d, sig, f["noise"], f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
+
+
+def test_the_right_sigma_gives_unit_spread_and_factor_one():
     d, sig, f = _population()
-    mask = np.zeros(d.shape, np.int8)
-    cal = calibrate(d, sig, f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
+    cal = _calibrate(d, sig, f)
     assert cal.z_spread == pytest.approx(1.0, abs=0.04)
     assert cal.bias_b == pytest.approx(0.003, abs=0.001)
-    assert cal.base == pytest.approx(0.35, rel=0.15)
-    assert cal.per_path == pytest.approx(0.012, rel=0.10)
-    # a configuration that assumes half the true σ shows a spread of 2
-    half = calibrate(d, sig / 2, f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
-    assert half.z_spread == pytest.approx(2.0, abs=0.1)
+    assert cal.factor == pytest.approx(1.0, abs=0.06)
+
+
+@pytest.mark.parametrize("factor", [0.5, 2.0])
+def test_background_errors_off_by_a_factor_are_found(factor):
+    """True background errors half or twice the configured ones: the spread leaves 1 and the
+    fitted factor finds the truth (the instrument noise, known, is not scaled)."""
+    d, sig, f = _population(factor=factor)
+    cal = _calibrate(d, sig, f)
+    assert abs(cal.z_spread - 1.0) > 0.2
+    assert cal.factor == pytest.approx(factor, rel=0.08)
 
 
 def test_the_cold_cut_of_the_screening_does_not_bias_the_spread():
     d, sig, f = _population(leak=0.0)
     r = d - (0.2 + 0.003 * f["slant_path"])
     mask = np.where(r < -3 * sig, CLOUD, 0).astype(np.int8)  # what the cold-departure test removes
-    cal = calibrate(d, sig, f["slant_path"], f["surface"], mask, f["bits"], f["valid"])["sea"]
-    assert cal.z_spread == pytest.approx(1.0, abs=0.04)
+    assert _calibrate(d, sig, f, mask).z_spread == pytest.approx(1.0, abs=0.04)
 
 
 def test_a_scene_calibration_and_its_proposal_are_usable():
@@ -64,11 +76,13 @@ def test_a_scene_calibration_and_its_proposal_are_usable():
     ch, cal = session_calibration(session)
     assert ch == "11um" and set(cal) <= {"sea", "land", "ice"} and cal
     for c in cal.values():
-        assert c.pixels >= 100 and np.isfinite(c.z_spread) and c.base >= 0 and c.per_path >= 0
+        assert c.pixels >= 100 and np.isfinite(c.z_spread) and c.factor >= 0
     text = proposal_toml(cal, session.config)
     cfg = merge_config(tomllib.loads(text))  # the proposal is a valid configuration
+    default = load_config()
     for s, c in cal.items():
-        assert cfg["clear_sky_uncertainty"]["base"][s] == pytest.approx(c.base, abs=0.005)
+        assert cfg["background_errors"]["skin_temperature"][s] == pytest.approx(
+            c.factor * default["background_errors"]["skin_temperature"][s], abs=1e-3)
 
 
 def test_the_diagnostics_show_the_calibration_and_the_proposal():
@@ -85,6 +99,6 @@ def test_the_diagnostics_show_the_calibration_and_the_proposal():
     labels = [el.label for el in plot]
     assert "unit normal" in labels and any(lab.startswith("land (spread") for lab in labels)
     text = view.table()
-    assert "[clear_sky_uncertainty]" in text and "not applied" in text
-    assert "| land |" in text and "1.50 →" in text  # the configured land σ base beside the fitted one
+    assert "[background_errors]" in text and "not applied" in text
+    assert "| land |" in text and "× " in text  # the fitted factor of the land background errors
     assert isinstance(plot, hv.Overlay)

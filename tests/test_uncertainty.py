@@ -12,7 +12,7 @@ import pytest
 
 from cloudsieve.config import load_config
 from cloudsieve.simulate import ChannelSet, Columns
-from cloudsieve.uncertainty import COMPONENTS, error_budget, noise_equivalent_temperature
+from cloudsieve.uncertainty import COMPONENTS, clear_sky_sigma, error_budget, noise_equivalent_temperature
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 NAMES = ("3p9um", "8p6um", "11um", "12um")
@@ -92,3 +92,96 @@ def test_the_inspector_shows_the_budget():
     assert budget["channels"]["3p9um"]["noise"] > budget["channels"]["11um"]["noise"]  # cold scene
     text = PixelInspector(model, Focus(model.result.mask.shape), Notices()).text((60, 70))
     assert "Clear-sky error budget" in text and "instrument noise" in text and "11 − 12 µm difference" in text
+
+
+# ---------------------------------------------------------------------------------------
+# the screening's per-pixel σ (Jacobians at binned states)
+# ---------------------------------------------------------------------------------------
+def _scene_columns(name, n=400, seed=3):
+    from cloudsieve.scene import load_scene
+    from cloudsieve.simulate import gather_columns, scene_fields, surface_emissivity, simulate_columns
+
+    cfg = load_config()
+    scene = load_scene(SAMPLES / f"{name}.nc", config=cfg)
+    fields = scene_fields(scene.data)
+    cs = ChannelSet.for_scene(tuple(scene.channels), cfg)
+    idx = np.sort(np.random.default_rng(seed).choice(np.flatnonzero(fields["valid"].ravel()), n, replace=False))
+    cols = gather_columns(fields, surface_emissivity(fields, cs, cfg), idx)
+    bt = simulate_columns(cols, cs, cfg["simulation"]).brightness_temperature
+    return cfg, cs, cols, fields["surface"].ravel()[idx], bt
+
+
+@pytest.mark.parametrize("name", ["night_front", "day_coast"])
+def test_binned_sigma_matches_each_pixels_own_budget(name):
+    """The Jacobians evaluated at the centre of a pixel's bin of background state give the σ of
+    the pixel's own budget (each column simulated at its own state) within a few per cent."""
+    cfg, cs, cols, surface, bt = _scene_columns(name)
+    sig = clear_sky_sigma(cols, surface, bt, cs, cfg)
+    own = error_budget(cols, cs, cfg, surface)
+    np.testing.assert_allclose(sig.total.T, own.total, rtol=0.05)
+    np.testing.assert_allclose(sig.difference["11um-12um"], own.split_window, rtol=0.08)
+    assert sig.bins <= cols.size
+
+
+def test_sigma_is_the_same_on_both_physics_paths(monkeypatch):
+    """Both paths of the physics (compiled float32 kernels, numpy reference) give the same σ."""
+    import physics.fused as fused
+
+    cfg, cs, cols, surface, bt = _scene_columns("night_front", n=200)
+    compiled = clear_sky_sigma(cols, surface, bt, cs, cfg)
+    monkeypatch.setenv("CLOUDSIEVE_PHYSICS", "numpy")
+    assert not fused.enabled()
+    reference = clear_sky_sigma(cols, surface, bt, cs, cfg)
+    np.testing.assert_allclose(compiled.total, reference.total, rtol=0.02)
+    for k, v in compiled.difference.items():
+        np.testing.assert_allclose(v, reference.difference[k], rtol=0.02, err_msg=k)
+
+
+def test_linear_budget_agrees_with_a_monte_carlo_of_the_simulation():
+    """Propagating the background errors by Monte Carlo through the simulation itself (draws of
+    skin and air temperature, water vapour and emissivity; GUM Supplement 1 practice) gives the
+    spread the linear budget predicts, for each channel and for the 11 − 12 µm difference."""
+    from dataclasses import replace
+
+    from cloudsieve.simulate import simulate_columns
+
+    cfg = load_config()
+    for key in ("lapse_rate", "humidity_exponent", "continuum", "emissivity_contrast"):
+        cfg["background_errors"][key] = {"sea": 0.0, "land": 0.0, "ice": 0.0}
+    cfg["background_noise"] = {}
+    cs = ChannelSet.for_scene(NAMES, cfg)
+    one = _columns([296.0], [35.0], zenith=40.0)
+    sig = clear_sky_sigma(one, np.zeros(1, np.int8), simulate_columns(one, cs, cfg["simulation"]).brightness_temperature,
+                          cs, cfg)
+    rng = np.random.default_rng(11)
+    n = 4000
+    e = cfg["background_errors"]
+    f32 = np.float32
+    draws = replace(
+        one, t_air=(296.0 + e["air_temperature"]["sea"] * rng.standard_normal(n)).astype(f32),
+        t_skin=(296.0 + e["skin_temperature"]["sea"] * rng.standard_normal(n)).astype(f32),
+        tcwv=(35.0 * (1 + e["water_vapour"]["sea"] * rng.standard_normal(n))).astype(f32),
+        p_surf=np.full(n, 1013.25, f32), sat_zenith=np.full(n, 40.0, f32),
+        emissivity=np.repeat(0.99 + e["emissivity"]["sea"] * rng.standard_normal((1, n)), len(NAMES), 0).astype(f32))
+    bt = simulate_columns(draws, cs, cfg["simulation"]).brightness_temperature.astype(float)
+    noise = sig.noise[:, 0]
+    for i, ch in enumerate(NAMES):
+        mc = np.sqrt(np.var(bt[i]) + noise[i] ** 2)
+        assert sig.total[i, 0] == pytest.approx(mc, rel=0.06), ch
+    i, j = NAMES.index("11um"), NAMES.index("12um")
+    mc = np.sqrt(np.var(bt[i] - bt[j]) + noise[i] ** 2 + noise[j] ** 2)
+    assert sig.difference["11um-12um"][0] == pytest.approx(mc, rel=0.08)
+
+
+def test_cold_scenes_raise_the_sigma_of_the_night_fog_difference():
+    """The 3.9 µm noise grows fast at cold scenes (constant radiance noise): the σ of the
+    3.9 − 11 µm difference of a polar column exceeds a tropical one's by the noise alone."""
+    from cloudsieve.simulate import simulate_columns
+
+    cfg = load_config()
+    cs = ChannelSet.for_scene(NAMES, cfg)
+    cols = _columns([250.0, 300.0], [2.0, 50.0])
+    bt = simulate_columns(cols, cs, cfg["simulation"]).brightness_temperature
+    sig = clear_sky_sigma(cols, np.zeros(2, np.int8), bt, cs, cfg)
+    assert sig.noise[NAMES.index("3p9um"), 0] > 5 * sig.noise[NAMES.index("3p9um"), 1]
+    assert sig.difference["3p9um-11um"][0] > sig.noise[NAMES.index("3p9um"), 0]

@@ -273,14 +273,13 @@ class SigmaCalibration(_PlotWithTable):
         from cloudsieve.calibration import proposal_toml
 
         ch, cal = self._calibration()
-        unc = self.model.config["clear_sky_uncertainty"]
         if not cal:
             return "Too few clear pixels on any surface to judge the clear-sky σ."
-        rows = ["| surface | clear pixels | bias a [K] | b [K per kg m⁻²] | spread of dep./σ | σ base [K] "
-                "now → fitted | σ per path [K per kg m⁻²] now → fitted |", "|---|---|---|---|---|---|---|"]
+        rows = ["| surface | clear pixels | bias a [K] | b [K per kg m⁻²] | spread of dep./σ | background errors "
+                "× fitted factor |", "|---|---|---|---|---|---|"]
         for name, c in cal.items():
             rows.append(f"| {name} | {c.pixels:,} | {c.bias_a:+.2f} | {c.bias_b:+.4f} | **{c.z_spread:.2f}** | "
-                        f"{unc['base'][name]:.2f} → {c.base:.2f} | {unc['per_path'][name]:.4f} → {c.per_path:.4f} |")
+                        f"× {c.factor:.2f} |")
         return ("\n".join(rows) + "\n\nA spread above 1: the background is worse than the configuration assumes "
                 "(false alarms follow); below 1: the cold test could be sharper. σ fitted to this scene's clear "
                 "pixels, **not applied** — to use it, put this in a configuration file (`--config`):\n\n"

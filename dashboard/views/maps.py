@@ -1,7 +1,8 @@
-"""The six linked maps of a screened scene.
+"""The eight linked maps of a screened scene.
 
 Observed and clear-sky brightness temperature and their departure (for the chosen channel),
-the class mask, cloud optical depth and cloud-top pressure. All six share the axes x =
+the class mask, cloud optical depth and cloud-top pressure, the clear-sky uncertainty σ of the
+channel and the departure in units of it (what the cold-departure test thresholds). All share the axes x =
 column and y = row of the scene grid (row 0 at the top), so pan and zoom move them together.
 A click on any map picks the pixel for the inspector; the box and lasso tools select pixels
 for QA edits. Grids of a million pixels or more are rasterized with datashader; their
@@ -30,6 +31,9 @@ BT_CMAP = list(colorcet.palette["CET_L12"])          # light = cold, the way inf
 DEPARTURE_CMAP = list(colorcet.palette["CET_D1A"])   # blue (colder than clear) – white – red (warmer)
 TAU_CMAP = list(colorcet.palette["CET_L17"])
 PTOP_CMAP = list(colorcet.palette["CET_L8"])[::-1]  # high (low-pressure) tops in the brightest colour
+SIGMA_CMAP = list(colorcet.palette["CET_L20"])
+#: colour range of the departure in units of σ (the tests fire at about −3)
+Z_CLIM = (-6.0, 6.0)
 
 _OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=False, tools=[],
                      clipping_colors={"NaN": "#00000000"})
@@ -82,9 +86,10 @@ class MapGrid(Viewer):
                for i, c in enumerate(sim.channels)]
         lim = max(2.0, _robust_range(raw, 0, 99.0)[1])
         self._dep_clim = (-lim, lim)
+        self._sigma_clim = (0.0, max(0.5, _robust_range([sim.sigma[c] for c in sim.channels], 0, 99.5)[1]))
         p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
         self._ptop_clim = (100.0, max(1000.0, float(np.nanmax(p_surf)) if np.isfinite(p_surf).any() else 1013.25))
-        # one pair of ranges shared by all six figures: pan or zoom one and all follow
+        # one pair of ranges shared by all the figures: pan or zoom one and all follow
         self._x_range = Range1d(float(self._xs[0]) - 0.5, float(self._xs[-1]) + 0.5)
         self._y_range = Range1d(float(self._ys[-1]) + 0.5, float(self._ys[0]) - 0.5)  # row 0 at the top
         self._readout = pn.pane.HTML(_READOUT_HINT, css_classes=["cs-readout"], margin=(0, 10), height=20,
@@ -119,6 +124,12 @@ class MapGrid(Viewer):
         applied = bool(self.model.result.bias.get(channel, {}).get("applied"))
         return f"Departure observed − clear{' (bias removed)' if applied else ''} · {channel_label(channel)}"
 
+    def title_sigma(self, channel):
+        return f"Clear-sky uncertainty σ (from the background errors) · {channel_label(channel)}"
+
+    def title_z(self, channel, version=None):
+        return f"Departure in units of σ: (observed − clear)/σ · {channel_label(channel)}"
+
     def title_mask(self, version=None):
         return "Screening class"
 
@@ -141,6 +152,14 @@ class MapGrid(Viewer):
     def departure(self, channel, version=None):
         return self._image(self.model.result.departure[channel],
                            hv.Dimension("departure", label="observed − clear", unit="K"), "departure")
+
+    def sigma(self, channel):
+        return self._image(self.model.sim.sigma[channel], hv.Dimension("sigma", label="clear-sky σ", unit="K"), "σ")
+
+    def normalised(self, channel, version=None):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = self.model.result.departure[channel] / self.model.sim.sigma[channel]
+        return self._image(z, hv.Dimension("z", label="departure / σ", unit="1"), "departure / σ")
 
     def mask(self, version=None):
         return self._image(self.model.result.mask.astype(np.float32), hv.Dimension("class", label="class"), "class")
@@ -235,6 +254,11 @@ class MapGrid(Viewer):
             (self.top_pressure, self.title_ptop, {"version": ver}, self._opts(
                 "cloud-top pressure", "@image{0} hPa", "cloud-top pressure [hPa]", cmap=PTOP_CMAP,
                 clim=self._ptop_clim), {}),
+            (self.sigma, self.title_sigma, {"channel": ch}, self._opts(
+                "clear-sky σ", "@image{0.00} K", "clear-sky σ [K]", cmap=SIGMA_CMAP, clim=self._sigma_clim), {}),
+            (self.normalised, self.title_z, {"channel": ch, "version": ver}, self._opts(
+                "departure / σ", "@image{+0.0}", "departure / σ [1]", cmap=DEPARTURE_CMAP, clim=Z_CLIM,
+                symmetric=True), {}),
         ]
         cells = []
         for k, (fn, title_fn, refs, opts, extra) in enumerate(specs):
