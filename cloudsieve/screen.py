@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, NO_DATA, per_surface
+from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, NO_DATA
 from .invert import CloudLayer, inversion_notes
 from .registry import REGISTRY, SceneFacts, ScreeningInputs, bit_table
 
