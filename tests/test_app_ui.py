@@ -165,12 +165,12 @@ def test_moving_a_threshold_changes_the_counts(served_app, page, artifacts):
     open_dashboard(page, served_app.url)
     before = cloud_percent(page)
     slider = page.locator(".cs-slider-night_fog_contrast").first
-    expect(slider).to_contain_text("1.00", timeout=TIMEOUT)
+    expect(slider).to_contain_text("3.00", timeout=TIMEOUT)
     handle = slider.locator(".noUi-handle").first
     handle.focus()
-    for _ in range(20):  # 20 steps of 0.05 K: the fog threshold from 1.0 to 2.0 K
+    for _ in range(20):  # 20 steps of 0.1: the fog threshold from 3 σ to 5 σ
         handle.press("ArrowRight")
-    expect(slider).to_contain_text("2.00", timeout=TIMEOUT)
+    expect(slider).to_contain_text("5.00", timeout=TIMEOUT)
     expect(page.locator(".cs-count-cloud .cs-value").first).not_to_have_text(before, timeout=TIMEOUT)
     after = cloud_percent(page)
     assert float(after.rstrip("%")) < float(before.rstrip("%"))
