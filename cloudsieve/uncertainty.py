@@ -220,34 +220,43 @@ class ClearSkySigma:
         return out
 
 
-def _bin_keys(cols, surface):
-    """(n, k) int64 bin indices of the background state of each column (``BIN_WIDTHS``)."""
+def _bin_components(cols, surface):
+    """The bin index of each column's background state, one int32 array per component
+    (``BIN_WIDTHS``; float32 arithmetic is exact enough for these widths)."""
     w = BIN_WIDTHS
-    f64 = np.float64
-    sec = 1.0 / np.cos(np.deg2rad(cols.sat_zenith.astype(f64)))
-    keys = [np.asarray(surface, np.int64),
-            np.rint(np.log(np.maximum(cols.tcwv.astype(f64), 1e-3)) / w["log_tcwv"]),
-            np.rint(cols.t_air.astype(f64) / w["t_air"]),
-            np.rint((cols.t_skin.astype(f64) - cols.t_air) / w["skin_minus_air"]),
-            np.rint(sec / w["sec_zenith"]),
-            np.rint(cols.p_surf.astype(f64) / w["p_surf"])]
-    keys += [np.rint(e.astype(f64) / w["emissivity"]) for e in cols.emissivity]
-    return np.stack(keys, axis=-1).astype(np.int64)
+    f32 = np.float32
+    sec = f32(1.0) / np.cos(np.deg2rad(cols.sat_zenith.astype(f32)))
+    comps = [np.asarray(surface).astype(np.int32),
+             np.log(np.maximum(cols.tcwv, f32(1e-3))) / f32(w["log_tcwv"]),
+             cols.t_air / f32(w["t_air"]),
+             (cols.t_skin - cols.t_air) / f32(w["skin_minus_air"]),
+             sec / f32(w["sec_zenith"]),
+             cols.p_surf / f32(w["p_surf"])]
+    comps += [e / f32(w["emissivity"]) for e in cols.emissivity]
+    return [c if c.dtype == np.int32 else np.rint(c).astype(np.int32) for c in comps]
 
 
-def _unique_rows(keys):
-    """(unique rows, inverse index) of an int64 key matrix, by one packed integer when it fits."""
-    low = keys.min(axis=0)
-    span = keys.max(axis=0) - low + 1
-    if np.prod(span.astype(float)) < 2.0**62:
-        mult = np.cumprod(np.concatenate([[1], span[:-1]])).astype(np.int64)
-        code, inverse = np.unique((keys - low) @ mult, return_inverse=True)
-        rows = np.empty((code.size, keys.shape[1]), np.int64)
-        rest = code.copy()
-        for j in range(keys.shape[1] - 1, -1, -1):
-            rows[:, j], rest = rest // mult[j] + low[j], rest % mult[j]
+def _bins(cols, surface):
+    """(rows, inverse): the distinct bins (m, k) int64 of the columns and each column's bin.
+
+    The components are packed into one int64 per column (mixed radix over their ranges in this
+    set of columns) and made unique by one sort; the bins themselves do not depend on which
+    columns come together, so every chunking of a scene gives each pixel the same bin."""
+    comps = _bin_components(cols, surface)
+    low = np.array([int(c.min()) for c in comps], np.int64)
+    span = np.array([int(c.max()) for c in comps], np.int64) - low + 1
+    if np.prod(span.astype(float)) >= 2.0**62:  # not expected for real states; exact but slower
+        rows, inverse = np.unique(np.stack(comps, axis=-1).astype(np.int64), axis=0, return_inverse=True)
         return rows, inverse.ravel()
-    rows, inverse = np.unique(keys, axis=0, return_inverse=True)
+    code = np.zeros(comps[0].size, np.int64)
+    for c, lo, sp in zip(comps, low, span):
+        code *= sp
+        code += c - lo
+    uniq, inverse = np.unique(code, return_inverse=True)
+    rows = np.empty((uniq.size, len(comps)), np.int64)
+    for j in range(len(comps) - 1, -1, -1):
+        uniq, rows[:, j] = np.divmod(uniq, span[j])
+        rows[:, j] += low[j]
     return rows, inverse.ravel()
 
 
@@ -299,7 +308,7 @@ def clear_sky_sigma(cols, surface, bt_clear, chset, config, threads=1):
         return ClearSkySigma(names, empty, empty, empty,
                              {f"{a}-{b}": np.empty(0, np.float32) for a, b in DIFFERENCES if a in names and b in names})
     if cols.profiles is None:
-        rows, inverse = _unique_rows(_bin_keys(cols, surface))
+        rows, inverse = _bins(cols, surface)
         _, jac = _jacobians(_bin_columns(rows, n_ch), chset, config, threads)
         bin_surface = rows[:, 0]
     else:
@@ -310,18 +319,19 @@ def clear_sky_sigma(cols, surface, bt_clear, chset, config, threads=1):
     nu = np.stack([per_surface(noise_cfg.get(key, {"sea": 0.0, "land": 0.0, "ice": 0.0}), bin_surface)
                    for key, *_ in COMPONENTS], axis=-1)
     contrast = _contrast_sigma(jac, bin_surface, config)  # (m, n_ch)
-    var_bg = np.sum((jac * sig[:, None, :]) ** 2, axis=-1) + contrast**2  # (m, n_ch)
-    var_px = np.sum((jac * nu[:, None, :]) ** 2, axis=-1)
-    noise = _noise(chset, np.asarray(bt_clear, np.float64), config).T  # (n_ch, n)
-    total = np.sqrt(var_bg[inverse].T + noise**2).astype(np.float32)
-    pixel = np.sqrt(var_px[inverse].T + noise**2).astype(np.float32)
-    diff = {}
-    for a, b in DIFFERENCES:
-        if a in names and b in names:
-            i, j = names.index(a), names.index(b)
-            v = np.sum(((jac[:, i] - jac[:, j]) * sig) ** 2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2
-            diff[f"{a}-{b}"] = np.sqrt(v[inverse] + noise[i] ** 2 + noise[j] ** 2).astype(np.float32)
-    return ClearSkySigma(names, total, pixel, noise.astype(np.float32), diff, int(jac.shape[0]))
+    pairs = [(f"{a}-{b}", names.index(a), names.index(b)) for a, b in DIFFERENCES if a in names and b in names]
+    # one table of variances per bin, gathered once for every pixel: background (n_ch), pixel-to-
+    # pixel (n_ch), differences (pairs)
+    table = [np.sum((jac * sig[:, None, :]) ** 2, axis=-1) + contrast**2, np.sum((jac * nu[:, None, :]) ** 2, axis=-1)]
+    table += [(np.sum(((jac[:, i] - jac[:, j]) * sig) ** 2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2)[:, None]
+              for _, i, j in pairs]
+    var = np.concatenate(table, axis=1).astype(np.float32).T[:, inverse]  # (n_ch + n_ch + pairs, n)
+    noise2 = (_noise(chset, np.asarray(bt_clear, np.float64), config).T ** 2).astype(np.float32)  # (n_ch, n)
+    total = np.sqrt(var[:n_ch] + noise2)
+    pixel = np.sqrt(var[n_ch:2 * n_ch] + noise2)
+    diff = {name: np.sqrt(var[2 * n_ch + k] + noise2[i] + noise2[j]) for k, (name, i, j) in enumerate(pairs)}
+    noise = np.sqrt(noise2)
+    return ClearSkySigma(names, total, pixel, noise, diff, int(jac.shape[0]))
 
 
 def sigma_grids(cols, surface, bt_clear, chset, config, flat_index, shape, threads=1):

@@ -171,6 +171,42 @@ def pick_chunks(run, n_pixels, candidates=CHUNK_CANDIDATES, sample=131_072, repe
     return best["1"], best["2"], timings
 
 
+def sigma_stage(n_pix):
+    """Time the screening's per-pixel clear-sky σ (cloudsieve.uncertainty.clear_sky_sigma: Jacobians
+    per bin of background state) against the clear-sky simulation of the same columns, both on
+    2 threads, on ``n_pix`` pixels tiled from the sample scene ``night_front`` (its smooth and
+    pixel-to-pixel background errors decide how many bins there are)."""
+    from pathlib import Path
+
+    import xarray as xr
+
+    from cloudsieve.config import load_config
+    from cloudsieve.simulate import ChannelSet, gather_columns, simulate_columns, surface_emissivity
+    from cloudsieve.uncertainty import clear_sky_sigma
+
+    root = Path(__file__).resolve().parents[2]
+    ds = xr.open_dataset(root / "sample_scenes" / "night_front.nc").load()
+    reps = int(np.ceil(n_pix / ds.sizes["y"] / ds.sizes["x"]))
+    fields = {k: np.tile(ds[k].values.ravel(), reps)[:n_pix][None, :]
+              for k in ("t_air", "tcwv", "p_surf", "t_skin", "sat_zenith", "surface")}
+    cfg = load_config()
+    cfg["simulation"]["threads"] = 2
+    names = ("3p9um", "8p6um", "11um", "12um")
+    chset = ChannelSet.for_scene(names, cfg)
+    idx = np.arange(n_pix)
+    cols = gather_columns(fields, surface_emissivity(fields, chset, cfg), idx)
+    t0 = time.perf_counter()
+    bt = simulate_columns(cols, chset, cfg["simulation"], threads=2).brightness_temperature
+    t_sim = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    sig = clear_sky_sigma(cols, fields["surface"].ravel(), bt, chset, cfg, threads=2)
+    t_sig = time.perf_counter() - t0
+    print(f"clear-sky σ of {n_pix:,} night_front pixels: {t_sig:.3f} s for {sig.bins:,} bins of background state, "
+          f"against {t_sim:.3f} s for their simulation (2 threads): σ adds {100 * t_sig / t_sim:.0f} %")
+    return {"sigma_pixels": n_pix, "sigma_s_2threads": round(t_sig, 4), "sigma_bins": sig.bins,
+            "sigma_simulate_s_2threads": round(t_sim, 4), "sigma_over_simulate": round(t_sig / t_sim, 3)}
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--pixels", type=int, default=1_000_000, help="number of pixel columns (default 1e6)")
@@ -251,6 +287,7 @@ def main(argv=None):
           f"{exp_s:.3f} s, that process's peak RSS {floor['exp_floor_rss_mb']:.0f} MB")
     print(f"ratio to exp floor: 1 thread {t_serial / exp_s:.2f}, 2 threads {t_threads / exp_s:.2f}")
 
+    sigma = sigma_stage(n_pix)
     wall = time.perf_counter() - wall0
     result = {
         "pixels": n_pix,
@@ -275,6 +312,7 @@ def main(argv=None):
         "peak_rss_mb_with_floor": round(peak_with_floor, 1),
         "finite_fraction": round(float(finite.mean()), 6),
         "wall_s": round(wall, 3),
+        **sigma,
         "physics_path": "compiled" if fused.enabled() else "numpy",
         "numpy": np.__version__,
         "cpu_count": os.cpu_count(),
