@@ -16,9 +16,10 @@ How a scene is made
    of seeded white noise): skin and air temperature, column water vapour, surface pressure,
    surface type, emissivity per channel; viewing and solar geometry.
 2. Clouds as invented structures (frontal band, cirrus streaks, fog, cumulus, ...), each
-   with a cover fraction f in [0, 1] (smooth edges), a vertical 11 µm absorption optical
-   depth, top and base pressure and phase. One cloud layer per pixel: where structures
-   overlap, the one with the larger fraction wins (ties: the listed priority).
+   with a cover fraction f in [0, 1] (smooth edges, broken inside cumulus-like cloud), a
+   vertical 11 µm absorption optical depth, top and base pressure and phase. One cloud
+   layer per pixel: where structures overlap, the one with the larger fraction wins (ties:
+   the listed priority).
 3. Radiances from the project's gas physics (``physics.atmosphere``, ``physics.absorption``,
    ``physics.clearsky.channel_planck``, ``physics.transfer``) on a finer grid than the
    screening uses (61 instead of 41 levels). The cloud is put INTO that layered solver: two
@@ -30,12 +31,22 @@ How a scene is made
 4. Partial cover mixes radiances, f·L_cloudy + (1 − f)·L_clear; Gaussian instrument noise
    is added to the brightness temperatures.
 5. The scene file holds the observed brightness temperatures and a BACKGROUND state = TRUE
-   state + smooth background errors; the truth file holds the true state and the clouds.
+   state + background errors (smooth and pixel-to-pixel); the truth file holds the true
+   state and the clouds.
+
+The truth is made in a DIFFERENT world from the one the screening assumes (:class:`TruthWorld`,
+``HONEST_WORLD``): its own absorption coefficients, humidity shape and lapse rate, low-level
+inversions, view-angle dependent sea emissivity, non-grey ice cloud and background errors
+larger than the configuration's σ in part of each scene. So the skill tests do not judge the
+screening by its own physics. :func:`make_scene_in_world` makes a (cut of a) scene in any
+world in memory, for the robustness tests.
 
 All random numbers come from ``numpy.random.default_rng([scene_seed, crc32(field_name)])``,
 so the output is the same on every run (byte for byte, for the same library versions).
 """
 import argparse
+import copy
+import dataclasses
 import os
 import tomllib
 import zlib
@@ -52,6 +63,7 @@ from physics.absorption import channel_coefficients, layer_optical_depth
 from physics.atmosphere import column_water_vapour, profile_from_surface
 from physics.channels import default_channels
 from physics.clearsky import channel_brightness_temperature, channel_planck, simulate_clear_sky
+from physics.surface import emissivity_angle_factor
 from physics.transfer import schwarzschild_upwelling
 
 HERE = Path(__file__).resolve().parent
@@ -68,13 +80,6 @@ TOP_PRESSURE = 10.0
 CHUNK = 4096
 #: Instrument noise, Gaussian, added to every brightness temperature [K] (NEΔT).
 NOISE_K = 0.1
-#: Background errors: rms of t_skin [K], of t_air [K], relative rms of tcwv [1], and the
-#: Gaussian smoothing scale of the error fields [pixel].
-BG_T_SKIN_RMS = 0.3
-BG_T_AIR_RMS = 0.5
-BG_TCWV_REL_RMS = 0.07
-BG_ERROR_SCALE_PX = 20.0
-
 CHANNEL_ORDER = ("3p9um", "8p6um", "11um", "12um")
 SURFACE_CODES = {"sea": 0, "land": 1, "ice": 2}
 #: Surface emissivity per channel (3.9, 8.6, 11, 12 µm). Approximate, from memory: typical
@@ -85,9 +90,12 @@ EMISSIVITY = {
     "land": (0.90, 0.93, 0.965, 0.97),
     "ice": (0.98, 0.98, 0.99, 0.985),
 }
-#: Amplitude (1 sigma) of the smooth land-emissivity variation per channel [1]; one
-#: spatial pattern for all channels (drier, sparser land lower everywhere). Ours.
-LAND_EMISSIVITY_SPREAD = (0.012, 0.015, 0.005, 0.004)
+#: Complex refractive index of liquid water at window wavelengths [µm]: Hale & Querry (1973),
+#: Appl. Opt. 12, 555-563 (approximate, from memory; the same nodes as the configuration's
+#: [surface.sea_view_angle], copied here so that the truth does not move when the config does).
+WATER_INDEX_WAVELENGTH = (3.5, 4.0, 8.0, 9.0, 10.0, 11.0, 12.0, 13.0)
+WATER_INDEX_N = (1.400, 1.351, 1.291, 1.262, 1.218, 1.153, 1.111, 1.123)
+WATER_INDEX_K = (0.0094, 0.0046, 0.0343, 0.0399, 0.0508, 0.0968, 0.199, 0.305)
 
 #: Water cloud at 3.9 µm: absorption optical depth as a fraction of the 11 µm one, and the
 #: reflectivity of a thick water cloud for the downwelling sky radiance; the reflectivity
@@ -99,8 +107,8 @@ WATER_REFLECTIVITY_MAX_3P9 = 0.15
 #: Structures whose phase follows their top temperature are ice below this [K]
 #: (≈ −20 °C; common practice, from memory).
 ICE_TOP_TEMPERATURE = 253.15
-#: Fraction of the saturated column that a column may hold (keeps background tcwv, which
-#: carries up to ~+20 % error, below saturation of the background profile).
+#: Fraction of the saturated column that a column may hold (keeps background tcwv, whose
+#: errors are ~10 % rms and reach ~+40 %, below the scene reader's 1.5 × saturation warning).
 MAX_COLUMN_SATURATION = 0.8
 
 #: Invented cloud-structure codes of the truth variable ``cloud_feature``.
@@ -192,11 +200,26 @@ def swath_zenith(shape, zenith_min, zenith_max, tilt=0.12):
     return np.rad2deg(np.arcsin(k * np.sin(scan_lo + s * (scan_hi - scan_lo))))
 
 
-def saturated_column(t_air, p_surf):
-    """Column water vapour of the project's profile shape when saturated throughout. [kg m⁻²]"""
-    prof = profile_from_surface(t_air, np.full_like(t_air, 1.0e3), p_surf, n_levels=TRUTH_LEVELS,
-                                top_pressure=TOP_PRESSURE)
-    return column_water_vapour(prof.pressure, prof.specific_humidity)
+def true_profile(t_air, tcwv, p_surf, lapse_rate, humidity_exponent):
+    """Profiles (n, TRUTH_LEVELS) of the true columns from 1-D pixel arrays.
+
+    ``physics.atmosphere.profile_from_surface`` with the world's per-pixel lapse rate
+    [K m⁻¹] and humidity exponent [1] (the numpy reference path, float64).
+    """
+    return profile_from_surface(t_air, tcwv, p_surf, n_levels=TRUTH_LEVELS, top_pressure=TOP_PRESSURE,
+                                lapse_rate=lapse_rate, humidity_exponent=humidity_exponent)
+
+
+def saturated_column(t_air, p_surf, lapse_rate):
+    """Column water vapour of a true column when saturated throughout. [kg m⁻²]
+
+    ``lapse_rate`` [K m⁻¹] per pixel (the saturated column does not depend on the humidity
+    shape: every level holds its saturation value).
+    """
+    shape = np.shape(t_air)
+    flat = [np.broadcast_to(np.asarray(a, dtype=float), shape).reshape(-1) for a in (t_air, p_surf, lapse_rate)]
+    prof = true_profile(flat[0], np.full_like(flat[0], 1.0e3), flat[1], flat[2], 3.0)
+    return column_water_vapour(prof.pressure, prof.specific_humidity).reshape(shape)
 
 
 class Cloud(NamedTuple):
@@ -230,10 +253,14 @@ class Scene(NamedTuple):
     p_surf: np.ndarray
     emissivity: np.ndarray  # (ny, nx, n_ch)
     clouds: tuple  # of Cloud, in priority order
+    world: "TruthWorld"  # the world the truth is made in
+    fields: "WorldFields"  # its per-pixel fields on this grid
+    noise: np.ndarray = None  # standard-normal instrument noise (ny, nx, n_ch), drawn by prepare()
 
 
-def emissivity_field(seed, surface, channels):
-    """True emissivity per pixel and channel: table values, with a smooth variation over land."""
+def emissivity_field(seed, surface, channels, sat_zenith, world):
+    """True emissivity per pixel and channel [1]: table values, a smooth variation over land
+    and, over sea, the fall with view angle of the world (:func:`sea_angle_factor`)."""
     shape = surface.shape
     names = [n for n in SURFACE_CODES]
     idx = [CHANNEL_ORDER.index(c) for c in channels]
@@ -242,9 +269,29 @@ def emissivity_field(seed, surface, channels):
     land = surface == SURFACE_CODES["land"]
     if land.any():
         g = np.clip(smooth_field(seed, "land_emissivity", shape, 8.0), -2.5, 2.5)
-        spread = np.array([LAND_EMISSIVITY_SPREAD[i] for i in idx])
+        spread = np.array([world.land_emissivity_spread[i] for i in idx])
         emis = np.where(land[..., None], emis + g[..., None] * spread, emis)
+    sea = surface == SURFACE_CODES["sea"]
+    if sea.any() and world.sea_angle_fall > 0.0:
+        emis = np.where(sea[..., None], emis * sea_angle_factor(channels, sat_zenith, world), emis)
     return emis
+
+
+def sea_angle_factor(channels, sat_zenith, world):
+    """ε(θ)/ε(0) of the world's sea per pixel and channel, (ny, nx, n_ch). [1]
+
+    1 − s (1 − F(θ)), F the ratio of a flat water surface (``physics.surface``, Fresnel with
+    the refractive index of water at the channel's central wavelength) and s the world's
+    ``sea_angle_fall``.
+    """
+    all_channels = default_channels()
+    out = []
+    for c in channels:
+        wavelength = 1.0e4 / all_channels[c].central_wavenumber  # [µm]
+        n = np.interp(wavelength, WATER_INDEX_WAVELENGTH, WATER_INDEX_N)
+        k = np.interp(wavelength, WATER_INDEX_WAVELENGTH, WATER_INDEX_K)
+        out.append(1.0 - world.sea_angle_fall * (1.0 - emissivity_angle_factor(n, k, sat_zenith)))
+    return np.stack(out, axis=-1)
 
 
 def nominal_emissivity(surface, channels):
@@ -255,20 +302,232 @@ def nominal_emissivity(surface, channels):
     return table[surface]
 
 
-def column_from_saturation(t_air, p_surf, saturation):
+def column_from_saturation(t_air, p_surf, saturation, lapse_rate):
     """tcwv = saturation fraction × saturated column, capped at MAX_COLUMN_SATURATION. [kg m⁻²]"""
-    return np.minimum(saturation, MAX_COLUMN_SATURATION) * saturated_column(t_air, p_surf)
+    return np.minimum(saturation, MAX_COLUMN_SATURATION) * saturated_column(t_air, p_surf, lapse_rate)
+
+
+# ---------------------------------------------------------------------------------------
+# The truth world: how it differs from the world the screening assumes
+# ---------------------------------------------------------------------------------------
+@dataclasses.dataclass(frozen=True)
+class TruthWorld:
+    """The physics and errors the truth is made with, where they differ from the screening's.
+
+    The screening simulates clear sky with ``physics/data/absorption.toml``, the profile
+    builder's defaults (humidity exponent 3, lapse rate 6.5 K km⁻¹, no inversion), the table
+    emissivities of ``[surface.emissivity]`` (sea without view-angle dependence by default)
+    and a grey cloud, and it expects background errors of the size given in
+    ``[background_errors]`` / ``[clear_sky_uncertainty]``. The truth world changes each of
+    these by an amount a real analyst would meet. Ranges ``(lo, hi)`` vary smoothly across a
+    scene (uniform distribution between them); ``(x, x)`` is a constant. Sources: "ours"
+    (chosen for these invented scenes) or "from memory" (recalled, not looked up).
+    """
+
+    #: factor on the self continuum (a, b, outside_k296). Ours: published versions of the
+    #: water-vapour continuum differ by 10-20 % in the 11 µm window (from memory).
+    self_continuum: float = 1.1
+    #: factor on the foreign continuum. Ours: less well known than the self continuum
+    #: (from memory); weaker here, so the two do not scale together.
+    foreign_continuum: float = 0.9
+    #: factor on the water-vapour line coefficients. Ours: the table's line values were set
+    #: by hand (its own note says so), so 15 % is an honest doubt.
+    lines: float = 1.15
+    #: λ of the humidity shape q = q0 (p/ps)^λ [1], smooth across the scene. Soundings give
+    #: λ of about 2-4 (Smith 1966, from memory); the screening uses 3.
+    humidity_exponent: tuple = (2.3, 3.6)
+    #: tropospheric lapse rate [K km⁻¹], smooth across the scene. Ours, around the 1976
+    #: standard atmosphere's 6.5 K km⁻¹ (Table 4) that the screening uses.
+    lapse_rate: tuple = (6.0, 7.2)
+    #: smoothing scale of the humidity-exponent and lapse-rate fields [pixel]. Ours.
+    profile_scale_px: float = 40.0
+    #: apply each scene's low-level temperature inversion (where and how strong: in the scene
+    #: functions, ours); the screening's profiles have none.
+    inversions: bool = True
+    #: share of a flat water surface's emissivity fall with view angle (Fresnel,
+    #: physics.surface) that the sea shows. Ours: wind roughening makes the real fall
+    #: somewhat smaller than a flat surface's (from memory); the screening's default has none.
+    sea_angle_fall: float = 0.8
+    #: 1-σ smooth variation of land emissivity per channel (3.9, 8.6, 11, 12 µm) [1]. Ours;
+    #: the screening uses the table value for every land pixel.
+    land_emissivity_spread: tuple = (0.015, 0.020, 0.007, 0.006)
+    #: absorption optical depth of ice cloud at 12 µm over that at 11 µm [1], smooth per
+    #: structure. From memory: published ice optics give 1.1-1.2 for effective sizes of a
+    #: few tens of µm (larger for small crystals); the screening's cloud is grey.
+    ice_tau_ratio_12: tuple = (1.1, 1.2)
+    #: the same at 8.6 µm over 11 µm [1]. From memory: about 0.9 for ice.
+    ice_tau_ratio_8p6: tuple = (0.85, 0.95)
+    #: lowest sub-pixel cover factor inside cumulus, stratocumulus, polar low cloud and the
+    #: post-frontal part of the front [1] (a pixel-scale field between it and 1 multiplies
+    #: the cover fraction). Ours.
+    broken_cover: float = 0.35
+    #: 1-σ of the smooth background skin-temperature error over sea, land, ice [K]. Sea as a
+    #: good SST analysis (~0.3 K, from memory); land and ice ours, below the configuration's
+    #: 1.5 and 1.0 K outside the poor-background region.
+    bg_t_skin_rms: tuple = (0.3, 1.0, 0.6)
+    #: 1-σ of the smooth background air-temperature error [K]. Ours (as the config's sea value).
+    bg_t_air_rms: float = 0.5
+    #: relative 1-σ of the smooth background water-vapour error [1]. From memory: typical of
+    #: a short-range forecast; the config's sea value.
+    bg_tcwv_rel_rms: float = 0.07
+    #: Gaussian smoothing scale of the smooth background errors [pixel]. Ours.
+    bg_smoothing_px: float = 20.0
+    #: 1-σ of a pixel-to-pixel (independent) background skin-temperature error [K]: a
+    #: background retrieved or interpolated pixel by pixel (the project's issue 13).
+    bg_pixel_t_skin_rms: float = 0.3
+    #: relative 1-σ of a pixel-to-pixel background water-vapour error [1] (issue 13).
+    bg_pixel_tcwv_rel_rms: float = 0.07
+    #: the smooth skin error is this many times larger (rms) in a poor-background region of
+    #: 12-16 % of each scene (an analysis gone wrong there), larger than the config's σ. Ours.
+    poor_background_factor: float = 2.5
+
+    def attrs(self):
+        """The world as global attributes of a truth file (``truth_world_<field>``)."""
+        out = {}
+        for f in dataclasses.fields(self):
+            v = getattr(self, f.name)
+            out[f"truth_world_{f.name}"] = np.array(v, dtype=float) if isinstance(v, tuple) else (
+                int(v) if isinstance(v, bool) else v)
+        return out
+
+
+#: The world the sample files are made in.
+HONEST_WORLD = TruthWorld()
+#: The screening's own physics with the previous generator's smooth 0.3 K / 0.5 K / 7 %
+#: background errors: for comparison runs only (the sample files are not made with it).
+SCREENING_WORLD = TruthWorld(
+    self_continuum=1.0, foreign_continuum=1.0, lines=1.0, humidity_exponent=(3.0, 3.0), lapse_rate=(6.5, 6.5),
+    inversions=False, sea_angle_fall=0.0, land_emissivity_spread=(0.012, 0.015, 0.005, 0.004),
+    ice_tau_ratio_12=(1.0, 1.0), ice_tau_ratio_8p6=(1.0, 1.0), broken_cover=1.0, bg_t_skin_rms=(0.3, 0.3, 0.3),
+    bg_pixel_t_skin_rms=0.0, bg_pixel_tcwv_rel_rms=0.0, poor_background_factor=1.0)
+
+
+def world_absorption_table(world):
+    """``physics/data/absorption.toml`` with the world's factors applied (a deep copy).
+
+    The foreign continuum is stored as a ratio to the self continuum, so its factor enters as
+    foreign / self. Dry gases are unchanged.
+    """
+    table = copy.deepcopy(tomllib.loads(ABSORPTION_TABLE.read_text()))
+    sc = table["self_continuum"]
+    for key in ("a", "b"):
+        sc[key]["value"] = sc[key]["value"] * world.self_continuum
+    sc["outside_k296"]["value"] = [v * world.self_continuum for v in sc["outside_k296"]["value"]]
+    ratio = table["foreign_continuum"]["ratio_to_self"]
+    ratio["value"] = ratio["value"] * world.foreign_continuum / world.self_continuum
+    lines = table["water_vapour_lines"]["k"]
+    lines["value"] = [v * world.lines for v in lines["value"]]
+    return table
+
+
+class WorldFields(NamedTuple):
+    """Per-pixel fields of the truth world on a scene grid (all (ny, nx))."""
+
+    humidity_exponent: np.ndarray  # λ of q = q0 (p/ps)^λ [1]
+    lapse_rate: np.ndarray  # tropospheric lapse rate [K m⁻¹]
+    inversion_excess: np.ndarray  # warming of the air at the inversion top [K] (0: none; apply_inversion)
+    inversion_depth: np.ndarray  # pressure depth of the inversion layer [hPa]
+    ice_tau_ratio_8p6: np.ndarray  # τ8.6/τ11 of an ice cloud in the pixel [1]
+    ice_tau_ratio_12: np.ndarray  # τ12/τ11 of an ice cloud in the pixel [1]
+    bg_t_skin_error: np.ndarray  # background − true skin temperature [K]
+    bg_t_air_error: np.ndarray  # background − true air temperature [K]
+    bg_tcwv_error: np.ndarray  # background / true water vapour − 1 [1]
+    bg_t_skin_scale: np.ndarray  # rms factor of the smooth skin error (1 outside the poor-background region) [1]
+
+
+def world_range(seed, name, shape, value_range, sigma):
+    """A smooth field spread uniformly over ``value_range`` (a constant if lo == hi)."""
+    lo, hi = value_range
+    if lo == hi:
+        return np.full(shape, float(lo))
+    return to_range(smooth_field(seed, name, shape, sigma), lo, hi)
+
+
+def profile_fields(seed, shape, world):
+    """The world's humidity exponent [1] and lapse rate [K m⁻¹] on the scene grid."""
+    lam = world_range(seed, "true_humidity_exponent", shape, world.humidity_exponent, world.profile_scale_px)
+    lapse = world_range(seed, "true_lapse_rate", shape, world.lapse_rate, world.profile_scale_px) * 1.0e-3
+    return lam, lapse
+
+
+def broken_cover(seed, name, shape, world):
+    """Sub-pixel cover factor in [world.broken_cover, 1], varying from pixel to pixel. [1]
+
+    About a quarter of the pixels keep their full cover (the factor is cut at 1).
+    """
+    lo = world.broken_cover
+    if lo >= 1.0:
+        return np.ones(shape)
+    return np.minimum(to_range(smooth_field(seed, name, shape, 0.8), lo, 1.0 + 0.4 * (1.0 - lo)), 1.0)
+
+
+def world_fields(seed, surface, world, profile, inversion_weight, inversion_excess, inversion_depth):
+    """The world's per-pixel fields of a scene (:class:`WorldFields`).
+
+    ``profile`` is (λ, lapse rate) from :func:`profile_fields`; ``inversion_weight`` (0-1)
+    says where the scene has a low-level inversion, ``inversion_excess`` [K] and
+    ``inversion_depth`` [hPa] are (lo, hi) ranges of its strength (see :func:`apply_inversion`)
+    and depth there.
+    """
+    shape = surface.shape
+    lam, lapse = profile
+    if world.inversions:
+        excess = inversion_weight * world_range(seed, "inversion_excess", shape, inversion_excess, 10.0)
+        excess = np.where(excess < 0.05, 0.0, excess)  # a trace is no inversion (keeps the truth map clean)
+    else:
+        excess = np.zeros(shape)
+    depth = world_range(seed, "inversion_depth", shape, inversion_depth, 10.0)
+    ratio_86 = world_range(seed, "ice_tau_ratio_8p6", shape, world.ice_tau_ratio_8p6, 15.0)
+    ratio_12 = world_range(seed, "ice_tau_ratio_12", shape, world.ice_tau_ratio_12, 15.0)
+
+    # background errors: smooth (with a poor region) plus pixel-to-pixel
+    # poor region: a smooth error field of its own is added, scaled so that inside the region
+    # the smooth skin error has poor_background_factor times its rms (whatever the luck of
+    # the scene-wide field there)
+    poor = smoothstep((smooth_field(seed, "poor_background", shape, 30.0) - 0.85) / 0.5)
+    scale = 1.0 + (world.poor_background_factor - 1.0) * poor
+    skin_rms = np.array(world.bg_t_skin_rms)[surface]
+    smooth = smooth_field(seed, "bg_error_t_skin", shape, world.bg_smoothing_px)
+    if world.poor_background_factor > 1.0:
+        extra = smooth_field(seed, "bg_error_t_skin_poor", shape, world.bg_smoothing_px)
+        extra = extra / np.sqrt(np.mean(extra[poor > 0.5] ** 2))
+        smooth = smooth + np.sqrt(world.poor_background_factor**2 - 1.0) * poor * extra
+    e_skin = (skin_rms * smooth
+              + world.bg_pixel_t_skin_rms * field_rng(seed, "bg_pixel_t_skin").standard_normal(shape))
+    e_air = world.bg_t_air_rms * smooth_field(seed, "bg_error_t_air", shape, world.bg_smoothing_px)
+    e_wv = (world.bg_tcwv_rel_rms * smooth_field(seed, "bg_error_tcwv", shape, world.bg_smoothing_px)
+            + world.bg_pixel_tcwv_rel_rms * field_rng(seed, "bg_pixel_tcwv").standard_normal(shape))
+    return WorldFields(lam, lapse, excess, depth, ratio_86, ratio_12, e_skin, e_air, e_wv, scale)
+
+
+def apply_inversion(pressure, temperature, p_surf, excess, depth):
+    """Add a low-level inversion to profiles (n, n_lev), levels surface first. [K]
+
+    The air is warmed by ``excess`` × h/depth at h hPa above the surface up to the inversion
+    top (h = ``depth`` [hPa]); above it the warming fades linearly to 0 over max(4 depth,
+    40 hPa per K of excess), so the lapse rate there exceeds the profile's by less than
+    about 3 K km⁻¹. The air then warms with height inside the layer where the excess beats
+    the lapse-rate drop over its depth (about 2.5-6 K for 50-100 hPa). An excess of 0 changes
+    nothing. Ours: a simple shape for a surface-based inversion.
+    """
+    height = p_surf[:, None] - pressure  # [hPa] above the surface
+    d = depth[:, None]
+    e = excess[:, None]
+    fade = np.maximum(4.0 * d, 40.0 * e)
+    shape = np.where(height <= d, height / d, np.clip(1.0 - (height - d) / fade, 0.0, 1.0))
+    return temperature + e * shape
 
 
 # ---------------------------------------------------------------------------------------
 # Scene 1: night_front — a night over the invented Ardelle Sea
 # ---------------------------------------------------------------------------------------
-def make_night_front():
+def make_night_front(world=HONEST_WORLD):
     """Cold front over the Ardelle Sea at night, cirrus ahead of it, fog over the Miresk upwelling."""
     seed, shape, pixel_km = 1101, (300, 300), 2.0
     ny, nx = shape
     rows, cols = np.mgrid[0:ny, 0:nx].astype(float)
     lat, lon = latlon_grid(shape, lat_north=38.6, lon_west=-152.0, pixel_km=pixel_km)
+    profile = profile_fields(seed, shape, world)
 
     # front axis: a curved line from the south-west (row ~255, col 0) to the north-east
     u = cols / (nx - 1)
@@ -295,12 +554,15 @@ def make_night_front():
     p_surf = np.clip(p_surf, 1000.0, 1020.0)
     # moist warm sector, dry cold sector; drier aloft over the upwelling (subsiding air)
     saturation = 0.33 + 0.42 * warm - 0.30 * upwelling + 0.04 * smooth_field(seed, "humidity", shape, 18.0)
-    tcwv = np.clip(column_from_saturation(t_air, p_surf, saturation), 10.0, 50.0)
+    tcwv = np.clip(column_from_saturation(t_air, p_surf, saturation, profile[1]), 10.0, 50.0)
 
     sat_zenith = swath_zenith(shape, 5.0, 60.0)
     sol_zenith = solar_zenith(lat, lon, declination=-8.0, utc_hour=7.0)
     channels = CHANNEL_ORDER
-    emissivity = emissivity_field(seed, surface, channels)
+    emissivity = emissivity_field(seed, surface, channels, sat_zenith, world)
+    # the warm moist air over the cool patch lies in a surface inversion (ours: 4-7 K warmer at its
+    # top, 50-90 hPa up, than the lapse-rate profile)
+    fields = world_fields(seed, surface, world, profile, smoothstep((upwelling - 0.2) / 0.4), (4.0, 7.0), (50.0, 90.0))
 
     # frontal band: thick, high, ice tops on the leading side; mid-level water tops trailing
     half_width = 34.0 + 8.0 * smooth_field(seed, "front_width", shape, 40.0)
@@ -317,6 +579,8 @@ def make_night_front():
     p_base = np.minimum(p_top + thickness, p_surf - 60.0)
     tau_core = np.exp(to_range(smooth_field(seed, "front_tau", shape, 8.0), np.log(8.0), np.log(45.0)))
     tau = tau_core * (0.2 + 0.8 * smoothstep(inside / 25.0))
+    # the trailing mid-level cloud is broken on the pixel scale (post-frontal cells)
+    f_front = f_front * (1.0 - mid * (1.0 - broken_cover(seed, "front_broken", shape, world)))
     front = Cloud(f_front, tau, p_top, p_base, np.full(shape, BY_TEMPERATURE), FEATURES.index("frontal_band"))
 
     # cirrus streaks, parallel to the band: most ahead of it, a few over the cold sector
@@ -345,19 +609,20 @@ def make_night_front():
         "jet cirrus streaks run ahead of it; fog and low stratus lie over the cool upwelling water off "
         "the invented Cape Miresk (south-east of the scene centre).",
         seed, pixel_km, channels, lat, lon, sat_zenith, sol_zenith, surface, t_skin, t_air, tcwv, p_surf,
-        emissivity, (front, cirrus, fog),
+        emissivity, (front, cirrus, fog), world, fields,
     )
 
 
 # ---------------------------------------------------------------------------------------
 # Scene 2: day_coast — a summer day on the invented Corvenna coast
 # ---------------------------------------------------------------------------------------
-def make_day_coast():
+def make_day_coast(world=HONEST_WORLD):
     """Warm land with cumulus fields, cirrus, and a sea with a few stratocumulus patches."""
     seed, shape, pixel_km = 2202, (300, 300), 1.0
     ny, nx = shape
     rows, cols = np.mgrid[0:ny, 0:nx].astype(float)
     lat, lon = latlon_grid(shape, lat_north=-28.5, lon_west=-101.0, pixel_km=pixel_km)
+    profile = profile_fields(seed, shape, world)
 
     coast_col = 118.0 + 20.0 * np.sin(2.0 * np.pi * rows / 230.0 + 0.7)
     land = (cols - coast_col + 9.0 * smooth_field(seed, "coast_wiggle", shape, 9.0)) > 0.0
@@ -384,12 +649,16 @@ def make_day_coast():
     dryness = smooth_field(seed, "dryness", shape, 12.0)
     t_skin = np.where(land, t_air + to_range(dryness, 4.0, 12.0), sst)
     saturation = 0.58 - land_weight * (0.10 + 0.06 * dryness) + 0.04 * smooth_field(seed, "humidity", shape, 20.0)
-    tcwv = column_from_saturation(t_air, p_surf, saturation)
+    tcwv = column_from_saturation(t_air, p_surf, saturation, profile[1])
 
     sat_zenith = swath_zenith(shape, 22.0, 46.0, tilt=-0.1)
     sol_zenith = solar_zenith(lat, lon, declination=-15.0, utc_hour=15.75)
     channels = ("11um", "12um")
-    emissivity = emissivity_field(seed, surface, channels)
+    emissivity = emissivity_field(seed, surface, channels, sat_zenith, world)
+    # a shallow inversion over the cooler water of the coastal strip, inshore of the stratocumulus
+    # (ours: 3-5 K warmer at its top, 60-100 hPa up; fading out within ~10 km of the coast)
+    marine = (1.0 - land_weight) * np.exp(-offshore / 5.0)
+    fields = world_fields(seed, surface, world, profile, marine, (3.0, 5.0), (60.0, 100.0))
 
     # cumulus fields over land, none within ~12 km of the coast (sea breeze), denser in the hills
     density = special.ndtr(1.4 * smooth_field(seed, "cu_density", shape, 22.0) + 0.02 * (inland - 40.0))
@@ -397,7 +666,7 @@ def make_day_coast():
     threshold = 2.3 - 1.5 * density
     growth = cells - threshold
     allowed = smoothstep((inland - 12.0) / 6.0)
-    f_cu = smoothstep(growth / 0.5) * allowed
+    f_cu = smoothstep(growth / 0.5) * allowed * broken_cover(seed, "cu_broken", shape, world)
     strength = np.clip(growth / 1.2, 0.0, 1.0)
     p_base_cu = p_surf - to_range(smooth_field(seed, "cu_base", shape, 30.0), 80.0, 110.0)
     p_top_cu = p_base_cu - (40.0 + 220.0 * strength)
@@ -415,7 +684,8 @@ def make_day_coast():
 
     # a few stratocumulus patches over the sea, away from the coast
     blobs = smooth_field(seed, "sc_blobs", shape, 11.0)
-    f_sc = smoothstep((blobs - 1.45) / 0.35) * smoothstep((offshore - 8.0) / 6.0)
+    f_sc = (smoothstep((blobs - 1.45) / 0.35) * smoothstep((offshore - 8.0) / 6.0)
+            * broken_cover(seed, "sc_broken", shape, world))
     p_top_sc = p_surf - to_range(smooth_field(seed, "sc_top", shape, 15.0), 110.0, 160.0)
     p_base_sc = p_top_sc + to_range(smooth_field(seed, "sc_depth", shape, 10.0), 30.0, 60.0)
     tau_sc = 3.0 + 12.0 * np.clip((blobs - 1.45) / 1.0, 0.0, 1.0)
@@ -429,19 +699,20 @@ def make_day_coast():
         "fields inland, cirrus streaks (most in the north) and a few stratocumulus patches over the sea. "
         "Only the 11 and 12 µm channels (a daytime product without 3.9 µm).",
         seed, pixel_km, channels, lat, lon, sat_zenith, sol_zenith, surface, t_skin, t_air, tcwv, p_surf,
-        emissivity, (cirrus, cumulus, stratocu),
+        emissivity, (cirrus, cumulus, stratocu), world, fields,
     )
 
 
 # ---------------------------------------------------------------------------------------
 # Scene 3: polar_ice — polar night over the invented Kelvor ice pack
 # ---------------------------------------------------------------------------------------
-def make_polar_ice():
+def make_polar_ice(world=HONEST_WORLD):
     """Dry cold polar night: pack ice with a lead, open sea in one corner, low and thin ice cloud."""
     seed, shape, pixel_km = 3303, (150, 150), 2.0
     ny, nx = shape
     rows, cols = np.mgrid[0:ny, 0:nx].astype(float)
     lat, lon = latlon_grid(shape, lat_north=79.0, lon_west=163.0, pixel_km=pixel_km)
+    profile = profile_fields(seed, shape, world)
 
     edge = 0.75 * rows / (ny - 1) + 0.55 * (1.0 - cols / (nx - 1)) + 0.06 * smooth_field(seed, "ice_edge", shape, 6.0)
     open_sea = edge > 0.98
@@ -462,16 +733,21 @@ def make_polar_ice():
     t_skin = np.where(sea, 271.35 + 0.3 * special.ndtr(smooth_field(seed, "sst", shape, 10.0)), t_air - inversion)
     p_surf = 1015.0 + 6.0 * smooth_field(seed, "p_surf", shape, 50.0)
     saturation = 0.62 + 0.08 * sea_weight + 0.05 * smooth_field(seed, "humidity", shape, 20.0)
-    tcwv = np.clip(column_from_saturation(t_air, p_surf, saturation), 1.0, 5.0)
+    tcwv = np.clip(column_from_saturation(t_air, p_surf, saturation, profile[1]), 1.0, 5.0)
 
     sat_zenith = swath_zenith(shape, 34.0, 55.0, tilt=0.2)
     sol_zenith = solar_zenith(lat, lon, declination=-20.0, utc_hour=3.0)
     channels = CHANNEL_ORDER
-    emissivity = emissivity_field(seed, surface, channels)
+    emissivity = emissivity_field(seed, surface, channels, sat_zenith, world)
+    # over much of the ice the air also warms with height (ours: 5-9 K warmer at the inversion
+    # top, 50-100 hPa up, than the lapse-rate profile: a rise of about 1-6 K)
+    over_ice = 1.0 - np.clip(2.0 * sea_weight, 0.0, 1.0)
+    air_inversion = over_ice * smoothstep((smooth_field(seed, "air_inversion", shape, 25.0) + 0.3) / 0.8)
+    fields = world_fields(seed, surface, world, profile, air_inversion, (5.0, 9.0), (50.0, 100.0))
 
     # supercooled low cloud fed by the open water, drifting over the ice
     low_shape = smooth_field(seed, "low_cloud", shape, 7.0) + 1.4 * np.clip(2.0 * sea_weight, 0.0, 1.0)
-    f_low = smoothstep((low_shape - 0.9) / 0.4)
+    f_low = smoothstep((low_shape - 0.9) / 0.4) * broken_cover(seed, "low_broken", shape, world)
     p_top_low = p_surf - to_range(smooth_field(seed, "low_top", shape, 12.0), 30.0, 80.0)
     p_base_low = np.minimum(p_top_low + to_range(smooth_field(seed, "low_depth", shape, 10.0), 20.0, 60.0), p_surf)
     tau_low = 2.0 + 13.0 * np.clip((low_shape - 0.9) / 1.5, 0.0, 1.0)
@@ -493,7 +769,7 @@ def make_polar_ice():
         "Ostrel Sea in the south-west corner, supercooled low cloud fed by the open water and a thin ice "
         "cloud in the north-east.",
         seed, pixel_km, channels, lat, lon, sat_zenith, sol_zenith, surface, t_skin, t_air, tcwv, p_surf,
-        emissivity, (ice_cloud, low),
+        emissivity, (ice_cloud, low), world, fields,
     )
 
 
@@ -573,37 +849,43 @@ def place_cloud_levels(pressure, temperature, humidity, p_top, p_base):
     return p, t, q, k_top, k_base, p_base_used
 
 
-def _solve_chunk(t_skin, t_air, tcwv, p_surf, emissivity, sat_zenith, cloud, channels, coeffs):
+def _solve_chunk(col, cloud, channels, coeffs):
     """Clear and cloudy top-of-atmosphere radiances of one chunk of true columns.
 
-    Parameters are 1-D pixel arrays (emissivity (n, n_ch)); ``cloud`` holds 1-D arrays
-    fraction, optical_depth, top_pressure, base_pressure, phase for the same pixels.
+    ``col`` holds 1-D pixel arrays t_skin, t_air, tcwv, p_surf, sat_zenith, the world's
+    lapse_rate, humidity_exponent, inversion_excess, inversion_depth, and emissivity (n, n_ch);
+    ``cloud`` holds 1-D arrays fraction, optical_depth, top_pressure, base_pressure, phase,
+    ratio_8p6, ratio_12 (the ice cloud's τ ratios) for the same pixels. ``coeffs`` are the
+    world's channel absorption coefficients.
 
     Returns clear radiance (n, n_ch), cloudy radiance (n, n_ch; NaN where clear), the cloud
     top temperature [K], the resolved phase and the cloud base used [hPa].
 
     Notes
     -----
-    Gas: profile → layer optical depths → Planck radiances of levels and skin →
-    Schwarzschild solver (all from ``physics``). Cloud: its vertical optical depth τ_ch is
-    spread over the layers between its (moved) base and top levels in proportion to their
-    pressure thickness and added to the gas optical depth; the same solver gives L_cloudy.
-    τ_ch = τ at 8.6, 11, 12 µm (grey) and at 3.9 µm for ice; 0.6 τ at 3.9 µm for water.
-    A water cloud at 3.9 µm also reflects the downwelling sky radiance L↓ reaching its top,
-    with reflectivity r = 0.15 (1 − e^{−τ}); r is taken out of the radiance leaving the cloud
-    top (energy conservation, simply): with 𝒯 the slant transmittance from the cloud top to
-    space and A the emission of the air above it,
+    Gas: profile (the world's lapse rate and humidity shape, then its inversion) → layer
+    optical depths → Planck radiances of levels and skin → Schwarzschild solver (all from
+    ``physics``). Cloud: its vertical optical depth τ_ch is spread over the layers between
+    its (moved) base and top levels in proportion to their pressure thickness and added to
+    the gas optical depth; the same solver gives L_cloudy. Water: τ_ch = τ at 8.6, 11 and
+    12 µm, 0.6 τ at 3.9 µm. Ice: τ at 3.9 and 11 µm, ratio_8p6 · τ at 8.6 µm and ratio_12 · τ
+    at 12 µm (non-grey). A water cloud at 3.9 µm also reflects the downwelling sky radiance
+    L↓ reaching its top, with reflectivity r = 0.15 (1 − e^{−τ}); r is taken out of the
+    radiance leaving the cloud top (energy conservation, simply): with 𝒯 the slant
+    transmittance from the cloud top to space and A the emission of the air above it,
 
         L = [(1 − r) L_up,top + r L↓_top] 𝒯 + A .
 
     L↓_top is the solver's downwelling at the surface of a column whose layers below the
     cloud top are made transparent (so only the air above the cloud contributes).
     """
+    t_skin, emissivity = col["t_skin"], col["emissivity"]
     n = t_skin.size
     n_ch = len(channels)
-    prof = profile_from_surface(t_air, tcwv, p_surf, n_levels=TRUTH_LEVELS, top_pressure=TOP_PRESSURE)
+    prof = true_profile(col["t_air"], col["tcwv"], col["p_surf"], col["lapse_rate"], col["humidity_exponent"])
     p, t, q = (np.array(a) for a in prof)
-    mu = np.cos(np.deg2rad(sat_zenith))
+    t = apply_inversion(p, t, col["p_surf"], col["inversion_excess"], col["inversion_depth"])
+    mu = np.cos(np.deg2rad(col["sat_zenith"]))
     b_skin = channel_planck(channels, t_skin)
 
     cloudy = np.flatnonzero(cloud["fraction"] > 0.0)
@@ -637,10 +919,13 @@ def _solve_chunk(t_skin, t_air, tcwv, p_surf, emissivity, sat_zenith, cloud, cha
     share = np.where(inside, dp, 0.0) / (p_base_used - cloud["top_pressure"][cloudy])[:, None]
     names = [c.name for c in channels]
     factor = np.ones((cloudy.size, n_ch))
-    water = ph == WATER
+    water, ice = ph == WATER, ph == ICE
     if "3p9um" in names:
         i39 = names.index("3p9um")
         factor[water, i39] = WATER_ABSORPTION_RATIO_3P9
+    for ch, key in (("8p6um", "ratio_8p6"), ("12um", "ratio_12")):
+        if ch in names:
+            factor[ice, names.index(ch)] = cloud[key][cloudy][ice]
     tau_c = cloud["optical_depth"][cloudy]
     tau_cloud = share[:, :, None] * (tau_c[:, None] * factor)[:, None, :]
     tau_total = tau_gas[cloudy] + tau_cloud
@@ -674,41 +959,40 @@ def simulate_observation(scene, layer):
     """
     all_channels = default_channels()
     channels = [all_channels[c] for c in scene.channels]
-    coeffs = channel_coefficients(channels, tomllib.loads(ABSORPTION_TABLE.read_text()))
+    coeffs = channel_coefficients(channels, world_absorption_table(scene.world))
     shape = scene.t_skin.shape
     n = scene.t_skin.size
     n_ch = len(channels)
-    flat = {k: np.ascontiguousarray(getattr(scene, k), dtype=np.float64).reshape(n)
-            for k in ("t_skin", "t_air", "tcwv", "p_surf", "sat_zenith")}
-    emis = scene.emissivity.reshape(n, n_ch).astype(np.float64)
+    fields = scene.fields
+    col = {k: np.ascontiguousarray(getattr(scene, k), dtype=np.float64).reshape(n)
+           for k in ("t_skin", "t_air", "tcwv", "p_surf", "sat_zenith")}
+    col.update({k: np.ascontiguousarray(getattr(fields, k), dtype=np.float64).reshape(n)
+                for k in ("lapse_rate", "humidity_exponent", "inversion_excess", "inversion_depth")})
+    col["emissivity"] = scene.emissivity.reshape(n, n_ch).astype(np.float64)
     cloud = {k: np.asarray(layer[k]).reshape(n) for k in ("fraction", "optical_depth", "top_pressure",
                                                           "base_pressure", "phase")}
+    cloud["ratio_8p6"] = fields.ice_tau_ratio_8p6.reshape(n)
+    cloud["ratio_12"] = fields.ice_tau_ratio_12.reshape(n)
     radiance = np.empty((n, n_ch))
     top_t = np.empty(n)
     phase = np.empty(n, dtype=np.int8)
     base = np.empty(n)
     for start in range(0, n, CHUNK):
         sl = slice(start, min(start + CHUNK, n))
-        clear, cloudy, tt, ph, pb = _solve_chunk(
-            flat["t_skin"][sl], flat["t_air"][sl], flat["tcwv"][sl], flat["p_surf"][sl], emis[sl],
-            flat["sat_zenith"][sl], {k: v[sl] for k, v in cloud.items()}, channels, coeffs)
+        clear, cloudy, tt, ph, pb = _solve_chunk({k: v[sl] for k, v in col.items()},
+                                                 {k: v[sl] for k, v in cloud.items()}, channels, coeffs)
         f = cloud["fraction"][sl][:, None]
         radiance[sl] = np.where(f > 0.0, f * np.nan_to_num(cloudy) + (1.0 - f) * clear, clear)
         top_t[sl], phase[sl], base[sl] = tt, ph, pb
     bt_clean = channel_brightness_temperature(channels, radiance).reshape(shape + (n_ch,))
-    noise = field_rng(scene.seed, "instrument_noise").standard_normal(shape + (n_ch,)) * NOISE_K
+    noise = scene.noise * NOISE_K
     return bt_clean + noise, bt_clean, top_t.reshape(shape), phase.reshape(shape), base.reshape(shape)
 
 
 def background_state(scene):
-    """TRUE state plus smooth background errors: t_skin, t_air, tcwv as the analyst gets them."""
-    shape = scene.t_skin.shape
-    e_skin = smooth_field(scene.seed, "bg_error_t_skin", shape, BG_ERROR_SCALE_PX)
-    e_air = smooth_field(scene.seed, "bg_error_t_air", shape, BG_ERROR_SCALE_PX)
-    e_wv = smooth_field(scene.seed, "bg_error_tcwv", shape, BG_ERROR_SCALE_PX)
-    return (scene.t_skin + BG_T_SKIN_RMS * e_skin,
-            scene.t_air + BG_T_AIR_RMS * e_air,
-            scene.tcwv * (1.0 + BG_TCWV_REL_RMS * e_wv))
+    """TRUE state plus the world's background errors: t_skin, t_air, tcwv as the analyst gets them."""
+    f = scene.fields
+    return scene.t_skin + f.bg_t_skin_error, scene.t_air + f.bg_t_air_error, scene.tcwv * (1.0 + f.bg_tcwv_error)
 
 
 # ---------------------------------------------------------------------------------------
@@ -829,28 +1113,62 @@ def truth_dataset(scene, layer, top_t, phase, base_used, bg_attrs):
     for i, c in enumerate(scene.channels):
         data[f"emis_{c}_true"] = _float_var(scene.emissivity[..., i], 4, f"true surface emissivity, {c} channel", "1",
                                             "surface_longwave_emissivity")
+    data.update(world_variables(scene, cloudy, phase))
     attrs = _global_attrs(scene, "truth")
     attrs.update(bg_attrs)
     return xr.Dataset(data, coords=_grid_coords(scene), attrs=attrs)
 
 
-def generation_attrs():
-    """Global attributes that record the noise and error magnitudes and the cloud model."""
-    return {
+def world_variables(scene, cloudy, phase):
+    """Truth variables that describe the truth world of each pixel (CF-style attributes)."""
+    f = scene.fields
+    ice = cloudy & (phase == ICE)
+    excess = f.inversion_excess
+    data = {
+        "true_humidity_exponent": _float_var(f.humidity_exponent, 3,
+                                             "exponent lambda of the true humidity shape q = q0 (p/ps)^lambda", "1"),
+        "true_lapse_rate": _float_var(f.lapse_rate * 1.0e3, 3, "true tropospheric lapse rate", "K km-1"),
+        "true_inversion_excess": _float_var(excess, 2, "warming of the true air at the top of its low-level "
+                                            "inversion over the lapse-rate profile (0: no inversion)", "K"),
+        "true_inversion_depth": _float_var(np.where(excess > 0.0, f.inversion_depth, np.nan), 1,
+                                           "pressure depth of the true low-level inversion (NaN: no inversion)", "hPa"),
+    }
+    for c, ratio in (("8p6um", f.ice_tau_ratio_8p6), ("12um", f.ice_tau_ratio_12)):
+        if c in scene.channels:
+            data[f"cloud_tau_ratio_{c}"] = _float_var(
+                np.where(cloudy, np.where(ice, ratio, 1.0), np.nan), 3,
+                f"absorption optical depth of the cloud at {c[:-2].replace('p', '.')} um over that at 11 um "
+                "(1: grey water cloud; NaN: no cloud)", "1")
+    data["background_error_t_skin"] = _float_var(
+        f.bg_t_skin_error, 2, "background minus true skin temperature (smooth plus pixel-to-pixel)", "K")
+    data["background_error_t_skin"][2]["comment"] = "before the scene file's 0.01 K packing"
+    data["background_error_tcwv"] = _float_var(
+        f.bg_tcwv_error, 3, "background over true total column water vapour minus 1 (smooth plus pixel-to-pixel)", "1")
+    data["background_error_t_skin_scale"] = _float_var(
+        f.bg_t_skin_scale, 3, "rms factor of the smooth skin-temperature error (above 1: the poor-background region)", "1")
+    return data
+
+
+def generation_attrs(world):
+    """Global attributes that record the noise, the truth world and the cloud model."""
+    attrs = {
         "instrument_noise_K": NOISE_K,
         "instrument_noise": "Gaussian, independent per pixel and channel, added to the brightness temperature",
-        "background_error_t_skin_rms_K": BG_T_SKIN_RMS,
-        "background_error_t_air_rms_K": BG_T_AIR_RMS,
-        "background_error_tcwv_relative_rms": BG_TCWV_REL_RMS,
-        "background_error_smoothing_px": BG_ERROR_SCALE_PX,
         "background_error_note": ("scene file t_skin, t_air, tcwv = truth + smooth Gaussian error fields "
-                                  "(tcwv multiplicative); p_surf, surface, angles are exact"),
+                                  "(tcwv multiplicative; the smooth t_skin error per surface type and larger in a "
+                                  "poor-background region) + independent per-pixel errors of t_skin and tcwv; "
+                                  "p_surf, surface, angles are exact"),
         "truth_levels": TRUTH_LEVELS,
-        "cloud_model": ("single layer per pixel inside a layered Schwarzschild solver; grey at 8.6/11/12 um; "
-                        f"water at 3.9 um: absorption x{WATER_ABSORPTION_RATIO_3P9}, reflectivity "
-                        f"{WATER_REFLECTIVITY_MAX_3P9}(1-exp(-tau)) of the downwelling sky; ice at 3.9 um grey; "
-                        "partial cover mixed in radiance"),
+        "cloud_model": ("single layer per pixel inside a layered Schwarzschild solver; water grey at 8.6/11/12 um, "
+                        f"at 3.9 um absorption x{WATER_ABSORPTION_RATIO_3P9}, reflectivity "
+                        f"{WATER_REFLECTIVITY_MAX_3P9}(1-exp(-tau)) of the downwelling sky; ice non-grey "
+                        "(cloud_tau_ratio_<ch>), grey at 3.9 um; partial cover mixed in radiance"),
+        "truth_world": ("the truth is made with physics and errors that differ from the screening's: "
+                        "the truth_world_* attributes (make_scenes.TruthWorld; per-surface values in the order "
+                        "sea land ice, channel values 3.9 8.6 11 12 um) and sample_scenes/README.md"),
     }
+    attrs.update(world.attrs())
+    return attrs
 
 
 def _replace_atomically(path, write):
@@ -1011,15 +1329,71 @@ def print_checks(scene_ds, truth_ds):
 # ---------------------------------------------------------------------------------------
 # Main
 # ---------------------------------------------------------------------------------------
-def build(scene, out_dir):
-    # the fields handed over exactly are rounded first, so the file holds what the simulation used
-    scene = scene._replace(p_surf=np.round(scene.p_surf, 1), sat_zenith=np.round(scene.sat_zenith, 2),
-                           sol_zenith=np.round(scene.sol_zenith, 2))
+SCENE_MAKERS = {"night_front": make_night_front, "day_coast": make_day_coast, "polar_ice": make_polar_ice}
+
+
+def prepare(scene):
+    """Round the fields handed over exactly (so the file holds what the simulation used) and
+    draw the instrument noise (standard normal, (ny, nx, n_ch)) on the whole grid."""
+    shape = scene.t_skin.shape
+    noise = field_rng(scene.seed, "instrument_noise").standard_normal(shape + (len(scene.channels),))
+    return scene._replace(p_surf=np.round(scene.p_surf, 1), sat_zenith=np.round(scene.sat_zenith, 2),
+                          sol_zenith=np.round(scene.sol_zenith, 2), noise=noise)
+
+
+def cut_scene(scene, rows, cols):
+    """The part ``[rows, cols]`` of a prepared scene: every per-pixel array cut alike."""
+    shape = scene.t_skin.shape
+
+    def cut(v):
+        return v[rows, cols] if isinstance(v, np.ndarray) and v.shape[:2] == shape else v
+
+    return scene._replace(
+        **{k: cut(v) for k, v in scene._asdict().items() if k not in ("clouds", "fields")},
+        clouds=tuple(c._replace(**{k: cut(v) for k, v in c._asdict().items()}) for c in scene.clouds),
+        fields=WorldFields(*(cut(v) for v in scene.fields)))
+
+
+def render(scene):
+    """The scene and truth datasets (in memory) of a prepared scene."""
     layer = combine_clouds(scene.clouds, scene.t_skin.shape)
     bt, _, top_t, phase, base_used = simulate_observation(scene, layer)
     t_skin_bg, t_air_bg, tcwv_bg = background_state(scene)
     scene_ds = scene_dataset(scene, bt, t_skin_bg, t_air_bg, tcwv_bg)
-    truth_ds = truth_dataset(scene, layer, top_t, phase, base_used, generation_attrs())
+    truth_ds = truth_dataset(scene, layer, top_t, phase, base_used, generation_attrs(scene.world))
+    return scene_ds, truth_ds
+
+
+def make_scene_in_world(name, world=HONEST_WORLD, rows=slice(None), cols=slice(None)):
+    """Scene and truth datasets of (a cut of) a sample scene made in ``world``, in memory.
+
+    Parameters
+    ----------
+    name : {"night_front", "day_coast", "polar_ice"}
+    world : TruthWorld
+        E.g. ``dataclasses.replace(HONEST_WORLD, humidity_exponent=(2.0, 2.0))``.
+    rows, cols : slice
+        The part of the scene's grid to simulate; the state, clouds, errors and noise of every
+        pixel are those of the whole scene (made on the whole grid, then cut), so only the
+        radiative transfer shrinks with the cut.
+
+    Returns
+    -------
+    (xarray.Dataset, xarray.Dataset)
+        The scene (as in ``<name>.nc``) and its truth (as in ``<name>_truth.nc``), with row
+        and column indices restarting at 0; write them with :func:`write_netcdf`.
+    """
+    whole = prepare(SCENE_MAKERS[name](world))
+    (r0, r1, _), (c0, c1, _) = (s.indices(n) for s, n in zip((rows, cols), whole.t_skin.shape))
+    scene_ds, truth_ds = render(cut_scene(whole, rows, cols))
+    if (r1 - r0, c1 - c0) != whole.t_skin.shape:
+        for ds in (scene_ds, truth_ds):
+            ds.attrs["cut_of_scene"] = f"rows {r0}-{r1 - 1} and columns {c0}-{c1 - 1} of {name}"
+    return scene_ds, truth_ds
+
+
+def build(scene, out_dir):
+    scene_ds, truth_ds = render(prepare(scene))
     write_netcdf(scene_ds, out_dir / f"{scene.name}.nc")
     write_netcdf(truth_ds, out_dir / f"{scene.name}_truth.nc")
     return out_dir / f"{scene.name}.nc", out_dir / f"{scene.name}_truth.nc"

@@ -2,64 +2,100 @@
 
 The scenes come from sample_scenes/make_scenes.py, which puts clouds *inside* the layered
 radiative-transfer solution (a cloud layer of finite thickness, partial cover mixed in
-radiance, 0.1 K instrument noise, background errors of ~0.3 K in skin temperature and ~7 %
-in water vapour) — not through the screening's grey-cloud formula — so the skill is really
-measured. Targets (from the project's issue): probability of detection ≥ 0.95 for truth
-pixels with cloud fraction ≥ 0.5 and optical depth ≥ 1, and false-alarm rate ≤ 3 % on
-truth-clear pixels (a false alarm is a truth-clear pixel classed `cloud`; `marginal` is the
-analyst's "look here" class and is reported separately).
-"""
-from pathlib import Path
+radiance, 0.1 K instrument noise) — not through the screening's grey-cloud formula — and
+makes the truth in a world that DIFFERS from the one the screening assumes
+(``make_scenes.TruthWorld``; values and reasons in sample_scenes/README.md, "How the truth
+world differs from the screening's"):
 
+* gas absorption: self continuum ×1.1, foreign continuum ×0.9, water-vapour lines ×1.15;
+* humidity shape q ∝ (p/ps)^λ with λ varying smoothly over 2.3–3.6 (the screening: 3) and a
+  lapse rate varying over 6.0–7.2 K km⁻¹ (the screening: 6.5);
+* surface-based low-level inversions (night fog patch, coastal strip, much of the pack ice);
+* sea emissivity falling with view angle (80 % of a flat water surface's Fresnel fall) and a
+  wider land-emissivity spread; the screening's defaults use the table values;
+* non-grey ice cloud (τ12/τ11 1.1–1.2, τ8.6/τ11 0.85–0.95), broken sub-pixel cover in cumulus,
+  stratocumulus, polar low cloud and post-frontal cloud;
+* background errors smooth (skin 0.3 K sea / 1.0 K land / 0.6 K ice, ×2.5 in a
+  poor-background region of about a fifth of each scene; air 0.5 K; water vapour 7 %) AND
+  pixel-to-pixel (skin 0.3 K, water vapour 7 %).
+
+Targets (from the project's issue 13): probability of detection ≥ 0.97 for truth pixels with
+cloud fraction ≥ 0.5 and optical depth ≥ 1, and at most 2 % of truth-clear pixels classed
+`cloud` (`marginal` is the analyst's "look here" class and is reported separately).
+Where the screening on main misses a target, the test is an expected failure (strict) with
+the measured figure: the targets stay, no threshold or coefficient is tuned to meet them.
+Figures per scene: sample_scenes/README.md, "Skill of the screening on these scenes".
+"""
 import numpy as np
 import pytest
 import xarray as xr
 
 from cloudsieve.config import load_config
 from cloudsieve.session import Session
-from cloudsieve.codes import CLOUD, MARGINAL
+from skill_figures import MAX_CLEAR_CLASSED_CLOUD, MIN_POD, SAMPLES, skill_figures
 
-SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 SCENES = ["night_front", "day_coast", "polar_ice"]
+#: Scenes where main misses a target, with the figure measured there (sample files of this
+#: commit, screening of main at 8f9af8b: per-pixel clear-sky σ).
+MISSES_CLEAR = {
+    "day_coast": ("2.7 % of truth-clear pixels classed cloud, by the cold-departure test: clear sea 5.7 % "
+                  "(40 % inside the poor-background region, where the skin error is 2.5 times the configured σ; "
+                  "4.1 % outside), clear land 0.8 %"),
+}
+MISSES_POD = {
+    "polar_ice": ("POD 0.726: 1463 of 3608 polar low-cloud target pixels missed, broken supercooled cloud (cover "
+                  "0.5-0.9) whose top is warmer than the ice (11 um departure about +2 K) and whose 3.9-11 um "
+                  "contrast (about -1.9 K) stays inside the night fog test's 3 sigma"),
+}
+_cache = {}
 
 
-@pytest.fixture(scope="module", params=SCENES)
-def screened(request):
-    model = Session.open(SAMPLES / f"{request.param}.nc", load_config(), journal=False)
-    truth = xr.open_dataset(SAMPLES / f"{request.param}_truth.nc")
-    return request.param, model, truth
+def screened(name):
+    if name not in _cache:
+        model = Session.open(SAMPLES / f"{name}.nc", load_config(), journal=False)
+        with xr.open_dataset(SAMPLES / f"{name}_truth.nc") as truth:
+            truth = truth.load()
+        _cache[name] = model, truth, skill_figures(model.result, truth)
+    return _cache[name]
 
 
-def test_probability_of_detection(screened):
-    name, model, truth = screened
-    target = (truth["cloud_fraction"].values >= 0.5) & (truth["cloud_optical_depth"].values >= 1.0)
-    assert target.sum() > 500, "the scene must hold enough clearly cloudy pixels to measure skill"
-    pod = np.mean(model.result.mask[target] == CLOUD)
-    print(f"{name}: POD {pod:.4f} over {target.sum()} pixels")
-    assert pod >= 0.95
+def _params(misses):
+    return [pytest.param(n, marks=pytest.mark.xfail(strict=True, reason=misses[n])) if n in misses else n
+            for n in SCENES]
 
 
-def test_false_alarm_rate(screened):
-    name, model, truth = screened
-    clear = truth["cloud_fraction"].values == 0
-    assert clear.sum() > 500
-    far = np.mean(model.result.mask[clear] == CLOUD)
-    marginal = np.mean(model.result.mask[clear] == MARGINAL)
-    print(f"{name}: FAR {far:.4f}, marginal on clear {marginal:.4f} over {clear.sum()} pixels")
-    assert far <= 0.03
+@pytest.mark.parametrize("name", _params(MISSES_POD))
+def test_probability_of_detection(name):
+    model, truth, fig = screened(name)
+    assert fig.n_target > 500, "the scene must hold enough clearly cloudy pixels to measure skill"
+    print(fig.line(name))
+    assert fig.pod >= MIN_POD
 
 
-def test_clear_sky_departures_unbiased(screened):
-    """Truth-clear departures centre near 0 K with a spread set by the background errors."""
-    name, model, truth = screened
+@pytest.mark.parametrize("name", _params(MISSES_CLEAR))
+def test_truth_clear_pixels_classed_cloud(name):
+    model, truth, fig = screened(name)
+    assert fig.n_clear > 500
+    print(fig.line(name))
+    assert fig.clear_classed_cloud <= MAX_CLEAR_CLASSED_CLOUD
+
+
+@pytest.mark.parametrize("name", SCENES)
+def test_clear_sky_departures_unbiased(name):
+    """Truth-clear departures centre near 0 K with a spread set by the background errors
+    and the differences of the truth world (0.5 and 1.5 K: ours, a few times the 0.3-0.5 K
+    the background errors alone give)."""
+    model, truth, fig = screened(name)
     clear = (truth["cloud_fraction"].values == 0) & (model.result.mask != 3)
     d = model.result.departure["11um"][clear]
+    print(f"{name}: truth-clear 11 um departure {np.nanmean(d):+.2f} ± {np.nanstd(d):.2f} K")
     assert abs(np.nanmean(d)) < 0.5
     assert np.nanstd(d) < 1.5
 
 
-def test_daylight_scene_skips_night_only_test(screened):
-    name, model, truth = screened
+@pytest.mark.parametrize("name", SCENES)
+def test_daylight_scene_skips_night_only_test(name):
+    model, truth, fig = screened(name)
     if name == "day_coast":
         assert "night_fog_contrast" in model.result.skipped
         assert "split_window_excess" not in model.result.skipped
@@ -70,17 +106,16 @@ def test_daylight_scene_skips_night_only_test(screened):
 def test_night_fog_contrast_means_low_cloud():
     """The fog test's bit is read as "fog or low water cloud": on the night scene it fires on
     the invented fog patch and never on cold high cloud (truth top colder than 260 K)."""
-    model = Session.open(SAMPLES / "night_front.nc", load_config(), journal=False)
-    truth = xr.open_dataset(SAMPLES / "night_front_truth.nc")
+    model, truth, fig = screened("night_front")
     fired = np.nan_to_num(model.result.margins["night_fog_contrast"], nan=-1.0) > 0
     top_t = truth["cloud_top_temperature"].values
     cold_high = (truth["cloud_fraction"].values > 0) & (top_t < 260.0)
     assert cold_high.sum() > 500
-    assert not fired[cold_high].any()
     meanings = truth["cloud_feature"].attrs["flag_meanings"].split()
     fog = truth["cloud_feature"].values == meanings.index("fog_low_stratus")
     thick_fog = fog & (truth["cloud_fraction"].values >= 0.5) & (truth["cloud_optical_depth"].values >= 1.0)
     assert thick_fog.sum() > 200
     hit = fired[thick_fog].mean()
-    print(f"night_fog_contrast: fires on {hit:.3f} of thick fog pixels, on {fired[cold_high].mean():.3f} of cold high cloud")
+    print(f"night_fog_contrast: fires on {hit:.3f} of thick fog pixels, on {fired[cold_high].mean():.4f} of cold high cloud")
+    assert not fired[cold_high].any()
     assert hit >= 0.8
