@@ -318,10 +318,11 @@ class TruthWorld:
     builder's defaults (humidity exponent 3, lapse rate 6.5 K km⁻¹, no inversion), the table
     emissivities of ``[surface.emissivity]`` (sea without view-angle dependence by default)
     and a grey cloud, and it expects background errors of the size given in
-    ``[background_errors]`` / ``[clear_sky_uncertainty]``. The truth world changes each of
-    these by an amount a real analyst would meet. Ranges ``(lo, hi)`` vary smoothly across a
-    scene (uniform distribution between them); ``(x, x)`` is a constant. Sources: "ours"
-    (chosen for these invented scenes) or "from memory" (recalled, not looked up).
+    ``[background_errors]`` (``[background_noise]`` of them pixel-to-pixel). The truth world
+    changes each of these by an amount a real analyst would meet. Ranges ``(lo, hi)`` vary
+    smoothly across a scene (uniform distribution between them); ``(x, x)`` is a constant.
+    Sources: "ours" (chosen for these invented scenes) or "from memory" (recalled, not
+    looked up).
     """
 
     #: factor on the self continuum (a, b, outside_k296). Ours: published versions of the

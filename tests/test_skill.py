@@ -16,7 +16,7 @@ world differs from the screening's"):
 * non-grey ice cloud (τ12/τ11 1.1–1.2, τ8.6/τ11 0.85–0.95), broken sub-pixel cover in cumulus,
   stratocumulus, polar low cloud and post-frontal cloud;
 * background errors smooth (skin 0.3 K sea / 1.0 K land / 0.6 K ice, ×2.5 in a
-  poor-background region of about a fifth of each scene; air 0.5 K; water vapour 7 %) AND
+  poor-background region of 12–16 % of each scene; air 0.5 K; water vapour 7 %) AND
   pixel-to-pixel (skin 0.3 K, water vapour 7 %).
 
 Targets (from the project's issue 13): probability of detection ≥ 0.97 for truth pixels with
