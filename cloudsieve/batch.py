@@ -29,8 +29,8 @@ from .codes import CLASS_NAMES, CLEAR, NO_DATA
 from .invert import CloudLayer, inversion_channels, invert_pixels
 from .journal import Journal, journal_path
 from .scene import load_scene
-from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, result_notes, scene_plan, screen_arrays,
-                     summary_row)
+from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, result_notes, scene_plan,
+                     screen_arrays, summary_row)
 from .simulate import (ChannelSet, clear_sky_source, gather_columns, level_chunk, simulate_columns, slant_path,
                        surface_emissivity, use_scene_clear_sky)
 from .uncertainty import sigma_grids
@@ -165,19 +165,18 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     core = slice(spec.start - spec.lo, spec.stop - spec.lo)
     mask, bits = scr.mask[core], scr.bits[core]
     departure = {c: d[core] for c, d in scr.departure.items()}
-    sums = bias_sums(departure, path[core], mask, bits, valid[core])
+    sums = bias_sums(departure, path[core], mask, bits, valid[core], fields["surface"][core])
     if not final:
         return BlockOutcome(spec.start, spec.stop, sums, clear=clear[:, core])
     cloud = CloudLayer.empty(mask.shape, plan.inv, cfg["cloud"]["top"])
     core_fields = {k: v[core] for k, v in fields.items()}
     todo = np.flatnonzero((valid[core] & (mask != CLEAR) & (mask != NO_DATA)).ravel())
-    bias_line = {c: (b["a"], b["b"]) for c, b in plan.bias.items()} if plan.bias else None
     for a in range(0, todo.size, level_chunk(cfg)):
         part = todo[a:a + level_chunk(cfg)]
         r = simulate_columns(gather_columns(core_fields, emis[:, core], part), chset, cfg["simulation"], levels=True)
         invert_pixels(cloud, part, {c: v[core] for c, v in obs.items()}, {c: clear[i, core] for i, c in enumerate(names)},
                       (r.level_pressure, r.level_temperature, r.opaque_radiance), fields["sat_zenith"][core],
-                      {c: v[core] for c, v in sigma.items()}, chset, cfg, path[core], bias_line)
+                      {c: v[core] for c, v in sigma.items()}, chset, cfg)
     result = export.ResultBlock(spec.start, clear[:, core], departure, {t: m[core] for t, m in scr.margins.items()},
                                 mask, bits, cloud, {c: sigma[c][core] for c in names})
     variables = export.block_variables(result, plan.header)

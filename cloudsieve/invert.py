@@ -196,8 +196,7 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
                            res.top_temperature, res.status, res.uncertain)
 
 
-def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear, chset, config, slant_path=None,
-                  bias=None):
+def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear, chset, config):
     """Invert pixels ``flat_index`` of a grid (or block) and write them into ``layer``.
 
     Parameters
@@ -213,18 +212,12 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
     sigma_clear : mapping channel -> (y, x) clear-sky 1-σ [K] (or one (y, x) array for all)
     chset : simulate.ChannelSet of the scene
     config : dict
-    slant_path : (y, x) [kg m⁻²], with ``bias`` : dict channel -> (a [K], b [K per kg m⁻²])
-        Clear-sky bias line added to the clear sky when the bias is removed.
     """
     inv = layer.channels
     ci = [chset.names.index(c) for c in inv]
     take = lambda a: np.asarray(a).ravel()[flat_index]  # noqa: E731
     obs_bt = np.stack([take(obs[c]) for c in inv], axis=-1)
     clr_bt = np.stack([take(clear[c]) for c in inv], axis=-1).astype(float)
-    if bias:
-        path = take(slant_path).astype(float)
-        clr_bt = clr_bt + np.stack([bias[c][0] + bias[c][1] * path if c in bias else np.zeros(path.size)
-                                    for c in inv], axis=-1)
     lp, lt, opq = levels
     sig = (np.stack([take(sigma_clear[c]) for c in inv], axis=-1) if isinstance(sigma_clear, dict)
            else take(sigma_clear))
@@ -233,7 +226,7 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
     layer.put(flat_index, res)
 
 
-def invert_all(scene, sim, config, sigma_clear, bias=None, only=None, column_simulator=None):
+def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None):
     """The grey-cloud inversion of every valid pixel of an in-memory scene (the dashboard's stage 2).
 
     Parameters
@@ -243,8 +236,6 @@ def invert_all(scene, sim, config, sigma_clear, bias=None, only=None, column_sim
         simulates each block's columns again)
     config : dict
     sigma_clear : mapping channel -> (y, x) clear-sky 1-σ [K] (``Simulation.sigma``)
-    bias : dict channel -> (a, b), optional
-        Clear-sky bias fit to add to the clear sky (when bias removal is on).
     only : (y, x) bool array, optional
         Invert just these pixels; the others get status not_cloudy and NaN.
     column_simulator : simulate.ColumnSimulator, optional
@@ -275,7 +266,7 @@ def invert_all(scene, sim, config, sigma_clear, bias=None, only=None, column_sim
             levels = (sim.level_pressure[blk], sim.level_temperature[blk], sim.opaque_radiance[blk])
         else:
             levels = column_simulator.levels(flat)
-        invert_pixels(layer, flat, obs, clear, levels, zen, sigma_clear, sim.chset, config, sim.slant_path, bias)
+        invert_pixels(layer, flat, obs, clear, levels, zen, sigma_clear, sim.chset, config)
 
     # blocks write disjoint pixels of the layer, so they run on the configured threads
     with ThreadPoolExecutor(max(1, int(config["simulation"].get("threads", 1)))) as pool:

@@ -8,10 +8,11 @@ bias fit is a closed-form least-squares line from sums that add over blocks
 :func:`screen_scene` give the same line.
 """
 from dataclasses import dataclass, field
+import json
 
 import numpy as np
 
-from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, NO_DATA
+from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, NO_DATA, SURFACES
 from .invert import CloudLayer, inversion_notes
 from .registry import REGISTRY, SceneFacts, ScreeningInputs, bit_table
 
@@ -223,48 +224,81 @@ def classify(valid, margins, thresholds, fraction, night=None, has_3p9=False, ed
     return mask, bits
 
 
-def bias_sums(departure, slant_path, mask, bits, valid):
+def bias_sums(departure, slant_path, mask, bits, valid, surface):
     """Sums for the clear-sky bias fit over pixels passing every test (additive over blocks).
 
-    Returns dict channel -> array [n, Σx, Σy, Σx², Σxy, Σy²] (float64), x = W sec θ.
+    Returns dict channel -> (4, 6) array: rows sea, land, ice and all surfaces, each
+    [n, Σx, Σy, Σx², Σxy, Σy²] (float64), x = W sec θ.
     """
     use = valid & (mask == CLEAR) & ((bits & bit_table().get("warm_departure", 0)) == 0)
     x_all = np.asarray(slant_path, dtype=float)
+    surface = np.asarray(surface)
     out = {}
     for ch, d in departure.items():
         ok = use & np.isfinite(d) & np.isfinite(x_all)
-        x = x_all[ok]
-        y = np.asarray(d, dtype=float)[ok]
-        out[ch] = np.array([x.size, x.sum(), y.sum(), (x * x).sum(), (x * y).sum(), (y * y).sum()])
+        rows = []
+        for sel in [ok & (surface == code) for code in range(len(SURFACES))] + [ok]:
+            x = x_all[sel]
+            y = np.asarray(d, dtype=float)[sel]
+            rows.append([x.size, x.sum(), y.sum(), (x * x).sum(), (x * y).sum(), (y * y).sum()])
+        out[ch] = np.array(rows)
     return out
+
+
+def _line(sums, min_pixels):
+    """{"a", "b", "n", "rms"} of the least-squares line from one row of sums (NaN below min_pixels)."""
+    n, sx, sy, sxx, sxy, syy = sums
+    n = int(n)
+    if n < min_pixels:
+        return {"a": float("nan"), "b": float("nan"), "n": n, "rms": float("nan")}
+    var_x = sxx - sx * sx / n
+    if var_x <= 1e-12 * max(sxx, 1.0):
+        a, b = sy / n, 0.0
+    else:
+        b = (sxy - sx * sy / n) / var_x
+        a = (sy - b * sx) / n
+    # Rounded far below any physical meaning (1e-9 K, 1e-12 K per kg m⁻²) so that sums
+    # accumulated in a different order (the chunked path adds them block by block) give
+    # the very same line.
+    a, b = round(float(a), 9), round(float(b), 12)
+    # residual sum of squares Σ(y − a − b x)² expanded in the sums (rounded likewise)
+    rss = syy - 2 * a * sy - 2 * b * sxy + n * a * a + 2 * a * b * sx + b * b * sxx
+    return {"a": float(a), "b": float(b), "n": n, "rms": round(float(np.sqrt(max(rss, 0.0) / n)), 9)}
 
 
 def bias_from_sums(sums, min_pixels):
-    """Least-squares line departure = a + b·x from :func:`bias_sums` (closed form).
+    """Least-squares lines departure = a + b·x from :func:`bias_sums` (closed form).
 
-    Returns dict channel -> {"a" [K], "b" [K per kg m⁻²], "n", "rms" [K]}; a, b NaN when
-    fewer than ``min_pixels`` clear pixels; b = 0 when x does not vary.
+    Returns dict channel -> {"a" [K], "b" [K per kg m⁻²], "n", "rms" [K], "surfaces"}: the line
+    of all surfaces together, and in ``surfaces`` the line of each surface type with at least
+    ``min_pixels`` clear pixels (surfaces differ: land emissivity, ice inversions). a, b NaN
+    when fewer than ``min_pixels`` clear pixels in all; b = 0 when x does not vary.
     """
     out = {}
-    for ch, (n, sx, sy, sxx, sxy, syy) in sums.items():
-        n = int(n)
-        if n < min_pixels:
-            out[ch] = {"a": float("nan"), "b": float("nan"), "n": n, "rms": float("nan")}
-            continue
-        var_x = sxx - sx * sx / n
-        if var_x <= 1e-12 * max(sxx, 1.0):
-            a, b = sy / n, 0.0
-        else:
-            b = (sxy - sx * sy / n) / var_x
-            a = (sy - b * sx) / n
-        # Rounded far below any physical meaning (1e-9 K, 1e-12 K per kg m⁻²) so that sums
-        # accumulated in a different order (the chunked path adds them block by block) give
-        # the very same line.
-        a, b = round(float(a), 9), round(float(b), 12)
-        # residual sum of squares Σ(y − a − b x)² expanded in the sums (rounded likewise)
-        rss = syy - 2 * a * sy - 2 * b * sxy + n * a * a + 2 * a * b * sx + b * b * sxx
-        out[ch] = {"a": float(a), "b": float(b), "n": n, "rms": round(float(np.sqrt(max(rss, 0.0) / n)), 9)}
+    for ch, rows in sums.items():
+        rows = np.asarray(rows, dtype=float).reshape(-1, 6)
+        fit = _line(rows[-1], min_pixels)
+        fit["surfaces"] = {name: line for name, row in zip(SURFACES, rows[:-1])
+                           if (line := _line(row, min_pixels))["n"] >= min_pixels}
+        out[ch] = fit
     return out
+
+
+def bias_field(fit, surface, slant_path):
+    """(y, x) clear-sky bias [K] of one channel's fit (:func:`bias_from_sums`): each pixel takes
+    its surface type's line, or the line of all surfaces where its type has none."""
+    x = np.asarray(slant_path, dtype=float)
+    out = fit["a"] + fit["b"] * x
+    for name, line in fit.get("surfaces", {}).items():
+        out = np.where(np.asarray(surface) == SURFACES.index(name), line["a"] + line["b"] * x, out)
+    return out
+
+
+def bias_key(bias):
+    """A hashable identity of a set of bias fits (None without one)."""
+    if not bias:
+        return None
+    return json.dumps({c: {k: v for k, v in b.items() if k != "applied"} for c, b in bias.items()}, sort_keys=True)
 
 
 def edits_grid(shape, edits):
@@ -319,27 +353,27 @@ def screen_arrays(obs, bt_clear, fields, config, sigma, bias=None, edit_codes=No
     -------
     ScreenedArrays
     """
-    bias_key = tuple(sorted((c, b["a"], b["b"]) for c, b in bias.items())) if bias else None
+    key = bias_key(bias)
     if cache is not None:
         # keep the arrays of the raw departures and of the latest bias line only
         for k in [k for k in cache if isinstance(k, tuple) and k[0] in ("departure", "texture")
-                  and k[-1] not in (None, bias_key)]:
+                  and k[-1] not in (None, key)]:
             del cache[k]
     # float64 throughout: a float32 field would keep float32 arithmetic (numpy promotion rules)
     fields = dict(fields, slant_path=np.asarray(fields["slant_path"], dtype=float))
     if plan is None:
         plan = scene_plan(fields, config, tuple(bt_clear))
-    if cache is not None and ("departure", bias_key) in cache:
-        departure = cache[("departure", bias_key)]
+    if cache is not None and ("departure", key) in cache:
+        departure = cache[("departure", key)]
     else:
         departure = {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float))
                      for ch in bt_clear}
         if bias:
-            departure = {ch: d - (bias[ch]["a"] + bias[ch]["b"] * fields["slant_path"])
+            departure = {ch: d - bias_field(bias[ch], fields["surface"], fields["slant_path"])
                          for ch, d in departure.items()}
         if cache is not None:
-            cache[("departure", bias_key)] = departure
-    tests = run_tests(fields, config, departure, sigma, plan, cache, bias_key)
+            cache[("departure", key)] = departure
+    tests = run_tests(fields, config, departure, sigma, plan, cache, key)
     mask, bits = classify(fields["valid"], tests.margins, tests.thresholds, config["screening"]["marginal_fraction"],
                           tests.night, "3p9um" in departure, edit_codes)
     win = plan.facts.window_channel
@@ -385,8 +419,8 @@ def screen_scene(scene, sim, config, edits=None, cache=None):
     flags = cache["flags"] if cache is not None else scene_flags(fields["sol_zenith"], fields["valid"], config)
     plan = plan_tests(sim.channels, config, *flags)
     out = screen_arrays(obs, clear, fields, config, sim.sigma, None, edit_codes, plan, cache=cache)
-    bias = bias_from_sums(bias_sums(out.departure, sim.slant_path, out.mask, out.bits, fields["valid"]),
-                          config["bias"]["min_pixels"])
+    bias = bias_from_sums(bias_sums(out.departure, sim.slant_path, out.mask, out.bits, fields["valid"],
+                                    fields["surface"]), config["bias"]["min_pixels"])
     applied, note = bias_decision(bias, config)
     if applied:
         out = screen_arrays(obs, clear, fields, config, sim.sigma, bias, edit_codes, plan, cache=cache)

@@ -153,19 +153,16 @@ class Session:
         self.update()
 
     # ------------------------------------------------------------------ computing
-    def _cloud_layer(self, cfg, bias_applied, mask):
+    def _cloud_layer(self, cfg, mask):
         only = None
         if self.invert_scope == "flagged":
             only = (mask == CLOUD) | (mask == MARGINAL)
         cc = cfg["cloud"]
         key = (cc["top"], (cc["top_pressure"], cc.get("top_height")) if cc["top"] == "fixed" else None,
-               tuple(sorted((c, b["a"], b["b"]) for c, b in bias_applied.items())) if bias_applied else None,
                None if only is None else hash(np.packbits(only).tobytes()))
         if key != self._cloud_key:
             t0 = time.perf_counter()
-            self._cloud = invert_all(self.scene, self.sim, cfg, self.sim.sigma,
-                                     {c: (b["a"], b["b"]) for c, b in bias_applied.items()} if bias_applied else None,
-                                     only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None)
+            self._cloud = invert_all(self.scene, self.sim, cfg, self.sim.sigma, only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None)
             if self.lean:
                 self._cloud = self._cloud.as_float32()
             self._cloud_key = key
@@ -183,8 +180,7 @@ class Session:
         edits = self.edits()
         self._shown_latest_edit = edits[-1]["id"] if edits else None
         res = screen_scene(self.scene, self.sim, cfg, edits=edits, cache=self._screen_cache)
-        bias_applied = {c: b for c, b in res.bias.items() if b.get("applied")}
-        res.cloud = self._cloud_layer(cfg, bias_applied, res.mask).masked(res.mask)
+        res.cloud = self._cloud_layer(cfg, res.mask).masked(res.mask)
         if self.lean:  # exports write float32 anyway; the departures and σ stay shared with the cache
             res.margins = {t: m.astype(np.float32) for t, m in res.margins.items()}
             # the dashboard shows each threshold as its median over valid pixels: keep just that
@@ -282,9 +278,10 @@ class Session:
             inputs["lon"] = _num(ds["lon"].values[row, col])
         channels = {}
         for i, ch in enumerate(self.sim.channels):
-            channels[ch] = {"observed": _num(ds[f"bt_{ch}"].values[row, col]),
-                            "clear": _num(self.sim.bt_clear[i, row, col]),
-                            "departure": _num(res.departure[ch][row, col])}
+            obs, clear, dep = (float(ds[f"bt_{ch}"].values[row, col]), float(self.sim.bt_clear[i, row, col]),
+                               float(res.departure[ch][row, col]))
+            channels[ch] = {"observed": _num(obs), "clear": _num(clear), "departure": _num(dep),
+                            "bias_removed": _num(obs - clear - dep), "sigma": _num(self.sim.sigma[ch][row, col])}
         margins = {t: _num(m[row, col]) for t, m in res.margins.items()}
         cl = res.cloud
         cloud = {"status": pcloud.STATUS_NAMES[int(cl.status[row, col])],

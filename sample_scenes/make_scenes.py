@@ -381,6 +381,10 @@ class TruthWorld:
     #: the smooth skin error is this many times larger (rms) in a poor-background region of
     #: 12-16 % of each scene (an analysis gone wrong there), larger than the config's σ. Ours.
     poor_background_factor: float = 2.5
+    #: instrument noise as a constant radiance, NOISE_K at 300 K: its temperature equivalent
+    #: grows at cold scenes, fastest at 3.9 µm (common practice for thermal detectors; the
+    #: screening's [instrument] assumes the same). False: NOISE_K at every temperature.
+    constant_radiance_noise: bool = True
 
     def attrs(self):
         """The world as global attributes of a truth file (``truth_world_<field>``)."""
@@ -987,6 +991,9 @@ def simulate_observation(scene, layer):
         top_t[sl], phase[sl], base[sl] = tt, ph, pb
     bt_clean = channel_brightness_temperature(channels, radiance).reshape(shape + (n_ch,))
     noise = scene.noise * NOISE_K
+    if scene.world.constant_radiance_noise:  # NOISE_K at 300 K, its radiance the same at every temperature
+        for k, ch in enumerate(channels):
+            noise[..., k] *= ch.radiance_derivative(300.0) / ch.radiance_derivative(bt_clean[..., k])
     return bt_clean + noise, bt_clean, top_t.reshape(shape), phase.reshape(shape), base.reshape(shape)
 
 
@@ -1154,7 +1161,9 @@ def generation_attrs(world):
     """Global attributes that record the noise, the truth world and the cloud model."""
     attrs = {
         "instrument_noise_K": NOISE_K,
-        "instrument_noise": "Gaussian, independent per pixel and channel, added to the brightness temperature",
+        "instrument_noise": ("Gaussian, independent per pixel and channel, added to the brightness temperature; "
+                             "NEdT = instrument_noise_K at 300 K, a constant radiance (grows at cold scenes) when "
+                             "truth_world_constant_radiance_noise is 1"),
         "background_error_note": ("scene file t_skin, t_air, tcwv = truth + smooth Gaussian error fields "
                                   "(tcwv multiplicative; the smooth t_skin error per surface type and larger in a "
                                   "poor-background region) + independent per-pixel errors of t_skin and tcwv; "

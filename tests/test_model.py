@@ -277,7 +277,8 @@ def test_pixel_info_of_a_cloudy_pixel(model):
     assert {"t_skin", "t_air", "tcwv", "sat_zenith", "surface"} <= set(info["inputs"])
     assert set(info["channels"]) == set(model.scene.channels)
     for ch, v in info["channels"].items():
-        assert v["departure"] == pytest.approx(v["observed"] - v["clear"], abs=1e-3)
+        assert v["departure"] == pytest.approx(v["observed"] - v["clear"] - v["bias_removed"], abs=1e-3)
+        assert v["sigma"] > 0
     assert set(info["margins"]) == set(model.result.margins)
     assert any(m is not None and m > 0 for t, m in info["margins"].items() if t in registered("cloud"))
     cloud = info["cloud"]

@@ -77,9 +77,31 @@ def test_bias_fit_recovers_a_line(small):
     dep = {"11um": 0.3 + 0.02 * x + np.random.default_rng(0).normal(0, 0.01, x.shape)}
     mask = np.zeros(x.shape, np.int8)
     bits = np.zeros(x.shape, np.uint16)
-    fit = bias_from_sums(bias_sums(dep, x, mask, bits, np.ones(x.shape, bool)), 10)
+    surface = np.zeros(x.shape, np.int8)
+    fit = bias_from_sums(bias_sums(dep, x, mask, bits, np.ones(x.shape, bool), surface), 10)
     assert fit["11um"]["a"] == pytest.approx(0.3, abs=0.02)
     assert fit["11um"]["b"] == pytest.approx(0.02, abs=0.001)
+    assert fit["11um"]["surfaces"]["sea"]["a"] == fit["11um"]["a"] and set(fit["11um"]["surfaces"]) == {"sea"}
+
+
+def test_each_surface_gets_its_own_bias_line():
+    """Two surface types with different biases (common practice: land and sea backgrounds err
+    differently): each gets its own line, the joint line lies between them, and removing the
+    fit takes each pixel's own surface line."""
+    from cloudsieve.screen import bias_field
+
+    rng = np.random.default_rng(1)
+    x = rng.uniform(10.0, 60.0, (50, 40))
+    surface = np.where(np.arange(40) < 20, 0, 1)[None, :].repeat(50, 0).astype(np.int8)
+    dep = {"11um": np.where(surface == 0, -0.2 + 0.01 * x, 0.8 - 0.02 * x) + rng.normal(0, 0.01, x.shape)}
+    zeros = np.zeros(x.shape, np.int8)
+    fit = bias_from_sums(bias_sums(dep, x, zeros, zeros.astype(np.uint16), np.ones(x.shape, bool), surface), 100)
+    sea, land = fit["11um"]["surfaces"]["sea"], fit["11um"]["surfaces"]["land"]
+    assert (sea["a"], sea["b"]) == (pytest.approx(-0.2, abs=0.02), pytest.approx(0.01, abs=0.001))
+    assert (land["a"], land["b"]) == (pytest.approx(0.8, abs=0.02), pytest.approx(-0.02, abs=0.001))
+    assert fit["11um"]["n"] == sea["n"] + land["n"] == x.size
+    residual = dep["11um"] - bias_field(fit["11um"], surface, x)
+    assert np.abs(residual).max() < 0.06
 
 
 def test_bias_removal_centres_clear_departures(cfg):
@@ -100,7 +122,9 @@ def test_user_clear_sky_replaces_simulation(tmp_path, cfg):
     df.to_csv(path, index=False)
     scene = load_scene(path, config=cfg)
     sim = simulate(scene, cfg)
-    res = screen_scene(scene, sim, cfg)
+    raw = copy.deepcopy(cfg)
+    raw["bias"]["remove"] = False  # the raw departures
+    res = screen_scene(scene, sim, raw)
     assert sim.source["11um"] == "user" and sim.source["12um"] == "simulated"
     np.testing.assert_allclose(res.departure["11um"], -0.25, atol=1e-4)
 

@@ -169,12 +169,17 @@ class BiasFitPlot(_PlotWithTable):
             legend_position="right", show_grid=True, toolbar="above", active_tools=["pan"], legend_limit=20)
 
     def table(self, version=None):
-        rows = ["| channel | a [K] | b [K per kg m⁻²] | pixels | rms [K] | removed |", "|---|---|---|---|---|---|"]
+        rows = ["| channel | surface | a [K] | b [K per kg m⁻²] | pixels | rms [K] | removed |",
+                "|---|---|---|---|---|---|---|"]
+        f = (lambda v, fmt: format(v, fmt) if np.isfinite(v) else "–")  # noqa: E731
         for ch, b in self.model.result.bias.items():
-            f = (lambda v, fmt: format(v, fmt) if np.isfinite(v) else "–")
-            rows.append(f"| {channel_label(ch)} | {f(b['a'], '+.3f')} | {f(b['b'], '+.4f')} | {b['n']:,} | "
-                        f"{f(b['rms'], '.3f')} | {'yes' if b.get('applied') else 'no'} |")
-        return "\n".join(rows)
+            removed = "yes" if b.get("applied") else "no"
+            lines = [("all", b)] + list(b.get("surfaces", {}).items())
+            for name, line in lines:
+                rows.append(f"| {channel_label(ch)} | {name} | {f(line['a'], '+.3f')} | {f(line['b'], '+.4f')} | "
+                            f"{line['n']:,} | {f(line['rms'], '.3f')} | {removed} |")
+        return ("\n".join(rows) + "\n\nWhen removed, each pixel takes its surface type's line (the line of all "
+                "surfaces where its type has too few clear pixels).")
 
 
 class SceneSummary(Viewer):

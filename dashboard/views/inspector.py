@@ -77,10 +77,11 @@ class PixelInspector(Viewer):
         for key, (label, unit, fmt) in _INPUT_LABELS.items():
             if key in inp and key not in ("lat", "lon"):
                 out.append(f"| {label} | {_f(inp[key], fmt)} {unit} |")
-        out += ["", "| channel | observed [K] | clear sky [K] | departure [K] |", "|---|---|---|---|"]
+        out += ["", "| channel | observed [K] | clear sky [K] | bias removed [K] | departure [K] | σ [K] |",
+                "|---|---|---|---|---|---|"]
         for ch, v in info["channels"].items():
             out.append(f"| {channel_label(ch)} | {_f(v['observed'], '.2f')} | {_f(v['clear'], '.2f')} | "
-                       f"{_f(v['departure'], '+.2f')} |")
+                       f"{_f(v['bias_removed'], '+.2f')} | {_f(v['departure'], '+.2f')} | {_f(v['sigma'], '.2f')} |")
         out += ["", "| test | margin [K] | fired |", "|---|---|---|"]
         for t, mg in info["margins"].items():
             fired = mg is not None and mg > 0
