@@ -154,8 +154,7 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
         use_scene_clear_sky(res, fields, chset, idx)
         clear = np.full((len(names),) + valid.shape, np.nan, np.float32)
         clear.reshape(len(names), -1)[:, idx] = res.brightness_temperature
-    sigma = sigma_grids(cols, fields["surface"].ravel()[idx], clear.reshape(len(names), -1)[:, idx], chset, cfg, idx,
-                        valid.shape)
+    sigma = sigma_grids(cols, fields["surface"].ravel()[idx], chset, cfg, idx, valid.shape)
     path = slant_path(fields["tcwv"], fields["sat_zenith"])
     obs = {c: fields[f"bt_{c}"] for c in names}
     screen_fields = {"surface": fields["surface"], "valid": valid, "sol_zenith": fields["sol_zenith"],

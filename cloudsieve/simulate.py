@@ -345,8 +345,8 @@ def simulate(scene, config, progress=None, levels=None):
     use_scene_clear_sky(res, fields, chset, idx)
     from .uncertainty import sigma_grids  # uncertainty re-simulates columns with this module's loop
 
-    sigma = sigma_grids(cols, fields["surface"].ravel()[idx], res.brightness_temperature, chset, config, idx,
-                        (ny, nx), threads=max(1, int(config["simulation"].get("threads", 1))))
+    sigma = sigma_grids(cols, fields["surface"].ravel()[idx], chset, config, idx, (ny, nx),
+                        threads=max(1, int(config["simulation"].get("threads", 1))))
     bt_full = np.full((len(names), ny * nx), np.nan, np.float32)
     bt_full[:, idx] = res.brightness_temperature
     return Simulation(names, bt_full.reshape(len(names), ny, nx), clear_sky_source(fields, names),

@@ -196,10 +196,10 @@ def sigma_stage(n_pix):
     idx = np.arange(n_pix)
     cols = gather_columns(fields, surface_emissivity(fields, chset, cfg), idx)
     t0 = time.perf_counter()
-    bt = simulate_columns(cols, chset, cfg["simulation"], threads=2).brightness_temperature
+    simulate_columns(cols, chset, cfg["simulation"], threads=2)
     t_sim = time.perf_counter() - t0
     t0 = time.perf_counter()
-    sig = clear_sky_sigma(cols, fields["surface"].ravel(), bt, chset, cfg, threads=2)
+    sig = clear_sky_sigma(cols, fields["surface"].ravel(), chset, cfg, threads=2)
     t_sig = time.perf_counter() - t0
     print(f"clear-sky σ of {n_pix:,} night_front pixels: {t_sig:.3f} s for {sig.bins:,} bins of background state, "
           f"against {t_sim:.3f} s for their simulation (2 threads): σ adds {100 * t_sig / t_sim:.0f} %")
