@@ -38,4 +38,4 @@ def per_surface(value, surface_code):
     if not isinstance(value, dict):
         return np.full(np.shape(surface_code), float(value))
     lut = np.array([float(value.get(s, value.get("sea", 0.0))) for s in SURFACES])
-    return lut[np.clip(np.asarray(surface_code), 0, 2)]
+    return np.take(lut, np.asarray(surface_code), mode="clip")

@@ -69,6 +69,8 @@ class ScreeningInputs:
         Threshold-independent arrays kept between calls (see ``screen.screen_arrays``).
     cache_key : object
         Identifies the departures the cache entries belong to.
+    raw_departure : dict
+        Channel -> (y, x) observed − clear before any bias removal [K] (the texture test's field).
     """
 
     departure: dict
@@ -82,6 +84,7 @@ class ScreeningInputs:
     notes: list = field(default_factory=list)
     cache: dict = None
     cache_key: object = None
+    raw_departure: dict = None
 
 
 @dataclass
@@ -227,10 +230,12 @@ def local_std(values, valid, window):
 def _texture(inp, t):
     """Rough departure field, and the pixel colder than the warmest of its window."""
     ch = inp.window_channel
-    d = inp.departure[ch]
+    # the departure before the bias removal: the bias line barely changes within a small window,
+    # and the window statistics then need no recomputing when the fit moves with a threshold
+    d = inp.raw_departure[ch]
     ok = inp.valid & np.isfinite(d)
     win = int(t["window"])
-    key = ("texture", ch, win, inp.cache_key)
+    key = ("texture", ch, win, None)
     if inp.cache is not None and key in inp.cache:
         std, warmest = inp.cache[key]
     else:
@@ -297,8 +302,8 @@ register(ScreeningTest(
          "instrument's and the background's pixel-to-pixel noise.",
     long_name="local standard deviation of the window-channel departure",
     tunable=Tunable("threshold", "K"), margin=_texture, requires=_needs_window,
-    fires_when="local std of the 11 µm departure > t = √(threshold² + (noise_k·σ_pixel)²), and the pixel is "
-               "colder than its window's warmest pixel by 2t",
+    fires_when="local std of the 11 µm departure (before the bias removal) > t = √(threshold² + (noise_k·σ_pixel)²), "
+               "and the pixel is colder than its window's warmest pixel by 2t",
     why="broken cloud and cloud edges are rough; clear pixels bordering a cloud are the warm ones"))
 register(ScreeningTest(
     "night_fog_contrast", bit=3, kind="cloud", channels=("3p9um", "11um"), label="Night fog contrast",

@@ -125,7 +125,7 @@ def scene_plan(fields, config, channels):
     return plan_tests(tuple(channels), config, *scene_flags(fields["sol_zenith"], fields["valid"], config))
 
 
-def run_tests(fields, config, departure, sigma, plan=None, cache=None, cache_key=None):
+def run_tests(fields, config, departure, sigma, plan=None, cache=None, cache_key=None, raw_departure=None):
     """Margins [K] of every registered test that runs (> 0 means the test fired), thresholds, notes.
 
     Parameters
@@ -141,6 +141,8 @@ def run_tests(fields, config, departure, sigma, plan=None, cache=None, cache_key
     cache : dict, optional
         Keeps threshold-independent statistics (the texture test's) between calls (see
         :func:`screen_scene`); ``cache_key`` names the departures they belong to.
+    raw_departure : dict channel -> (y, x) observed − clear before any bias removal [K], optional
+        (``departure`` when omitted)
 
     Returns
     -------
@@ -154,7 +156,8 @@ def run_tests(fields, config, departure, sigma, plan=None, cache=None, cache_key
     inp = ScreeningInputs(
         departure=departure, sigma_clear=sigma[win] if win else None, sigma=sigma, surface=fields["surface"],
         slant_path=np.nan_to_num(fields["slant_path"]), valid=valid, night=night,
-        window_channel=plan.facts.window_channel, notes=list(plan.notes), cache=cache, cache_key=cache_key)
+        window_channel=plan.facts.window_channel, notes=list(plan.notes), cache=cache, cache_key=cache_key,
+        raw_departure=departure if raw_departure is None else raw_departure)
     out = MarginSet({}, {}, dict(plan.skipped), inp.notes, night)
     for name in plan.run:
         test = REGISTRY[name]
@@ -232,16 +235,20 @@ def bias_sums(departure, slant_path, mask, bits, valid, surface):
     """
     use = valid & (mask == CLEAR) & ((bits & bit_table().get("warm_departure", 0)) == 0)
     x_all = np.asarray(slant_path, dtype=float)
-    surface = np.asarray(surface)
+    code = np.asarray(surface)
+    n_surf = len(SURFACES)
     out = {}
     for ch, d in departure.items():
+        d = np.asarray(d, dtype=float)
         ok = use & np.isfinite(d) & np.isfinite(x_all)
-        rows = []
-        for sel in [ok & (surface == code) for code in range(len(SURFACES))] + [ok]:
-            x = x_all[sel]
-            y = np.asarray(d, dtype=float)[sel]
-            rows.append([x.size, x.sum(), y.sum(), (x * x).sum(), (x * y).sum(), (y * y).sum()])
-        out[ch] = np.array(rows)
+        c, x, y = code[ok], x_all[ok], d[ok]
+        counts = np.bincount(c.astype(np.intp), minlength=n_surf)[:n_surf]
+        present = np.flatnonzero(counts)
+        rows = np.zeros((n_surf, 6))
+        for k in present:
+            xs, ys = (x, y) if present.size == 1 else (x[c == k], y[c == k])
+            rows[k] = [xs.size, xs.sum(), ys.sum(), xs @ xs, xs @ ys, ys @ ys]
+        out[ch] = np.vstack([rows, rows.sum(axis=0)])
     return out
 
 
@@ -363,17 +370,24 @@ def screen_arrays(obs, bt_clear, fields, config, sigma, bias=None, edit_codes=No
     fields = dict(fields, slant_path=np.asarray(fields["slant_path"], dtype=float))
     if plan is None:
         plan = scene_plan(fields, config, tuple(bt_clear))
-    if cache is not None and ("departure", key) in cache:
-        departure = cache[("departure", key)]
+    def raw_departures():
+        return {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float)) for ch in bt_clear}
+
+    if cache is None:
+        raw = raw_departures()
     else:
-        departure = {ch: (np.asarray(obs[ch], dtype=float) - np.asarray(bt_clear[ch], dtype=float))
-                     for ch in bt_clear}
-        if bias:
-            departure = {ch: d - bias_field(bias[ch], fields["surface"], fields["slant_path"])
-                         for ch, d in departure.items()}
-        if cache is not None:
-            cache[("departure", key)] = departure
-    tests = run_tests(fields, config, departure, sigma, plan, cache, key)
+        if ("departure", None) not in cache:
+            cache[("departure", None)] = raw_departures()
+        raw = cache[("departure", None)]
+    departure = raw
+    if bias:
+        if cache is not None and ("departure", key) in cache:
+            departure = cache[("departure", key)]
+        else:
+            departure = {ch: d - bias_field(bias[ch], fields["surface"], fields["slant_path"]) for ch, d in raw.items()}
+            if cache is not None:
+                cache[("departure", key)] = departure
+    tests = run_tests(fields, config, departure, sigma, plan, cache, key, raw)
     mask, bits = classify(fields["valid"], tests.margins, tests.thresholds, config["screening"]["marginal_fraction"],
                           tests.night, "3p9um" in departure, edit_codes)
     win = plan.facts.window_channel
