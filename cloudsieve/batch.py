@@ -29,7 +29,7 @@ from .codes import CLASS_NAMES, CLEAR, NO_DATA
 from .invert import CloudLayer, inversion_channels, invert_pixels
 from .journal import Journal, journal_path
 from .scene import load_scene
-from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, result_notes, scene_plan,
+from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, halo_rows, result_notes, scene_plan,
                      screen_arrays, summary_row)
 from .simulate import (ChannelSet, clear_sky_source, gather_columns, level_chunk, simulate_columns, slant_path,
                        surface_emissivity, use_scene_clear_sky)
@@ -257,7 +257,7 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
     tests = scene_plan({"sol_zenith": ds["sol_zenith"].data, "valid": ds["valid"].data}, config, names)
     inv = inversion_channels(names, config)
     rows = int(chunk_rows)
-    specs = block_specs(ny, rows, int(config["tests"]["texture"]["window"]) // 2)
+    specs = block_specs(ny, rows, halo_rows(config))
     threads = max(1, int(config["simulation"].get("threads", 1)))
     grid = edits_grid((ny, nx), edits) if edits else None
     plan = BlockPlan(ChannelSet.for_scene(names, config), config, tests, inv, fmt, rows)

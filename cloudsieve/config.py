@@ -159,6 +159,8 @@ def _check_values(cfg, problems):
                     need(isinstance(v, (int, float)) and v >= 0,
                          f"'tests.{test}.{key}.{surf}' must be a number ≥ 0; got {v!r}.")
     need(cfg["tests"]["texture"]["window"] in (3, 5, 7, 9), "'tests.texture.window' must be 3, 5, 7 or 9 pixels.")
+    need(cfg["tests"]["night_fog_contrast"]["window"] in (1, 3, 5, 7, 9),
+         "'tests.night_fog_contrast.window' must be 1 (the pixel alone), 3, 5, 7 or 9 pixels.")
     cl = cfg["cloud"]
     need(cl["top"] in TOP_METHODS, f"'cloud.top' must be one of {', '.join(TOP_METHODS)}; got {cl['top']!r}.")
     lo, hi = TOP_PRESSURE_RANGE

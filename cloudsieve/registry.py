@@ -17,6 +17,7 @@ a channel it needs is absent or its ``requires`` function gives a reason. Bits a
 existing test never changes its bit.
 """
 from dataclasses import dataclass, field
+import json
 from typing import Callable
 
 import numpy as np
@@ -253,13 +254,43 @@ def _texture(inp, t):
 
 
 def _night_fog_contrast(inp, t):
-    """At night, (T3.9 − T11) observed minus clear below −k times its clear-sky σ: water droplets."""
-    thr = per_surface(t["k_sigma"], inp.surface) * inp.sigma["3p9um-11um"]
-    m = -(inp.departure["3p9um"] - inp.departure["11um"]) - thr
+    """At night, (T3.9 − T11) observed minus clear below −k times its clear-sky σ: water droplets.
+
+    Tested on the pixel, and on the mean over a small window of the night pixels that are not
+    much colder than clear: a fog or low-cloud deck is extended, so its contrast survives the
+    mean while the noise independent from pixel to pixel (instrument, [background_noise])
+    averages down, σ_mean² = σ² − σ_pixel² + σ_pixel²/n. At a cold 3.9 µm scene, where the
+    noise dominates σ, the mean sees a deck that no single pixel can."""
+    k = per_surface(t["k_sigma"], inp.surface)
+    thr = k * inp.sigma["3p9um-11um"]
+    diff = inp.departure["3p9um"] - inp.departure["11um"]
+    m = -diff - thr
     # fog and low water cloud have tops near the surface temperature; a pixel much colder
     # than clear at 11 µm is a high (often ice) cloud, for which a 3.9 µm deficit is no
     # fog signature (the cold-departure test classes it): not applicable there
-    low = inp.departure["11um"] >= -per_surface(t["max_cold_11um"], inp.surface)
+    max_cold = per_surface(t["max_cold_11um"], inp.surface)
+    low = inp.departure["11um"] >= -max_cold
+    win = int(t["window"])
+    if win > 1:
+        raw = inp.raw_departure["3p9um"] - inp.raw_departure["11um"]
+        key = ("fog_window", win, json.dumps(t["max_cold_11um"], sort_keys=True))
+        if inp.cache is not None and key in inp.cache:
+            mean_raw, n = inp.cache[key]
+        else:
+            use = inp.valid & inp.night & np.isfinite(raw) & (inp.raw_departure["11um"] >= -max_cold)
+            w = use.astype(float)
+            n = ndimage.uniform_filter(w, win, mode="constant") * win * win
+            with np.errstate(invalid="ignore", divide="ignore"):
+                mean_raw = ndimage.uniform_filter(np.where(use, raw, 0.0), win, mode="constant") * win * win / n
+            if inp.cache is not None:
+                inp.cache[key] = (mean_raw, n)
+        # the window statistics come from the departures before the bias removal: the pixel's own
+        # bias difference stands for the window's (the bias line barely changes in a few pixels)
+        mean = mean_raw - (raw - diff)
+        s_pix = inp.sigma["pixel:3p9um-11um"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            s_mean = np.sqrt(np.maximum(inp.sigma["3p9um-11um"] ** 2 - s_pix**2, 0.0) + s_pix**2 / np.maximum(n, 1.0))
+        m = np.fmax(m, np.where(n >= 2.5, -mean - k * s_mean, np.nan))
     return Margin(np.where(inp.night & low, m, np.nan), -thr)
 
 
@@ -308,11 +339,13 @@ register(ScreeningTest(
 register(ScreeningTest(
     "night_fog_contrast", bit=3, kind="cloud", channels=("3p9um", "11um"), label="Night fog contrast",
     help="Night only: 3.9 µm colder than 11 µm relative to clear sky by more than k times the expected "
-         "error σ of that difference, the mark of water droplets (fog, low cloud). Threshold: k [× σ].",
+         "error σ of that difference, the mark of water droplets (fog, low cloud); also tested on the mean of a "
+         "small window, where the noise averages down and an extended deck shows. Threshold: k [× σ].",
     long_name="night-time 3.9-11 um difference below the clear-sky difference",
     tunable=Tunable("k_sigma", "× σ", (0.0, 10.0), 0.1), margin=_night_fog_contrast, requires=_needs_night,
     fires_when="at night, where the 11 µm departure is within `max_cold_11um` of clear: (T3.9 − T11)obs − clear "
-               "< −k·σ₃.₉₋₁₁, the pixel's σ of the clear-sky difference (3.9 µm noise grows at cold scenes)",
+               "< −k·σ₃.₉₋₁₁, the pixel's σ of the clear-sky difference (3.9 µm noise grows at cold scenes); or its "
+               "mean over the `window` box < −k·σ of that mean (pixel-to-pixel noise averaged down)",
     why="water droplets emit less at 3.9 µm than at 11 µm: fog and low water cloud (tops near the surface "
         "temperature)"))
 register(ScreeningTest(

@@ -103,6 +103,11 @@ def plan_tests(channels, config, night_any, day_any):
     return ScreeningPlan(facts, tuple(run), skipped, notes)
 
 
+def halo_rows(config):
+    """Rows a block of a scene needs on either side: half the widest window of a test."""
+    return max(int(config["tests"]["texture"]["window"]), int(config["tests"]["night_fog_contrast"]["window"])) // 2
+
+
 def night_mask(sol_zenith, config):
     """(y, x) bool: the sun below ``[screening] night_sun_zenith`` (NaN solar zenith: day)."""
     return np.isfinite(sol_zenith) & (sol_zenith > config["screening"]["night_sun_zenith"])

@@ -201,6 +201,7 @@ class ClearSkySigma:
     noise : (n_ch, n) the instrument NEΔT alone
     difference : dict "a-b" -> (n,) σ of T_a − T_b with the two channels' errors correlated
     bins : number of distinct background states the Jacobians were evaluated at
+    difference_pixel : dict "a-b" -> (n,) the part of that σ independent from pixel to pixel
     """
 
     channels: tuple
@@ -209,12 +210,14 @@ class ClearSkySigma:
     noise: np.ndarray
     difference: dict
     bins: int = 0
+    difference_pixel: dict = None
 
     def as_dict(self, parts=None):
         """{channel: σ, "a-b": σ of the difference, "pixel:<ch>": the pixel-to-pixel σ, "noise:<ch>":
         the NEΔT}, the last two for the channels ``parts`` only (all when None; memory)."""
         out = {c: self.total[i] for i, c in enumerate(self.channels)}
         out.update(self.difference)
+        out.update({f"pixel:{k}": v for k, v in (self.difference_pixel or {}).items()})
         for i, c in enumerate(self.channels):
             if parts is None or c in parts:
                 out[f"pixel:{c}"], out[f"noise:{c}"] = self.pixel[i], self.noise[i]
@@ -306,8 +309,8 @@ def clear_sky_sigma(cols, surface, chset, config, threads=1):
     surface = np.asarray(surface).ravel()
     if n == 0:
         empty = np.empty((n_ch, 0), np.float32)
-        return ClearSkySigma(names, empty, empty, empty,
-                             {f"{a}-{b}": np.empty(0, np.float32) for a, b in DIFFERENCES if a in names and b in names})
+        none = {f"{a}-{b}": np.empty(0, np.float32) for a, b in DIFFERENCES if a in names and b in names}
+        return ClearSkySigma(names, empty, empty, empty, none, 0, dict(none))
     if cols.profiles is None:
         rows, inverse = _bins(cols, surface)
         bin_bt, jac = _jacobians(_bin_columns(rows, n_ch), chset, config, threads)
@@ -326,16 +329,20 @@ def clear_sky_sigma(cols, surface, chset, config, threads=1):
     table = [np.sum((jac * sig[:, None, :]) ** 2, axis=-1) + contrast**2, np.sum((jac * nu[:, None, :]) ** 2, axis=-1)]
     table += [(np.sum(((jac[:, i] - jac[:, j]) * sig) ** 2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2)[:, None]
               for _, i, j in pairs]
+    table += [np.sum(((jac[:, i] - jac[:, j]) * nu) ** 2, axis=-1)[:, None] for _, i, j in pairs]
     # the noise at the bin's clear-sky brightness temperature (within a bin the noise changes by
     # a few per cent at most: 1 K of scene temperature moves NEΔT by < 4 % even at 3.9 µm and 240 K)
     noise2 = _noise(chset, bin_bt, config) ** 2  # (m, n_ch)
     pair_noise = [noise2[:, i] + noise2[:, j] for _, i, j in pairs]
+    n_p = len(pairs)
     sd = np.sqrt(np.concatenate([table[0] + noise2, table[1] + noise2, noise2]
-                                + [t + pn[:, None] for t, pn in zip(table[2:], pair_noise)], axis=1))
-    sd = np.ascontiguousarray(sd.astype(np.float32).T)[:, inverse]  # (3 n_ch + pairs, n): one gather
+                                + [t + pn[:, None] for t, pn in zip(table[2:2 + n_p] + table[2 + n_p:], 2 * pair_noise)],
+                                axis=1))
+    sd = np.ascontiguousarray(sd.astype(np.float32).T)[:, inverse]  # (3 n_ch + 2 pairs, n): one gather
     total, pixel, noise = sd[:n_ch], sd[n_ch:2 * n_ch], sd[2 * n_ch:3 * n_ch]
     diff = {name: sd[3 * n_ch + k] for k, (name, _, _) in enumerate(pairs)}
-    return ClearSkySigma(names, total, pixel, noise, diff, int(jac.shape[0]))
+    diff_pixel = {name: sd[3 * n_ch + n_p + k] for k, (name, _, _) in enumerate(pairs)}
+    return ClearSkySigma(names, total, pixel, noise, diff, int(jac.shape[0]), diff_pixel)
 
 
 def sigma_grids(cols, surface, chset, config, flat_index, shape, threads=1):

@@ -38,13 +38,7 @@ SCENES = ["night_front", "day_coast", "polar_ice"]
 #: Scenes where main misses a target, with the figure measured there (default configuration:
 #: per-pixel clear-sky σ, per-surface bias fit removed, Fresnel sea emissivity).
 MISSES_CLEAR = {}
-MISSES_POD = {
-    "polar_ice": ("POD 0.75: about 1350 of 3608 polar low-cloud target pixels missed: broken water cloud (cover "
-                  "0.5-0.9) in a surface inversion, its top warmer than the ice (11 um departure about +2 K), "
-                  "whose 3.9-11 um contrast (about -1.9 K) stays inside the night fog test's 3 sigma; at a 251 K "
-                  "scene the 3.9 um noise alone is 0.75 K (0.1 K at 300 K as a constant radiance), so one pixel "
-                  "cannot show it; a known limit of single-pixel tests in polar night"),
-}
+MISSES_POD = {}
 _cache = {}
 
 
