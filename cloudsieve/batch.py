@@ -33,7 +33,7 @@ from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, halo_
                      screen_arrays, summary_row)
 from .simulate import (ChannelSet, clear_sky_source, gather_columns, level_chunk, simulate_columns, slant_path,
                        surface_emissivity, use_scene_clear_sky)
-from .uncertainty import sigma_grids
+from .uncertainty import clear_part, sigma_grids
 
 DEFAULT_CHUNK_ROWS = export.CHUNK_ROWS
 #: Above this many pixels a NetCDF or Parquet scene is screened lazily (``cloudsieve screen``)
@@ -177,7 +177,7 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
                       (r.level_pressure, r.level_temperature, r.opaque_radiance), fields["sat_zenith"][core],
                       {c: v[core] for c, v in sigma.items()}, chset, cfg)
     result = export.ResultBlock(spec.start, clear[:, core], departure, {t: m[core] for t, m in scr.margins.items()},
-                                mask, bits, cloud, {c: sigma[c][core] for c in names})
+                                mask, bits, cloud, {c: clear_part(sigma, c)[core] for c in names})
     variables = export.block_variables(result, plan.header)
     encoded = export.encode_block(spec.start, variables, plan.layout, plan.fmt, plan.chunk_rows, extra=sums)
     return BlockOutcome(spec.start, spec.stop, sums, encoded)

@@ -8,16 +8,16 @@ sensitive than it could be. :func:`calibrate` reports the spread per surface typ
 a factor on that surface's ``[background_errors]`` (and ``[background_noise]``) that makes the
 clear pixels' spread fit, given the instrument noise, which is known; nothing is applied.
 
-The clear population is cut at −k·σ by the cold-departure test itself, so the spread is
-estimated robustly (1.4826 × the median absolute deviation, exact for a normal population and
-blind to a one-sided cut beyond 3σ and to a few cloudy pixels that slipped through).
+The clear population is cut by the screening itself: above the cold test's marginal band and
+below the warm flag. Mean and spread are fitted by maximum likelihood to a normal distribution
+truncated at each pixel's own cuts, so the cut does not narrow them (a sample's own moments
+would read a true spread of 2 as about 1.6).
 """
 from dataclasses import dataclass
 
 import numpy as np
 
 from .codes import CLEAR, SURFACES
-from .registry import bit_table
 
 #: 1 / Φ⁻¹(3/4): turns a median absolute deviation into a normal standard deviation (common practice)
 MAD_TO_SIGMA = 1.482602218505602
@@ -39,12 +39,13 @@ class SurfaceCalibration:
     """The clear pixels of one surface type.
 
     surface : "sea", "land" or "ice"; pixels : clear pixels used
-    bias_a [K], bias_b [K per kg m⁻²] : the bias line of this surface's clear departures
-    z_spread : robust spread of (departure − bias line)/σ [1] (1 where σ is right)
-    z_mean : mean of (departure − bias line)/σ [1]
-    factor : proposed factor f on this surface's background errors [1]: the departures divided
-        by √(f² σ_bg² + NEΔT²) have unit robust spread (σ² = σ_bg² + NEΔT² as configured)
-    z_density : probability density of (departure − bias line)/σ in the bins of ``Z_EDGES``
+    bias_a [K], bias_b [K per kg m⁻²] : the screening's clear-sky bias line of this surface
+        (NaN where it has none)
+    z_spread : fitted spread of the departures in units of their σ [1] (1 where σ is right)
+    z_mean : fitted mean departure in units of σ [1]
+    factor : proposed factor f on this surface's background errors [1]: departures spread as
+        √(f² σ_bg² + NEΔT²), the clear-sky part scaled, the instrument noise as it is
+    z_density : probability density of departure/σ of the clear pixels in the bins of ``Z_EDGES``
         (values beyond them in the end bins) [1]
     """
 
@@ -58,17 +59,28 @@ class SurfaceCalibration:
     z_density: np.ndarray
 
 
-def calibrate(departure, sigma, noise, slant_path, surface, mask, bits, valid, min_pixels=100):
-    """Per surface type: how (observed − clear)/σ of clear pixels spreads, and σ fitted to them.
+#: at most this many clear pixels per surface enter the fit (an even sample beyond it)
+FIT_SAMPLE = 200_000
+
+
+def calibrate(departure, sigma, noise, surface, mask, valid, lower, upper, bias=None, min_pixels=100):
+    """Per surface type: how the departures of clear pixels spread against their σ.
+
+    The clear pixels are a cut population: the screening classed a pixel clear only where its
+    departure lay above the cold test's marginal band (``lower``) and below the warm flag
+    (``upper``). Their mean and spread are therefore fitted by maximum likelihood to a normal
+    distribution truncated at each pixel's own bounds (a truncated-normal likelihood; common
+    practice for censored samples), not read from the sample's moments, which the cut narrows.
 
     Parameters
     ----------
-    departure : (y, x) observed − clear of the window channel, before any bias removal [K]
-    sigma : (y, x) clear-sky 1-σ the screening used [K]
-    noise : (y, x) its instrument-noise part [K]
-    slant_path : (y, x) W·secθ [kg m⁻²]
-    surface : (y, x) surface codes; mask, bits : the screening's classes and test bits
-    valid : (y, x) bool
+    departure : (y, x) the window channel's departure as the tests saw it (bias removed when
+        the screening removed it) [K]
+    sigma : (y, x) its σ as the screening used it [K]; noise : (y, x) its instrument-noise part [K]
+    surface : (y, x) surface codes; mask : the screening's classes; valid : (y, x) bool
+    lower, upper : (y, x) the departures [K] below and above which a pixel would not have been
+        classed clear (−(1 − marginal_fraction)·k·σ; the warm flag's threshold)
+    bias : the screening's bias fit of this channel (screen.bias_from_sums entry), optional
     min_pixels : int
         Fewer clear pixels of a surface than this: no figures for it.
 
@@ -76,59 +88,59 @@ def calibrate(departure, sigma, noise, slant_path, surface, mask, bits, valid, m
     -------
     dict surface name -> SurfaceCalibration
     """
-    use = valid & (mask == CLEAR) & ((bits & bit_table()["warm_departure"]) == 0) & np.isfinite(departure)
+    use = valid & (mask == CLEAR) & np.isfinite(departure) & (sigma > 0)
     out = {}
     for code, name in enumerate(SURFACES):
-        sel = use & (surface == code)
-        n = int(sel.sum())
+        sel = np.flatnonzero((use & (surface == code)).ravel())
+        n = int(sel.size)
         if n < min_pixels:
             continue
-        d, x = departure[sel].astype(float), np.nan_to_num(slant_path[sel].astype(float))
-        s, nz = sigma[sel].astype(float), noise[sel].astype(float)
-        if np.ptp(x) > 1e-9:
-            b, a = np.polyfit(x, d, 1)
-        else:
-            a, b = float(np.median(d)), 0.0
-        r = d - (a + b * x)
-        z = r / s
-        factor = _fit_factor(r, np.maximum(s * s - nz * nz, 0.0), nz * nz)
+        sel = sel[:: max(1, n // FIT_SAMPLE)]
+        d, s, nz = (np.asarray(a, float).ravel()[sel] for a in (departure, sigma, noise))
+        lo, hi = (np.asarray(a, float).ravel()[sel] for a in (lower, upper))
+        mean, factor = _truncated_fit(d, np.maximum(s * s - nz * nz, 0.0), nz * nz, lo, hi)
+        spread = float(np.sqrt(np.mean(factor**2 * np.maximum(s * s - nz * nz, 0.0) + nz * nz) / np.mean(s * s)))
+        z = d / s
         density, _ = np.histogram(np.clip(z, Z_EDGES[0], Z_EDGES[-1]), Z_EDGES, density=True)
-        out[name] = SurfaceCalibration(name, n, float(a), float(b), robust_std(z), float(np.mean(z)), float(factor),
-                                       density)
+        line = (bias or {}).get("surfaces", {}).get(name, {})
+        out[name] = SurfaceCalibration(name, n, float(line.get("a", np.nan)), float(line.get("b", np.nan)), spread,
+                                       float(mean / np.sqrt(np.mean(s * s))), float(factor), density)
     return out
 
 
-def _fit_factor(residual, var_bg, var_noise):
-    """f ≥ 0 with robust_std(residual / √(f² var_bg + var_noise)) = 1 (NaN without a background part).
+def _truncated_fit(d, var_bg, var_noise, lower, upper):
+    """(mean [K], factor f) maximising the likelihood of departures ``d`` under N(mean, f² var_bg +
+    var_noise), each truncated to its own (lower, upper)."""
+    from scipy.optimize import minimize
+    from scipy.stats import norm
 
-    The spread falls as f grows, so the root is bracketed and found by Brent's method; a spread
-    below 1 even at f = 0 (the noise alone explains it) gives 0."""
-    from scipy.optimize import brentq
+    def nll(p):
+        m, f = p[0], np.exp(p[1])
+        sd = np.sqrt(f * f * var_bg + var_noise + 1e-12)
+        mass = norm.cdf((upper - m) / sd) - norm.cdf((lower - m) / sd)
+        return float(np.sum(0.5 * ((d - m) / sd) ** 2 + np.log(sd) + np.log(np.maximum(mass, 1e-300))))
 
-    if not np.any(var_bg > 0):
-        return float("nan")
-
-    def excess(f):
-        return robust_std(residual / np.sqrt(f * f * var_bg + var_noise + 1e-12)) - 1.0
-
-    if excess(0.0) <= 0:
-        return 0.0
-    hi = 1.0
-    while excess(hi) > 0 and hi < 1e3:
-        hi *= 2.0
-    return float(brentq(excess, 0.0, hi, xtol=1e-3))
+    start = robust_std(d) / np.sqrt(np.mean(var_bg + var_noise))
+    best = minimize(nll, [float(np.median(d)), np.log(max(start, 0.05))], method="Nelder-Mead",
+                    options={"xatol": 1e-4, "fatol": 1e-6, "maxiter": 400})
+    return float(best.x[0]), float(np.exp(best.x[1]))
 
 
 def session_calibration(session):
     """:func:`calibrate` on a screened :class:`cloudsieve.session.Session` (its window channel)."""
+    from .codes import per_surface
     from .screen import window_channel
 
-    res, sim, ds = session.result, session.sim, session.scene.data
-    ch = window_channel(sim.channels, session.config)
-    i = sim.channels.index(ch)
-    raw = ds[f"bt_{ch}"].values - sim.bt_clear[i]  # before any bias removal
-    return ch, calibrate(raw, res.sigma_clear, sim.sigma[f"noise:{ch}"], sim.slant_path, ds["surface"].values,
-                         res.mask, res.bits, ds["valid"].values, session.config["bias"]["min_pixels"])
+    res, sim, ds, cfg = session.result, session.sim, session.scene.data, session.config
+    ch = window_channel(sim.channels, cfg)
+    surface = ds["surface"].values
+    k = per_surface(cfg["tests"]["cold_departure"]["k_sigma"], surface)
+    lower = -(1.0 - cfg["screening"]["marginal_fraction"]) * k * res.sigma_clear
+    warm = cfg["tests"]["warm_departure"]
+    upper = (per_surface(warm["threshold"], surface) if warm.get("enabled", True)
+             else np.full(surface.shape, np.inf))
+    return ch, calibrate(res.departure[ch], res.sigma_clear, sim.sigma[f"noise:{ch}"], surface, res.mask,
+                         ds["valid"].values, lower, upper, res.bias.get(ch), cfg["bias"]["min_pixels"])
 
 
 def proposal_toml(calibration, config):

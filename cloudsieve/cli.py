@@ -344,6 +344,9 @@ def _print_summary(rows, failed):
             bias = f"{b.get('a', float('nan')):+.2f}/{b.get('b', float('nan')):+.3f} ({ch})" if b else "-"
             print(f"{r['scene'][:28]:<28} {r['pixels']:>9} {r['clear']:>7.3f} {r['marginal']:>7.3f} "
                   f"{r['cloud']:>7.3f} {r['no_data']:>7.3f} {bias:>22} {r['seconds']:>7.1f}")
+            if b.get("surfaces"):
+                lines = ", ".join(f"{name} {line['a']:+.2f}/{line['b']:+.3f}" for name, line in b["surfaces"].items())
+                print(f"    bias per surface ({ch}; {'removed' if b.get('applied') else 'not removed'}): {lines}")
             for note in r["notes"]:
                 print(f"    note: {note}")
             print(f"    written: {r['output']}" + (f" (with {r['qa_edits']} QA edit(s))" if r["qa_edits"] else ""))

@@ -35,6 +35,8 @@ _REPLACED = {
                                                   "path by itself; set 'tests.split_window_excess.k_sigma'",
     ("tests", "night_fog_contrast", "threshold"): "the night fog test's threshold is now k_sigma × the σ of the "
                                                   "3.9 − 11 µm difference; set 'tests.night_fog_contrast.k_sigma'",
+    ("cloud", "nedt"): "the cloud inversion takes the instrument noise from [instrument] (a constant radiance, "
+                       "NEdT at a reference temperature); set 'instrument.nedt' instead",
     ("tests", "night_fog_contrast", "per_path"): "the σ of the 3.9 − 11 µm difference grows with the water-vapour "
                                                  "path by itself; set 'tests.night_fog_contrast.k_sigma'",
 }
@@ -168,7 +170,6 @@ def _check_values(cfg, problems):
     if "top_height" in cl:
         need(isinstance(cl["top_height"], (int, float)) and 0 <= cl["top_height"] <= 20,
              "'cloud.top_height' must be a number within 0–20 km.")
-    need(0 < cl["nedt"] <= 5, "'cloud.nedt' must lie within 0–5 K.")
     need(0.5 < cl["eps_max"] < 1, "'cloud.eps_max' must lie strictly between 0.5 and 1.")
     need(cl["ice_below"] <= cl["water_above"], "'cloud.ice_below' must not exceed 'cloud.water_above'.")
     need(isinstance(cl["pair"], list) and len(cl["pair"]) == 2, "'cloud.pair' must list two channel names.")

@@ -30,6 +30,7 @@ from .codes import CLASS_NAMES
 from .config import config_json
 from .errors import OutputError
 from .registry import REGISTRY, bit_table
+from .uncertainty import clear_part
 
 #: rows per NetCDF chunk (and per block of the batch pipeline unless told otherwise)
 CHUNK_ROWS = 256
@@ -102,7 +103,8 @@ class ResultBlock:
     margins : test -> (rows, x) [K]
     mask : (rows, x) int8 class codes; bits : (rows, x) uint16
     cloud : invert.CloudLayer of the rows (masked to non-clear pixels)
-    sigma : channel -> (rows, x) 1-σ uncertainty of the clear-sky brightness temperature [K]
+    sigma : channel -> (rows, x) 1-σ uncertainty of the clear-sky brightness temperature, without the
+        instrument noise [K] (uncertainty.clear_part)
     """
 
     start: int
@@ -167,7 +169,8 @@ def _coordinates_attr(coords):
 def _uncertainty_attrs(ch):
     return {"standard_name": "toa_brightness_temperature_assuming_clear_sky standard_error", "units": "K",
             "long_name": f"1-sigma uncertainty of the clear-sky brightness temperature, {ch}: the pixel's "
-                         "Jacobians times the configured background errors, with the instrument noise"}
+                         "Jacobians times the configured background errors (the screening adds the "
+                         "instrument noise of the observation)"}
 
 
 def result_layout(h):
@@ -288,7 +291,7 @@ def whole_scene_result(scene, sim, res, config, edits=None, action="screen"):
                      config, len(edits or []), action, ds["row"].values, ds["col"].values,
                      ds["lat"].values if has_latlon else None, ds["lon"].values if has_latlon else None)
     block = ResultBlock(0, sim.bt_clear, res.departure, res.margins, res.mask, res.bits, cl,
-                        {ch: sim.sigma[ch] for ch in sim.channels})
+                        {ch: clear_part(sim.sigma, ch) for ch in sim.channels})
     return h, block
 
 
@@ -620,7 +623,7 @@ def write_simulation(scene, sim, path, fmt=None):
             "standard_name": "toa_brightness_temperature_assuming_clear_sky", "units": "K",
             "long_name": f"clear-sky brightness temperature, {ch} ({sim.source[ch]})",
             "ancillary_variables": f"bt_clear_uncertainty_{ch}"})
-        out[f"bt_clear_uncertainty_{ch}"] = xr.Variable(("y", "x"), sim.sigma[ch].astype(np.float32),
+        out[f"bt_clear_uncertainty_{ch}"] = xr.Variable(("y", "x"), clear_part(sim.sigma, ch),
                                                         _uncertainty_attrs(ch))
         out[f"departure_{ch}"] = xr.Variable(("y", "x"), (ds[f"bt_{ch}"].values - sim.bt_clear[i]).astype(np.float32),
                                              {"long_name": f"observed minus clear-sky brightness temperature, {ch}",

@@ -17,6 +17,7 @@ from physics.atmosphere import geopotential_height
 
 from .codes import CLOUD, MARGINAL
 from .simulate import level_chunk
+from .uncertainty import clear_part, noise_radiance
 
 
 @dataclass
@@ -143,7 +144,8 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     level_pressure, level_temperature : (n, n_levels) [hPa], [K]
     opaque : (n, n_levels, n_inv) opaque-level radiances [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹]
     sat_zenith : (n,) [deg]
-    sigma_clear : (n,) or (n, n_inv) clear-sky 1-σ [K] (one for every channel, or per channel)
+    sigma_clear : (n,) or (n, n_inv) clear-sky 1-σ [K] without the instrument noise (one for every
+        channel, or per channel; uncertainty.clear_part)
     chans : physics Channels of the inversion channels; inv : their names
     config : dict (fallbacks of the top choice: :func:`inversion_notes`)
 
@@ -157,7 +159,8 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     n_blk = obs_bt.shape[0]
     obs = np.stack([ch.radiance(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     clr = np.stack([ch.radiance(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-    s_obs = np.stack([cc["nedt"] * ch.radiance_derivative(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
+    # the observation's noise: a constant radiance ([instrument]); the clear sky's σ comes without it
+    s_obs = np.broadcast_to(np.array([noise_radiance(ch, config) for ch in chans]), obs.shape)
     s_in = np.asarray(sigma_clear, dtype=float)
     s_in = np.broadcast_to(s_in[:, None] if s_in.ndim == 1 else s_in, clr_bt.shape)
     s_clr = np.stack([s_in[:, k] * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
@@ -209,7 +212,8 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
     levels : (level pressure (n, L) [hPa], level temperature (n, L) [K], opaque radiance
         (n, L, n_ch of ``chset``)) of exactly these pixels, in this order
     sat_zenith : (y, x) [deg]
-    sigma_clear : mapping channel -> (y, x) clear-sky 1-σ [K] (or one (y, x) array for all)
+    sigma_clear : mapping of (y, x) clear-sky σ's [K] (uncertainty.sigma_grids: each inversion channel's
+        σ and NEΔT, the noise taken out), or one (y, x) clear-sky σ without noise for all channels
     chset : simulate.ChannelSet of the scene
     config : dict
     """
@@ -219,7 +223,7 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
     obs_bt = np.stack([take(obs[c]) for c in inv], axis=-1)
     clr_bt = np.stack([take(clear[c]) for c in inv], axis=-1).astype(float)
     lp, lt, opq = levels
-    sig = (np.stack([take(sigma_clear[c]) for c in inv], axis=-1) if isinstance(sigma_clear, dict)
+    sig = (np.stack([take(clear_part(sigma_clear, c)) for c in inv], axis=-1) if isinstance(sigma_clear, dict)
            else take(sigma_clear))
     res = invert_columns(obs_bt, clr_bt, lp, lt, opq[:, :, ci], take(sat_zenith), sig,
                          [chset.channels[i] for i in ci], inv, config)

@@ -213,14 +213,16 @@ class ClearSkySigma:
     difference_pixel: dict = None
 
     def as_dict(self, parts=None):
-        """{channel: σ, "a-b": σ of the difference, "pixel:<ch>": the pixel-to-pixel σ, "noise:<ch>":
-        the NEΔT}, the last two for the channels ``parts`` only (all when None; memory)."""
+        """{channel: σ, "a-b": σ of the difference, "noise:<ch>": the NEΔT, "pixel:<ch>" and
+        "pixel:<a-b>": the parts independent from pixel to pixel}; "pixel:<ch>" for the channels
+        ``parts`` only (all when None; memory)."""
         out = {c: self.total[i] for i, c in enumerate(self.channels)}
         out.update(self.difference)
         out.update({f"pixel:{k}": v for k, v in (self.difference_pixel or {}).items()})
         for i, c in enumerate(self.channels):
+            out[f"noise:{c}"] = self.noise[i]
             if parts is None or c in parts:
-                out[f"pixel:{c}"], out[f"noise:{c}"] = self.pixel[i], self.noise[i]
+                out[f"pixel:{c}"] = self.pixel[i]
         return out
 
 
@@ -348,7 +350,7 @@ def clear_sky_sigma(cols, surface, chset, config, threads=1):
 def sigma_grids(cols, surface, chset, config, flat_index, shape, threads=1):
     """:func:`clear_sky_sigma` of the columns ``cols`` of pixels ``flat_index`` of a (y, x) grid
     of ``shape``, as grids: {name: (y, x) float32 [K]} (``ClearSkySigma.as_dict`` keys, the pixel
-    and noise parts of the window channel only; NaN at the other pixels). ``surface`` and
+    part of the window channel only; NaN at the other pixels). ``surface`` and
     ``bt_clear`` are those of the columns ((n,), (n_ch, n))."""
     from .screen import window_channel
 
@@ -359,3 +361,19 @@ def sigma_grids(cols, surface, chset, config, flat_index, shape, threads=1):
         grid[flat_index] = values
         out[name] = grid.reshape(shape)
     return out
+
+
+def clear_part(sigma, channel):
+    """The clear-sky part of a channel's σ [K]: without the instrument noise of the observation,
+    √(σ² − NEΔT²), from :func:`sigma_grids` (what ``bt_clear_uncertainty_<ch>`` holds and the
+    cloud inversion adds to its own observation noise)."""
+    total, noise = sigma[channel], sigma[f"noise:{channel}"]
+    return np.sqrt(np.maximum(total * total - noise * noise, 0.0)).astype(np.float32)
+
+
+def noise_radiance(channel, config):
+    """The instrument's noise as a radiance [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹], the same at every scene
+    temperature: NEΔT_ref · dB/dT(T_ref) (``[instrument]``)."""
+    inst = config["instrument"]
+    return inst["nedt"].get(channel.name, inst["nedt_default"]) * float(
+        channel.radiance_derivative(np.float64(inst["reference_temperature"])))

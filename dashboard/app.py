@@ -375,7 +375,9 @@ of physically based tests give each pixel a class:
 - **Screening** (sidebar) — switch tests and move thresholds; only the screening is redone, never the
   clear-sky simulation.
 - **Diagnostics** — departure histogram with the thresholds, split-window scatter, clear-sky bias fit
-  and a summary of the scene.
+  per surface, the calibration card (how the clear pixels' departures spread against their σ, and a
+  factor on `[background_errors]` fitted to them, shown as a configuration to copy, never applied) and a
+  summary of the scene.
 
 Class palette: deep teal = clear, amber = marginal, pale lavender = cloud, mid-grey = no_data. The
 colours differ in lightness as well as hue, so they stay apart for common colour-vision deficiencies.

@@ -316,7 +316,8 @@ class TruthWorld:
 
     The screening simulates clear sky with ``physics/data/absorption.toml``, the profile
     builder's defaults (humidity exponent 3, lapse rate 6.5 K km⁻¹, no inversion), the table
-    emissivities of ``[surface.emissivity]`` (sea without view-angle dependence by default)
+    emissivities of ``[surface.emissivity]`` (sea with a flat water surface's full Fresnel fall
+    with view angle by default)
     and a grey cloud, and it expects background errors of the size given in
     ``[background_errors]`` (``[background_noise]`` of them pixel-to-pixel). The truth world
     changes each of these by an amount a real analyst would meet. Ranges ``(lo, hi)`` vary
@@ -402,7 +403,7 @@ HONEST_WORLD = TruthWorld()
 #: background errors: for comparison runs only (the sample files are not made with it).
 SCREENING_WORLD = TruthWorld(
     self_continuum=1.0, foreign_continuum=1.0, lines=1.0, humidity_exponent=(3.0, 3.0), lapse_rate=(6.5, 6.5),
-    inversions=False, sea_angle_fall=0.0, land_emissivity_spread=(0.012, 0.015, 0.005, 0.004),
+    inversions=False, sea_angle_fall=1.0, land_emissivity_spread=(0.0, 0.0, 0.0, 0.0),
     ice_tau_ratio_12=(1.0, 1.0), ice_tau_ratio_8p6=(1.0, 1.0), broken_cover=1.0, bg_t_skin_rms=(0.3, 0.3, 0.3),
     bg_pixel_t_skin_rms=0.0, bg_pixel_tcwv_rel_rms=0.0, poor_background_factor=1.0)
 

@@ -29,10 +29,10 @@ SCREEN_XY = """([title, x, y]) => {
   return [r.left + fig.frame.x_scale.compute(x), r.top + fig.frame.y_scale.compute(y)];
 }"""
 
-#: the six maps finished and each image covers x0..x1 within tol data units (re-rasterized view)
+#: the eight maps finished and each image covers x0..x1 within tol data units (re-rasterized view)
 COVERS = """([x0, x1, tol]) => {
   const figs = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure');
-  return figs.length >= 6 && figs.every(v => v.has_finished()) && figs.slice(0, 6).every(fig => {
+  return figs.length >= 8 && figs.every(v => v.has_finished()) && figs.slice(0, 8).every(fig => {
     const img = fig.model.renderers.find(r => r.glyph && r.glyph.type === 'Image');
     const d = img.data_source.data;
     return d.x && Math.abs(d.x[0] - x0) <= tol && Math.abs(d.x[0] + d.dw[0] - x1) <= tol; });

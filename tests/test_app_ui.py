@@ -31,7 +31,7 @@ TIMEOUT = 60_000  # ms; the first page of a fresh server prepares the scene
 MASK_TITLE = "class"
 
 
-def open_dashboard(page, url, n_maps=6):
+def open_dashboard(page, url, n_maps=8):
     page.set_viewport_size({"width": 1680, "height": 1050})
     page.goto(url)
     page.wait_for_function(RENDERED, arg=n_maps, timeout=TIMEOUT, polling=100)
@@ -143,7 +143,7 @@ def test_page_renders_every_map_and_the_caution(served_app, page, artifacts):
     titles = page.evaluate("""() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure')
         .map(v => (v.model.right.find(r => r.type === 'ColorBar') || {}).title)""")
     assert {"observed BT [K]", "clear-sky BT [K]", "observed − clear [K]", "class", "optical depth [1]",
-            "cloud-top pressure [hPa]"} <= set(titles)
+            "cloud-top pressure [hPa]", "σ of the departure [K]", "departure / σ [1]"} <= set(titles)
     page.get_by_text("is not a certified operational product").first.wait_for()
     screenshot(page, artifacts, "ui_main.png")
     page.locator(".bk-tab").filter(has_text="Diagnostics").first.click()
@@ -187,11 +187,11 @@ def test_clicking_a_pixel_fills_the_inspector(served_app, page, artifacts):
     inspector = markdown_text(page, ".cs-inspector")
     for text in ("observed [K]", "clear sky [K]", "departure [K]", "margin [K]", "Cloud retrieval", "11 µm"):
         assert text in inspector
-    page.wait_for_function(RENDERED, arg=7, timeout=TIMEOUT, polling=100)  # the BT-vs-τ curve
-    # the pixel is ringed on all six maps (the inspector may be scrolled out of sight)
+    page.wait_for_function(RENDERED, arg=9, timeout=TIMEOUT, polling=100)  # the BT-vs-τ curve (after the 8 maps)
+    # the pixel is ringed on all eight maps (the inspector may be scrolled out of sight)
     page.wait_for_function("""() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'GlyphRenderer'
         && v.model.glyph.type === 'Scatter').filter(v => { const d = v.model.data_source.data;
-        return d.x && d.x.length === 1 && d.x[0] === 150 && d.y[0] === 120; }).length >= 12""",
+        return d.x && d.x.length === 1 && d.x[0] === 150 && d.y[0] === 120; }).length >= 16""",
                            timeout=TIMEOUT, polling=200)
     screenshot(page, artifacts, "ui_inspector.png")
 
@@ -288,7 +288,7 @@ def test_a_good_upload_opens_the_scene(served_app, page):
     open_dashboard(page, served_app.url)
     page.locator(".cs-upload input[type=file]").first.set_input_files(str(SAMPLES / "night_front_small.csv"))
     expect(page.locator(".cs-scene-name").first).to_have_text("night_front_small", timeout=TIMEOUT)
-    page.wait_for_function(RENDERED, arg=6, timeout=TIMEOUT, polling=100)
+    page.wait_for_function(RENDERED, arg=8, timeout=TIMEOUT, polling=100)
     assert "40 × 40" in shadow_text(page, ".cs-counts")
 
 
@@ -311,7 +311,7 @@ def test_picking_another_scene_opens_it_with_its_own_settings(served_app, page):
     open_dashboard(page, served_app.url)
     page.locator(".cs-scene-select select").first.select_option("day_coast.nc")
     expect(page.locator(".cs-scene-name").first).to_have_text("day_coast", timeout=TIMEOUT)
-    page.wait_for_function(RENDERED, arg=6, timeout=TIMEOUT, polling=100)
+    page.wait_for_function(RENDERED, arg=8, timeout=TIMEOUT, polling=100)
     # sea and land in this scene: the thresholds are edited per surface
     expect(page.get_by_role("button", name="Land").first).to_be_visible(timeout=TIMEOUT)
     # no 3.9 µm channel: the fog test cannot run, and the page says so

@@ -42,7 +42,7 @@ def test_eight_sessions_stay_apart(serve_app, tmp_path, browser, artifacts):
         for k, page in enumerate(pages):  # all sessions open at once
             page.goto(f"{served.url}?scene=s{k}.nc", wait_until="commit")
         for k, page in enumerate(pages):
-            page.wait_for_function(RENDERED, arg=6, timeout=3 * TIMEOUT, polling=200)
+            page.wait_for_function(RENDERED, arg=8, timeout=3 * TIMEOUT, polling=200)
             expect(page.locator(".cs-scene-name").first).to_have_text(f"s{k}", timeout=TIMEOUT)
         before = [cloud_percent(p) for p in pages]
         # each session moves its own fog threshold by a different amount, all before any waiting

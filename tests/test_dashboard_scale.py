@@ -181,5 +181,5 @@ def test_large_scene_path_in_the_browser(serve_app, scene_dir, page, artifacts, 
     x, y = map_point(page, col, row)
     page.mouse.click(x, y)
     page.get_by_text(f"Pixel row {row}, column {col}").first.wait_for(timeout=TIMEOUT)
-    page.wait_for_function(RENDERED, arg=7, timeout=TIMEOUT, polling=100)  # the BT-vs-τ curve
+    page.wait_for_function(RENDERED, arg=9, timeout=TIMEOUT, polling=100)  # the BT-vs-τ curve (after the 8 maps)
     page.screenshot(path=str(artifacts / "ui_large_scene_path.png"))

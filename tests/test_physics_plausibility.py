@@ -223,8 +223,8 @@ def test_window_deficit_slope_per_water_vapour():
     slope = _deficit_slope(absorption_table())
     lo, hi = DEFICIT_SLOPE_RANGE
     assert lo <= slope <= hi, slope
-    # the configuration's clear-sky σ (cloudsieve/data/default_config.toml, [clear_sky_uncertainty])
-    # is reasoned from "dT/dW of ~0.13 K per kg m-2 at 11 um": the physics must give it
+    # the earlier path-based clear-sky σ was reasoned from "dT/dW of ~0.13 K per kg m-2 at 11 um"
+    # (the per-pixel σ now takes the slope from the pixel's own Jacobian); the physics gives it
     assert slope == pytest.approx(0.13, rel=0.15)
 
 

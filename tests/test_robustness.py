@@ -40,6 +40,9 @@ CASES = {
     "lapse_rate_5.5": dict(lapse_rate=(5.5, 5.5)),
     "lapse_rate_6.5": dict(lapse_rate=(6.5, 6.5)),
     "lapse_rate_7.5": dict(lapse_rate=(7.5, 7.5)),
+    # the background's pixel-to-pixel errors 1.4 times what [background_noise] assumes (skin 0.42 K,
+    # water vapour 10 %): the configuration's noise is not the truth's
+    "pixel_noise_x1.4": dict(bg_pixel_t_skin_rms=0.42, bg_pixel_tcwv_rel_rms=0.10),
     "screening_world": None,
 }
 #: Cases main misses (default configuration), with the figure: none at present. Without the

@@ -127,7 +127,8 @@ class PixelInspector(Viewer):
             return []
         chans = list(budget["channels"])
         lines = ["", "**Clear-sky error budget** (1 σ, K; background errors per surface from the configuration; "
-                 "not yet used by the tests)", "",
+                 "this pixel simulated at its own state — the tests use the same budget evaluated per bin of "
+                 "background state, the σ column above)", "",
                  "| source (σ) | " + " | ".join(channel_label(c) for c in chans) + " |",
                  "|---|" + "---|" * len(chans)]
         for key, (label, sigma, unit) in budget["components"].items():

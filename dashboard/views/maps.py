@@ -65,7 +65,7 @@ def _robust_range(arrays, lo=1.0, hi=99.0, pad=0.0):
 
 
 class MapGrid(Viewer):
-    """Six linked maps of the model's current result."""
+    """The eight linked maps of the model's current result."""
 
     def __init__(self, model, focus, notices, frame_width=250, **params):
         super().__init__(**params)
@@ -125,10 +125,10 @@ class MapGrid(Viewer):
         return f"Departure observed − clear{' (bias removed)' if applied else ''} · {channel_label(channel)}"
 
     def title_sigma(self, channel):
-        return f"Clear-sky uncertainty σ (from the background errors) · {channel_label(channel)}"
+        return f"σ of the departure (background errors and instrument noise) · {channel_label(channel)}"
 
     def title_z(self, channel, version=None):
-        return f"Departure in units of σ: (observed − clear)/σ · {channel_label(channel)}"
+        return f"Departure in units of σ (after the bias removal when on) · {channel_label(channel)}"
 
     def title_mask(self, version=None):
         return "Screening class"
@@ -255,7 +255,7 @@ class MapGrid(Viewer):
                 "cloud-top pressure", "@image{0} hPa", "cloud-top pressure [hPa]", cmap=PTOP_CMAP,
                 clim=self._ptop_clim), {}),
             (self.sigma, self.title_sigma, {"channel": ch}, self._opts(
-                "clear-sky σ", "@image{0.00} K", "clear-sky σ [K]", cmap=SIGMA_CMAP, clim=self._sigma_clim), {}),
+                "σ", "@image{0.00} K", "σ of the departure [K]", cmap=SIGMA_CMAP, clim=self._sigma_clim), {}),
             (self.normalised, self.title_z, {"channel": ch, "version": ver}, self._opts(
                 "departure / σ", "@image{+0.0}", "departure / σ [1]", cmap=DEPARTURE_CMAP, clim=Z_CLIM,
                 symmetric=True), {}),
