@@ -275,22 +275,21 @@ def _night_fog_contrast(inp, t):
         raw = inp.raw_departure["3p9um"] - inp.raw_departure["11um"]
         key = ("fog_window", win, json.dumps(t["max_cold_11um"], sort_keys=True))
         if inp.cache is not None and key in inp.cache:
-            mean_raw, n = inp.cache[key]
+            mean_raw, s_mean = inp.cache[key]
         else:
             use = inp.valid & inp.night & np.isfinite(raw) & (inp.raw_departure["11um"] >= -max_cold)
-            w = use.astype(float)
-            n = ndimage.uniform_filter(w, win, mode="constant") * win * win
+            n = ndimage.uniform_filter(use.astype(float), win, mode="constant") * win * win
+            s_pix = inp.sigma["pixel:3p9um-11um"]
             with np.errstate(invalid="ignore", divide="ignore"):
                 mean_raw = ndimage.uniform_filter(np.where(use, raw, 0.0), win, mode="constant") * win * win / n
+                s_mean = np.sqrt(np.maximum(inp.sigma["3p9um-11um"] ** 2 - s_pix**2, 0.0) + s_pix**2 / n)
+            s_mean = np.where(n >= 2.5, s_mean, np.nan)  # fewer than 3 pixels: no window mean
             if inp.cache is not None:
-                inp.cache[key] = (mean_raw, n)
+                inp.cache[key] = (mean_raw, s_mean)
         # the window statistics come from the departures before the bias removal: the pixel's own
         # bias difference stands for the window's (the bias line barely changes in a few pixels)
         mean = mean_raw - (raw - diff)
-        s_pix = inp.sigma["pixel:3p9um-11um"]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            s_mean = np.sqrt(np.maximum(inp.sigma["3p9um-11um"] ** 2 - s_pix**2, 0.0) + s_pix**2 / np.maximum(n, 1.0))
-        m = np.fmax(m, np.where(n >= 2.5, -mean - k * s_mean, np.nan))
+        m = np.fmax(m, -mean - k * s_mean)
     return Margin(np.where(inp.night & low, m, np.nan), -thr)
 
 
