@@ -18,6 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .codes import CLEAR, SURFACES
+from .registry import bit_table, registered
 
 #: 1 / Φ⁻¹(3/4): turns a median absolute deviation into a normal standard deviation (common practice)
 MAD_TO_SIGMA = 1.482602218505602
@@ -47,6 +48,9 @@ class SurfaceCalibration:
         √(f² σ_bg² + NEΔT²), the clear-sky part scaled, the instrument noise as it is
     z_density : probability density of departure/σ of the clear pixels in the bins of ``Z_EDGES``
         (values beyond them in the end bins) [1]
+    pixel_spread : robust spread of the differences of neighbouring pixels over their pixel-to-
+        pixel σ [1] (1 where ``[background_noise]`` and the instrument noise are right)
+    pixel_factor : proposed factor on this surface's ``[background_noise]`` [1]
     """
 
     surface: str
@@ -57,6 +61,8 @@ class SurfaceCalibration:
     z_mean: float
     factor: float
     z_density: np.ndarray
+    pixel_spread: float = float("nan")
+    pixel_factor: float = float("nan")
 
 
 #: at most this many clear pixels per surface enter the fit (an even sample beyond it)
@@ -126,6 +132,57 @@ def _truncated_fit(d, var_bg, var_noise, lower, upper):
     return float(best.x[0]), float(np.exp(best.x[1]))
 
 
+def pixel_scale(departure, sigma_pixel, noise, surface, use, min_pairs=100):
+    """Per surface: how differences of neighbouring pixels spread against their pixel-to-pixel σ.
+
+    The smooth part of the background errors is the same in two neighbouring pixels and cancels
+    in their difference; what is left is the part independent from pixel to pixel, whose σ the
+    screening expects as σ_pixel (``[background_noise]`` through the Jacobians, and the instrument
+    noise). For pairs of horizontal and vertical neighbours of the same surface, both in ``use``:
+
+        (d_i − d_j) / √(g² (σp_i² − n_i²) + g² (σp_j² − n_j²) + n_i² + n_j²)
+
+    spreads like a unit normal for the right factor g on ``[background_noise]`` (instrument noise
+    n known); g is found by Brent's method on the robust spread, the spread at g = 1 reported.
+
+    Returns dict surface name -> (pairs, spread at g = 1, g).
+    """
+    from scipy.optimize import brentq
+
+    d = np.asarray(departure, float)
+    sp2 = np.asarray(sigma_pixel, float) ** 2
+    n2 = np.asarray(noise, float) ** 2
+    out = {}
+    for code, name in enumerate(SURFACES):
+        ok = use & (surface == code) & np.isfinite(d) & np.isfinite(sp2)
+        parts = []
+        for a, b in (((slice(None), slice(1, None)), (slice(None), slice(None, -1))),
+                     ((slice(1, None), slice(None)), (slice(None, -1), slice(None)))):
+            both = ok[a] & ok[b]
+            parts.append((d[a][both] - d[b][both], (sp2[a] - n2[a])[both] + (sp2[b] - n2[b])[both],
+                          n2[a][both] + n2[b][both]))
+        x, bg, nn = (np.concatenate(v) for v in zip(*parts))
+        if x.size < min_pairs:
+            continue
+        bg = np.maximum(bg, 0.0)
+        spread = robust_std(x / np.sqrt(bg + nn))
+
+        def excess(g):
+            return robust_std(x / np.sqrt(g * g * bg + nn + 1e-12)) - 1.0
+
+        if not np.any(bg > 0):
+            g = float("nan")
+        elif excess(0.0) <= 0:
+            g = 0.0
+        else:
+            hi = 1.0
+            while excess(hi) > 0 and hi < 1e3:
+                hi *= 2.0
+            g = float(brentq(excess, 0.0, hi, xtol=1e-3))
+        out[name] = (int(x.size), float(spread), g)
+    return out
+
+
 def session_calibration(session):
     """:func:`calibrate` on a screened :class:`cloudsieve.session.Session` (its window channel)."""
     from .codes import per_surface
@@ -139,26 +196,50 @@ def session_calibration(session):
     warm = cfg["tests"]["warm_departure"]
     upper = (per_surface(warm["threshold"], surface) if warm.get("enabled", True)
              else np.full(surface.shape, np.inf))
-    return ch, calibrate(res.departure[ch], res.sigma_clear, sim.sigma[f"noise:{ch}"], surface, res.mask,
-                         ds["valid"].values, lower, upper, res.bias.get(ch), cfg["bias"]["min_pixels"])
+    valid = ds["valid"].values
+    cal = calibrate(res.departure[ch], res.sigma_clear, sim.sigma[f"noise:{ch}"], surface, res.mask, valid, lower,
+                    upper, res.bias.get(ch), cfg["bias"]["min_pixels"])
+    # the pixel scale is what the texture test judges: its departures (before the bias removal,
+    # whose line in the noisy slant path takes out part of the pixel-to-pixel water-vapour error),
+    # on pixels no other cloud test fired on
+    bits = bit_table()
+    others = sum(bits[t] for t in registered("cloud") if t != "texture")
+    use = valid & ((res.bits & others) == 0)
+    raw = ds[f"bt_{ch}"].values - sim.bt_clear[sim.channels.index(ch)]
+    for name, (pairs, spread, g) in pixel_scale(raw, sim.sigma[f"pixel:{ch}"], sim.sigma[f"noise:{ch}"],
+                                                surface, use, cfg["bias"]["min_pixels"]).items():
+        if name in cal:
+            cal[name].pixel_spread, cal[name].pixel_factor = spread, g
+    return ch, cal
 
 
 def proposal_toml(calibration, config):
-    """``[background_errors]`` and ``[background_noise]`` scaled per surface by the fitted factor,
-    as TOML text (surfaces without a fit keep the configured values)."""
-    def scaled(table, digits):
-        lines = []
-        for key, per in table.items():
-            vals = {}
-            for s in SURFACES:
-                c = calibration.get(s)
-                f = c.factor if c is not None and np.isfinite(c.factor) else 1.0
-                vals[s] = round(per[s] * f, digits)
-            lines.append(f"{key} = {{ " + ", ".join(f"{s} = {v:g}" for s, v in vals.items()) + " }")
-        return "\n".join(lines)
+    """``[background_noise]`` scaled per surface by the pixel-scale factor and the smooth part of
+    ``[background_errors]`` (√(total² − pixel part²)) by the fitted factor, as TOML text (surfaces
+    without a fit keep the configured values)."""
+    def factor(s, attr):
+        c = calibration.get(s)
+        f = getattr(c, attr) if c is not None else float("nan")
+        return f if np.isfinite(f) else 1.0
 
-    factors = ", ".join(f"{s} × {c.factor:.2f}" for s, c in calibration.items() if np.isfinite(c.factor))
+    old_noise = config["background_noise"]
+    noise = {key: {s: round(per[s] * factor(s, "pixel_factor"), 4) for s in SURFACES} for key, per in old_noise.items()}
+
+    def total(key, s, value):
+        # the smooth part (total² − pixel part²) scaled by the fitted factor, the pixel part by its own
+        n = old_noise.get(key, {}).get(s, 0.0)
+        smooth2 = max(value * value - n * n, 0.0) * factor(s, "factor") ** 2
+        return round(float(np.sqrt(smooth2 + noise.get(key, {}).get(s, 0.0) ** 2)), 4)
+
+    errors = {key: {s: total(key, s, per[s]) for s in SURFACES} for key, per in config["background_errors"].items()}
+
+    def lines(table):
+        return "\n".join(f"{key} = {{ " + ", ".join(f"{s} = {v:g}" for s, v in vals.items()) + " }"
+                         for key, vals in table.items())
+
+    factors = ", ".join(f"{s} × {c.factor:.2f}" + (f" (pixel scale × {c.pixel_factor:.2f})"
+                                                   if np.isfinite(c.pixel_factor) else "")
+                        for s, c in calibration.items() if np.isfinite(c.factor))
     return ("# fitted to the clear pixels of one scene: the background errors scaled per surface "
             f"({factors or 'no fit'})\n"
-            "[background_errors]\n" + scaled(config["background_errors"], 4) + "\n\n"
-            "[background_noise]\n" + scaled(config["background_noise"], 4) + "\n")
+            "[background_errors]\n" + lines(errors) + "\n\n[background_noise]\n" + lines(noise) + "\n")

@@ -78,8 +78,12 @@ def test_a_scene_calibration_and_its_proposal_are_usable():
     cfg = merge_config(tomllib.loads(text))  # the proposal is a valid configuration
     default = load_config()
     for s, c in cal.items():
+        # the smooth part of the total scaled by the fitted factor, the pixel-to-pixel part by its own
+        t, n = (default[k]["skin_temperature"][s] for k in ("background_errors", "background_noise"))
+        g = c.pixel_factor if np.isfinite(c.pixel_factor) else 1.0
+        assert cfg["background_noise"]["skin_temperature"][s] == pytest.approx(g * n, abs=1e-3)
         assert cfg["background_errors"]["skin_temperature"][s] == pytest.approx(
-            c.factor * default["background_errors"]["skin_temperature"][s], abs=1e-3)
+            np.sqrt(c.factor**2 * max(t * t - n * n, 0.0) + (g * n) ** 2), abs=1e-3)
 
 
 def test_the_diagnostics_show_the_calibration_and_the_proposal():
@@ -99,3 +103,25 @@ def test_the_diagnostics_show_the_calibration_and_the_proposal():
     assert "[background_errors]" in text and "not applied" in text
     assert "| land |" in text and "× " in text  # the fitted factor of the land background errors
     assert isinstance(plot, hv.Overlay)
+
+
+@pytest.mark.parametrize("g", [1.0, 1.7])
+def test_neighbour_differences_find_the_pixel_to_pixel_noise(g):
+    """A smooth error field (scale 20 pixels, 0.8 K) plus independent pixel noise g times the
+    configured 0.3 K plus 0.1 K instrument noise: differences of neighbours cancel the smooth part,
+    and the pixel-scale factor finds g (numpy's normal deviates, scipy's Gaussian filter)."""
+    from scipy import ndimage
+
+    from cloudsieve.calibration import pixel_scale
+
+    rng = np.random.default_rng(5)
+    shape = (300, 300)
+    smooth = ndimage.gaussian_filter(rng.standard_normal(shape), 20.0)
+    smooth *= 0.8 / smooth.std()
+    d = smooth + rng.normal(0.0, 0.3 * g, shape) + rng.normal(0.0, 0.1, shape)
+    sigma_pixel = np.full(shape, np.hypot(0.3, 0.1))
+    out = pixel_scale(d, sigma_pixel, np.full(shape, 0.1), np.zeros(shape, np.int8), np.ones(shape, bool))
+    pairs, spread, factor = out["sea"]
+    assert pairs == 2 * 300 * 299
+    assert factor == pytest.approx(g, rel=0.05)
+    assert spread == pytest.approx(np.hypot(0.3 * g, 0.1) / np.hypot(0.3, 0.1), rel=0.05)

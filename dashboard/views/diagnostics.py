@@ -281,11 +281,15 @@ class SigmaCalibration(_PlotWithTable):
         if not cal:
             return "Too few clear pixels on any surface to judge the clear-sky σ."
         rows = ["| surface | clear pixels | bias a [K] | b [K per kg m⁻²] | spread of dep./σ | background errors "
-                "× fitted factor |", "|---|---|---|---|---|---|"]
+                "× fitted factor | neighbour spread | background noise × factor |", "|---|---|---|---|---|---|---|---|"]
+        f = (lambda v, fmt: format(v, fmt) if np.isfinite(v) else "–")  # noqa: E731
         for name, c in cal.items():
-            rows.append(f"| {name} | {c.pixels:,} | {c.bias_a:+.2f} | {c.bias_b:+.4f} | **{c.z_spread:.2f}** | "
-                        f"× {c.factor:.2f} |")
-        return ("\n".join(rows) + "\n\nA spread above 1: the background is worse than the configuration assumes "
+            rows.append(f"| {name} | {c.pixels:,} | {f(c.bias_a, '+.2f')} | {f(c.bias_b, '+.4f')} | "
+                        f"**{c.z_spread:.2f}** | × {c.factor:.2f} | **{f(c.pixel_spread, '.2f')}** | "
+                        f"× {f(c.pixel_factor, '.2f')} |")
+        return ("\n".join(rows) + "\n\nThe neighbour spread compares differences of adjacent pixels (the smooth "
+                "errors cancel) with the pixel-to-pixel σ the texture test allows for. "
+                "A spread above 1: the background is worse than the configuration assumes "
                 "(false alarms follow); below 1: the cold test could be sharper. σ fitted to this scene's clear "
                 "pixels, **not applied** — to use it, put this in a configuration file (`--config`):\n\n"
                 "```toml\n" + proposal_toml(cal, self.model.config) + "```")
