@@ -21,7 +21,7 @@ import numpy as np
 
 from physics import cloud as pcloud
 
-from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, SURFACES
+from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, SURFACES, per_surface
 from .config import TOP_METHODS, TOP_PRESSURE_RANGE, load_config
 from .export import result_dataset, write_result
 from .invert import invert_all
@@ -302,8 +302,11 @@ class Session:
         """The clear-sky error budget of one pixel (cloudsieve.uncertainty), for the inspector.
 
         Returns dict with "components" (name -> label, σ of the input, unit), per channel the
-        contribution of each component [K], the noise [K] and the total σ [K], the dominant
-        component, and the σ of T11 − T12 [K] (None without both channels); None for a pixel
+        contribution of each component [K] (and "emissivity_contrast", the emissivity error that
+        differs between channels), the noise [K] and the total σ [K], the dominant component,
+        the σ of T11 − T12 [K] (None without both channels), "differences" ("a-b" -> σ [K] of
+        each channel difference a test uses) and "screening" (channel or "a-b" -> the σ the
+        tests used, evaluated at the pixel's bin of background state); None for a pixel
         without data.
         """
         from .simulate import gather_columns, surface_emissivity
@@ -319,11 +322,22 @@ class Session:
         cols = gather_columns(fields, surface_emissivity(fields, chset, self.config), idx)
         b = error_budget(cols, chset, self.config, fields["surface"].ravel()[idx])
         labels = {key: (label, unit) for key, label, unit, _ in COMPONENTS}
+        surface = fields["surface"].ravel()[idx]
         out = {"components": {k: (labels[k][0], float(b.input_sigma[0, j]), labels[k][1])
                               for j, k in enumerate(b.components)},
-               "channels": {}, "split_window": None if b.split_window is None else float(b.split_window[0])}
+               "channels": {}, "split_window": None if b.split_window is None else float(b.split_window[0]),
+               "differences": {k: float(v[0]) for k, v in b.difference.items()}}
+        out["components"]["emissivity_contrast"] = (
+            "emissivity, differing between channels",
+            float(per_surface(self.config["background_errors"]["emissivity_contrast"], surface)[0]), "1")
+        screening = {}
+        for name, grid in (self.sim.sigma or {}).items():
+            if ":" not in name:
+                screening[name] = float(grid[row, col])
+        out["screening"] = screening
         for i, ch in enumerate(b.channels):
             contrib = {k: float(b.contribution[0, i, j]) for j, k in enumerate(b.components)}
+            contrib["emissivity_contrast"] = float(b.contrast[0, i])
             parts = dict(contrib, noise=float(b.noise[0, i]))
             out["channels"][ch] = {"contribution": contrib, "noise": float(b.noise[0, i]),
                                    "total": float(b.total[0, i]), "dominant": max(parts, key=parts.get)}

@@ -10,6 +10,7 @@ whole-scene :func:`simulate`, the per-pixel :class:`ColumnSimulator` and the blo
 """
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+import threading
 import time
 
 import numpy as np
@@ -167,6 +168,22 @@ class ColumnResult:
     opaque_radiance: np.ndarray = None
 
 
+_POOLS = {}
+_POOLS_LOCK = threading.Lock()
+
+
+def worker_pool(threads):
+    """The process's pool of ``threads`` worker threads for column chunks, started once: a
+    screening calls the simulation several times (clear sky, the Jacobians of its σ), and starting
+    threads for each call costs about as much as simulating a few thousand columns. Its tasks never
+    wait on other tasks of the pool, so callers on any thread may share it."""
+    with _POOLS_LOCK:
+        pool = _POOLS.get(threads)
+        if pool is None:
+            pool = _POOLS[threads] = ThreadPoolExecutor(threads, thread_name_prefix=f"cloudsieve-columns-{threads}")
+        return pool
+
+
 def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=None, profile_options=None):
     """Simulate pixel columns chunk by chunk (the one column loop of cloudsieve).
 
@@ -225,11 +242,10 @@ def simulate_columns(cols, chset, sim_cfg, levels=False, threads=1, progress=Non
             if progress:
                 progress(done, n)
     else:
-        with ThreadPoolExecutor(threads) as pool:
-            for k in pool.map(run, starts):
-                done += k
-                if progress:
-                    progress(done, n)
+        for k in worker_pool(threads).map(run, starts):
+            done += k
+            if progress:
+                progress(done, n)
     return out
 
 

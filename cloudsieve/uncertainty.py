@@ -65,6 +65,7 @@ class ErrorBudget:
     total : (n, n_ch) σ of the clear-sky brightness temperature [K]
     split_window : (n,) σ of T11 − T12 with the two channels' errors correlated [K], or None
     contrast : (n, n_ch) part from the emissivity error that differs between channels [K]
+    difference : dict "a-b" -> (n,) σ of T_a − T_b (``DIFFERENCES`` present), errors correlated [K]
     """
 
     channels: tuple
@@ -76,6 +77,7 @@ class ErrorBudget:
     total: np.ndarray
     split_window: np.ndarray = None
     contrast: np.ndarray = None
+    difference: dict = None
 
 
 def noise_equivalent_temperature(channel, temperature, nedt_ref, t_ref):
@@ -98,46 +100,66 @@ def _scaled_continuum(chset, config, factor):
     return ChannelSet(chset.names, chset.channels, channel_coefficients(chset.channels, table))
 
 
+def _concat(columns):
+    """One :class:`Columns` of the columns of several (pixels along the last axis, in order)."""
+    cat = lambda name: np.concatenate([getattr(c, name) for c in columns], axis=-1)  # noqa: E731
+    profiles = None
+    if columns[0].profiles is not None:
+        profiles = tuple(np.concatenate([c.profiles[k] for c in columns], axis=-1) for k in range(3))
+    return Columns(cat("t_air"), cat("tcwv"), cat("p_surf"), cat("t_skin"), cat("sat_zenith"), cat("emissivity"),
+                   profiles)
+
+
 def _jacobians(cols, chset, config, threads=1):
     """Clear-sky brightness temperature (n_ch, n) and its Jacobians (n, n_ch, n_comp) of
-    columns ``cols``, by re-simulated columns (one input changed at a time, ``COMPONENTS``)."""
+    columns ``cols``, by re-simulated columns (one input changed at a time, ``COMPONENTS``).
+
+    The changes of a column's own inputs (skin and air temperature, water vapour, emissivity)
+    are simulated together with the unchanged columns in one call; the profile's shape and the
+    continuum, which change the profile builder or the absorption table, in one call each."""
     sim_cfg = config["simulation"]
-    base = simulate_columns(cols, chset, sim_cfg, threads=threads).brightness_temperature.astype(np.float64)
+    n = cols.size
     profile_default = {"lapse_rate": DEFAULT_LAPSE_RATE, "humidity_exponent": DEFAULT_HUMIDITY_EXPONENT}
-    jac = []
+    together, alone = [cols], {}  # columns changed in their own inputs; (chset, options) of the others
     for key, _, _, step in COMPONENTS:
-        c, cs, opts = cols, chset, None
         if key == "skin_temperature":
-            c = replace(cols, t_skin=cols.t_skin + np.float32(step))
+            together.append(replace(cols, t_skin=cols.t_skin + np.float32(step)))
         elif key == "air_temperature" and cols.profiles is not None:  # the whole profile given
             pr, tm, q = cols.profiles
-            c = replace(cols, profiles=(pr, tm + np.float32(step), q))
+            together.append(replace(cols, profiles=(pr, tm + np.float32(step), q)))
         elif key == "air_temperature":
-            c = replace(cols, t_air=cols.t_air + np.float32(step))
-        elif key == "lapse_rate":  # K km⁻¹ → the profile builder's K m⁻¹
-            opts = dict(profile_default, lapse_rate=DEFAULT_LAPSE_RATE + step / 1000.0)
+            together.append(replace(cols, t_air=cols.t_air + np.float32(step)))
         elif key == "water_vapour" and cols.profiles is not None:
             pr, tm, q = cols.profiles
-            c = replace(cols, profiles=(pr, tm, q * np.float32(1.0 + step)))
+            together.append(replace(cols, profiles=(pr, tm, q * np.float32(1.0 + step))))
         elif key == "water_vapour":
-            c = replace(cols, tcwv=cols.tcwv * np.float32(1.0 + step))
-        elif key == "humidity_exponent":
-            opts = dict(profile_default, humidity_exponent=DEFAULT_HUMIDITY_EXPONENT + step)
+            together.append(replace(cols, tcwv=cols.tcwv * np.float32(1.0 + step)))
         elif key == "emissivity":
-            c = replace(cols, emissivity=np.minimum(cols.emissivity + np.float32(step), np.float32(1.0)))
+            together.append(replace(cols, emissivity=np.minimum(cols.emissivity + np.float32(step), np.float32(1.0))))
+        elif key in PROFILE_COMPONENTS and cols.profiles is None:  # K km⁻¹ → the profile builder's K m⁻¹
+            value = DEFAULT_LAPSE_RATE + step / 1000.0 if key == "lapse_rate" else DEFAULT_HUMIDITY_EXPONENT + step
+            alone[key] = (chset, dict(profile_default, **{key: value}))
         elif key == "continuum":
-            cs = _scaled_continuum(chset, config, 1.0 + step)
-        if cols.profiles is not None and key in PROFILE_COMPONENTS:
-            jac.append(np.zeros_like(base))  # an explicit profile is not rebuilt from the surface numbers
-            continue
-        bt = simulate_columns(c, cs, sim_cfg, profile_options=opts, threads=threads).brightness_temperature
-        bt = bt.astype(np.float64)
-        if key == "emissivity":  # the step may be cut at 1
-            d_eps = (c.emissivity - cols.emissivity).astype(np.float64)
-            jac.append(np.where(d_eps > 0, (bt - base) / np.where(d_eps > 0, d_eps, 1.0), 0.0))
+            alone[key] = (_scaled_continuum(chset, config, 1.0 + step), None)
+    bt_together = simulate_columns(_concat(together), chset, sim_cfg, threads=threads).brightness_temperature
+    bt_together = bt_together.astype(np.float64)
+    base = bt_together[:, :n]
+    shifted = {key: bt_together[:, (k + 1) * n:(k + 2) * n] for k, key in
+               enumerate(k for k, *_ in COMPONENTS if k in ("skin_temperature", "air_temperature", "water_vapour",
+                                                           "emissivity"))}
+    for key, (cs, opts) in alone.items():
+        shifted[key] = simulate_columns(cols, cs, sim_cfg, profile_options=opts, threads=threads
+                                        ).brightness_temperature.astype(np.float64)
+    jac = []
+    for key, _, _, step in COMPONENTS:
+        if key not in shifted:  # an explicit profile is not rebuilt from the surface numbers
+            jac.append(np.zeros_like(base))
+        elif key == "emissivity":  # the step may be cut at 1
+            d_eps = (together[-1].emissivity - cols.emissivity).astype(np.float64)
+            jac.append(np.where(d_eps > 0, (shifted[key] - base) / np.where(d_eps > 0, d_eps, 1.0), 0.0))
         else:
-            jac.append((bt - base) / step)
-    return base, np.moveaxis(np.stack(jac), (0, 1, 2), (2, 1, 0))
+            jac.append((shifted[key] - base) / step)
+    return np.ascontiguousarray(base), np.moveaxis(np.stack(jac), (0, 1, 2), (2, 1, 0))
 
 
 def _noise(chset, bt, config):
@@ -158,14 +180,15 @@ def error_budget(cols, chset, config, surface):
     noise = _noise(chset, base, config)
     contrast = _contrast_sigma(jacobian, surface, config)  # (n, n_ch)
     total = np.sqrt(np.sum(contribution**2, axis=-1) + contrast**2 + noise**2)
-    split = None
-    if "11um" in chset.names and "12um" in chset.names:
-        i, j = chset.names.index("11um"), chset.names.index("12um")
-        diff = (jacobian[:, i] - jacobian[:, j]) * input_sigma
-        split = np.sqrt(np.sum(diff**2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2
-                        + noise[:, i] ** 2 + noise[:, j] ** 2)
+    difference = {}
+    for a, b in DIFFERENCES:
+        if a in chset.names and b in chset.names:
+            i, j = chset.names.index(a), chset.names.index(b)
+            diff = (jacobian[:, i] - jacobian[:, j]) * input_sigma
+            difference[f"{a}-{b}"] = np.sqrt(np.sum(diff**2, axis=-1) + contrast[:, i] ** 2 + contrast[:, j] ** 2
+                                             + noise[:, i] ** 2 + noise[:, j] ** 2)
     return ErrorBudget(chset.names, tuple(k for k, *_ in COMPONENTS), input_sigma, jacobian, contribution, noise,
-                       total, split, contrast)
+                       total, difference.get("11um-12um"), contrast, difference)
 
 
 def _contrast_sigma(jacobian, surface, config):
@@ -228,7 +251,8 @@ class ClearSkySigma:
 
 def _bin_components(cols, surface):
     """The bin index of each column's background state, one int32 array per component
-    (``BIN_WIDTHS``; float32 arithmetic is exact enough for these widths)."""
+    (``BIN_WIDTHS``; float32 arithmetic is exact enough for these widths). The reference of
+    :func:`_bin_codes_compiled` (tests hold the two together)."""
     w = BIN_WIDTHS
     f32 = np.float32
     sec = f32(1.0) / np.cos(np.deg2rad(cols.sat_zenith.astype(f32)))
@@ -242,29 +266,138 @@ def _bin_components(cols, surface):
     return [c if c.dtype == np.int32 else np.rint(c).astype(np.int32) for c in comps]
 
 
+def _bin_codes_numpy(cols, surface):
+    """(code, low, span): each column's bin packed into one int64 (mixed radix over the
+    components' ranges in this set of columns), and the radix (numpy reference)."""
+    comps = _bin_components(cols, surface)
+    low = np.array([int(c.min()) for c in comps], np.int64)
+    span = np.array([int(c.max()) for c in comps], np.int64) - low + 1
+    if np.prod(span.astype(float)) >= 2.0**62:
+        return np.stack(comps, axis=-1).astype(np.int64), low, span
+    code = np.zeros(comps[0].size, np.int64)
+    for c, lo, sp in zip(comps, low, span):
+        code *= sp
+        code += c - lo
+    return code, low, span
+
+
+_KERNELS = {}
+#: pixels per block of the compiled binning passes
+_BLOCK = 4096
+
+
+def _kernels():
+    """The compiled binning kernels (numba, parallel over pixels), built on first use; None
+    where the compiled physics is off (``CLOUDSIEVE_PHYSICS=numpy``) or numba is missing."""
+    from physics import fused
+
+    if not fused.enabled():
+        return None
+    if not _KERNELS:
+        import numba
+
+        opts = dict(parallel=True, nogil=True, error_model="numpy", cache=True)
+
+        @numba.njit(**opts)
+        def components(surface, tcwv, t_air, t_skin, sat_zenith, p_surf, emissivity, width, out, low, high):
+            # blocks of pixels in parallel; each block's minimum and maximum per component
+            f32 = np.float32
+            deg = f32(np.pi / 180.0)
+            n, k = tcwv.size, out.shape[0]
+            for b in numba.prange(low.shape[0]):
+                for j in range(k):
+                    low[b, j] = np.iinfo(np.int32).max
+                    high[b, j] = np.iinfo(np.int32).min
+                for p in range(b * _BLOCK, min(n, (b + 1) * _BLOCK)):
+                    out[0, p] = surface[p]
+                    out[1, p] = np.int32(np.rint(np.log(max(tcwv[p], f32(1e-3))) / width[0]))
+                    out[2, p] = np.int32(np.rint(t_air[p] / width[1]))
+                    out[3, p] = np.int32(np.rint((t_skin[p] - t_air[p]) / width[2]))
+                    out[4, p] = np.int32(np.rint((f32(1.0) / np.cos(sat_zenith[p] * deg)) / width[3]))
+                    out[5, p] = np.int32(np.rint(p_surf[p] / width[4]))
+                    for c in range(emissivity.shape[0]):
+                        out[6 + c, p] = np.int32(np.rint(emissivity[c, p] / width[5]))
+                    for j in range(k):
+                        low[b, j] = min(low[b, j], out[j, p])
+                        high[b, j] = max(high[b, j], out[j, p])
+
+        @numba.njit(**opts)
+        def pack(comps, low, span, code):
+            for p in numba.prange(code.size):
+                v = np.int64(0)
+                for j in range(comps.shape[0]):
+                    v = v * span[j] + (comps[j, p] - low[j])
+                code[p] = v
+
+        @numba.njit(**opts)
+        def gather(table, index, out):
+            n = index.size
+            for b in numba.prange((n + _BLOCK - 1) // _BLOCK):
+                stop = min(n, (b + 1) * _BLOCK)
+                for r in range(table.shape[1]):  # each output row written contiguously
+                    for p in range(b * _BLOCK, stop):
+                        out[r, p] = table[index[p], r]
+
+        _KERNELS.update(components=components, pack=pack, gather=gather)
+    return _KERNELS
+
+
+def _bin_codes_compiled(cols, surface, kern):
+    """:func:`_bin_codes_numpy` in two compiled passes over the pixels."""
+    f32 = np.float32
+    w = BIN_WIDTHS
+    widths = np.array([w["log_tcwv"], w["t_air"], w["skin_minus_air"], w["sec_zenith"], w["p_surf"],
+                       w["emissivity"]], f32)
+    n_ch = cols.emissivity.shape[0]
+    comps = np.empty((6 + n_ch, cols.size), np.int32)
+    blocks = -(-cols.size // _BLOCK)
+    low, high = np.empty((blocks, comps.shape[0]), np.int32), np.empty((blocks, comps.shape[0]), np.int32)
+    c32 = [np.ascontiguousarray(a, dtype=f32) for a in (cols.tcwv, cols.t_air, cols.t_skin, cols.sat_zenith,
+                                                          cols.p_surf)]
+    surface = np.ascontiguousarray(surface)
+    if surface.dtype.kind not in "iu":
+        surface = surface.astype(np.int32)
+    kern["components"](surface, *c32, np.asarray(cols.emissivity, dtype=f32), widths, comps, low, high)
+    low, high = low.min(axis=0).astype(np.int64), high.max(axis=0).astype(np.int64)
+    span = high - low + 1
+    if np.prod(span.astype(float)) >= 2.0**62:
+        return comps.T.astype(np.int64), low, span
+    code = np.empty(cols.size, np.int64)
+    kern["pack"](comps, low, span, code)
+    return code, low, span
+
+
 def _bins(cols, surface):
     """(rows, inverse): the distinct bins (m, k) int64 of the columns and each column's bin.
 
     The components are packed into one int64 per column (mixed radix over their ranges in this
     set of columns) and made unique by hashing; a bin's values do not depend on which columns
     come together or in which order, so every chunking of a scene gives each pixel the same σ."""
-    comps = _bin_components(cols, surface)
-    low = np.array([int(c.min()) for c in comps], np.int64)
-    span = np.array([int(c.max()) for c in comps], np.int64) - low + 1
-    if np.prod(span.astype(float)) >= 2.0**62:  # not expected for real states; exact but slower
-        rows, inverse = np.unique(np.stack(comps, axis=-1).astype(np.int64), axis=0, return_inverse=True)
+    kern = _kernels()
+    surface = np.asarray(surface)
+    code, low, span = (_bin_codes_compiled(cols, surface, kern) if kern is not None
+                       else _bin_codes_numpy(cols, surface))
+    if code.ndim == 2:  # not expected for real states; exact but slower
+        rows, inverse = np.unique(code, axis=0, return_inverse=True)
         return rows, inverse.ravel()
-    code = np.zeros(comps[0].size, np.int64)
-    for c, lo, sp in zip(comps, low, span):
-        code *= sp
-        code += c - lo
     inverse, uniq = pd.factorize(code)  # hashing: the bins in order of first appearance
     uniq = np.asarray(uniq, np.int64)
-    rows = np.empty((uniq.size, len(comps)), np.int64)
-    for j in range(len(comps) - 1, -1, -1):
+    rows = np.empty((uniq.size, low.size), np.int64)
+    for j in range(low.size - 1, -1, -1):
         uniq, rows[:, j] = np.divmod(uniq, span[j])
         rows[:, j] += low[j]
     return rows, inverse.ravel()
+
+
+def _gather(table, index):
+    """(k, n) float32: ``table`` (m, k) rows picked by ``index`` (n,), transposed."""
+    table = np.ascontiguousarray(table, dtype=np.float32)
+    kern = _kernels()
+    if kern is None:
+        return np.ascontiguousarray(table.T)[:, index]
+    out = np.empty((table.shape[1], index.size), np.float32)
+    kern["gather"](table, np.ascontiguousarray(index), out)
+    return out
 
 
 def _bin_columns(rows, n_ch):
@@ -340,7 +473,7 @@ def clear_sky_sigma(cols, surface, chset, config, threads=1):
     sd = np.sqrt(np.concatenate([table[0] + noise2, table[1] + noise2, noise2]
                                 + [t + pn[:, None] for t, pn in zip(table[2:2 + n_p] + table[2 + n_p:], 2 * pair_noise)],
                                 axis=1))
-    sd = np.ascontiguousarray(sd.astype(np.float32).T)[:, inverse]  # (3 n_ch + 2 pairs, n): one gather
+    sd = _gather(sd, inverse)  # (3 n_ch + 2 pairs, n): one gather
     total, pixel, noise = sd[:n_ch], sd[n_ch:2 * n_ch], sd[2 * n_ch:3 * n_ch]
     diff = {name: sd[3 * n_ch + k] for k, (name, _, _) in enumerate(pairs)}
     diff_pixel = {name: sd[3 * n_ch + n_p + k] for k, (name, _, _) in enumerate(pairs)}

@@ -234,3 +234,52 @@ def test_the_slope_check_rejects_a_halved_or_doubled_continuum(factor):
     or doubled (the water-vapour absorber that dominates the 11 µm window) the slope leaves it."""
     lo, hi = DEFICIT_SLOPE_RANGE
     assert not lo <= _deficit_slope(_scaled_continuum(factor)) <= hi
+
+
+#: Published regression of the band transmittance of a broad 10.4–12.5 µm window channel (the
+#: Landsat-5 thermal band) on precipitable water w [g cm⁻²], from LOWTRAN 7 runs of standard
+#: atmospheres: Qin, Karnieli & Berliner (2001), "A mono-window algorithm for retrieving land
+#: surface temperature from Landsat TM data...", Int. J. Remote Sens. 22, 3719–3746, their
+#: table of τ(w) (coefficients from memory). Slopes dτ/dw [per g cm⁻²] for (surface air
+#: temperature [K], w range [g cm⁻²]).
+PUBLISHED_TRANSMITTANCE_SLOPES = {
+    (308.15, (0.4, 1.6)): -0.08007,  # "high air temperature" profile (35 °C)
+    (308.15, (1.6, 3.0)): -0.11536,
+    (291.15, (0.4, 1.6)): -0.09611,  # "low air temperature" profile (18 °C)
+    (291.15, (1.6, 3.0)): -0.14142,
+}
+#: The published band is broader than our 11 µm channel (it reaches into the more absorbing
+#: 12 µm side) and comes from another model and profile set: the slopes are held within 25 %
+#: (a halved or doubled continuum moves ours by 35–60 %, tested below).
+TRANSMITTANCE_SLOPE_TOLERANCE = 0.25
+
+
+def _transmittance_slopes(table):
+    """{key of PUBLISHED_TRANSMITTANCE_SLOPES: dτ11/dw [per g cm⁻²]}: our 11 µm nadir surface-to-
+    space transmittance, fitted linearly over the same w ranges, air at the same temperatures."""
+    from physics.absorption import channel_coefficients
+
+    out = {}
+    for (t0, (w_lo, w_hi)) in PUBLISHED_TRANSMITTANCE_SLOPES:
+        w = np.linspace(w_lo, w_hi, 7)  # g cm⁻²
+        t_air = np.full(w.shape, t0)
+        prof = profile_from_surface(t_air, 10.0 * w)  # kg m⁻²
+        sky = simulate_clear_sky(prof, t_air, np.ones(w.shape + (len(channels()),)), np.zeros(w.shape),
+                                 channels(), channel_coefficients(channels(), table))
+        out[(t0, (w_lo, w_hi))] = float(np.polyfit(w, sky.surface_transmittance[:, I11], 1)[0])
+    return out
+
+
+def test_window_transmittance_slope_against_a_published_regression():
+    """How fast the 11 µm window closes with water vapour, against a published regression of
+    an independent model (Qin et al. 2001, LOWTRAN 7; see PUBLISHED_TRANSMITTANCE_SLOPES)."""
+    ours = _transmittance_slopes(absorption_table())
+    for key, published in PUBLISHED_TRANSMITTANCE_SLOPES.items():
+        assert ours[key] == pytest.approx(published, rel=TRANSMITTANCE_SLOPE_TOLERANCE), (key, ours[key])
+
+
+@pytest.mark.parametrize("factor", [0.5, 2.0])
+def test_the_transmittance_check_rejects_a_halved_or_doubled_continuum(factor):
+    ours = _transmittance_slopes(_scaled_continuum(factor))
+    assert any(ours[key] != pytest.approx(published, rel=TRANSMITTANCE_SLOPE_TOLERANCE)
+               for key, published in PUBLISHED_TRANSMITTANCE_SLOPES.items())

@@ -91,7 +91,12 @@ def test_the_inspector_shows_the_budget():
     budget = model.session.error_budget(60, 70)
     assert budget["channels"]["3p9um"]["noise"] > budget["channels"]["11um"]["noise"]  # cold scene
     text = PixelInspector(model, Focus(model.result.mask.shape), Notices()).text((60, 70))
-    assert "Clear-sky error budget" in text and "instrument noise" in text and "11 − 12 µm difference" in text
+    assert "Clear-sky error budget" in text and "instrument noise" in text and "11 µm − 12 µm difference" in text
+    assert "differing between channels" in text and "3.9 µm − 11 µm difference" in text
+    # the σ the tests used (bin centre) is shown beside this pixel's own budget, within a few per cent
+    for key in ("11um", "3p9um", "11um-12um", "3p9um-11um"):
+        own = budget["channels"][key]["total"] if key in budget["channels"] else budget["differences"][key]
+        assert budget["screening"][key] == pytest.approx(own, rel=0.1), key
 
 
 # ---------------------------------------------------------------------------------------
@@ -139,6 +144,36 @@ def test_sigma_is_the_same_on_both_physics_paths(monkeypatch):
     np.testing.assert_allclose(compiled.total, reference.total, rtol=0.02)
     for k, v in compiled.difference.items():
         np.testing.assert_allclose(v, reference.difference[k], rtol=0.02, err_msg=k)
+
+
+def test_compiled_binning_and_gather_match_the_numpy_reference(monkeypatch):
+    """The compiled passes that bin the background states and gather each pixel's σ give the
+    same bins and values as the numpy reference, on a sample scene's pixels and on random
+    states that put values on the bins' edges."""
+    from dataclasses import replace
+
+    import physics.fused as fused
+    from cloudsieve import uncertainty as u
+
+    if not fused.enabled():
+        pytest.skip("the compiled physics is off here")
+    cfg, cs, cols, surface, bt = _scene_columns("night_front", n=3000)
+    rng = np.random.default_rng(5)
+    edges = replace(cols, t_air=(np.round(cols.t_air) + 0.5).astype(np.float32),
+                    t_skin=(np.round(cols.t_skin) + rng.choice([-0.5, 0.5], cols.size)).astype(np.float32),
+                    p_surf=(np.round(cols.p_surf / 10) * 10 + 5).astype(np.float32))
+    for c in (cols, edges):
+        code, low, span = u._bin_codes_compiled(c, surface, u._kernels())
+        ref = u._bin_codes_numpy(c, surface)
+        np.testing.assert_array_equal(code, ref[0])
+        np.testing.assert_array_equal(low, ref[1])
+        np.testing.assert_array_equal(span, ref[2])
+    table = rng.random((50, 7)).astype(np.float32)
+    index = rng.integers(0, 50, 1000)
+    compiled = u._gather(table, index)
+    monkeypatch.setenv("CLOUDSIEVE_PHYSICS", "numpy")
+    np.testing.assert_array_equal(compiled, u._gather(table, index))
+    np.testing.assert_array_equal(compiled, table[index].T)
 
 
 def test_linear_budget_agrees_with_a_monte_carlo_of_the_simulation():

@@ -105,10 +105,12 @@ class PixelInspector(Viewer):
                 f"| top temperature | {_f(cl['top_temperature'], '.1f')} K |"]
         for ch, e in cl["emissivity"].items():
             value = _f(e, '.3f')
-            if e is not None and np.isfinite(e) and not 0.0 <= e <= 1.0:
+            if e is not None and np.isfinite(e) and not -5e-4 <= e <= 1.0 + 5e-4:  # beyond the shown digits
                 # the raw radiance ratio; outside [0, 1] the grey single-layer model does not hold
                 # for this channel (noise, a second layer, or non-grey ice at 3.9 µm) — as exported
                 value = f"{min(max(e, 0.0), 1.0):.3f} (ratio {e:.3f}: outside the grey-cloud model)"
+            elif e is not None and np.isfinite(e):
+                value = _f(min(max(e, 0.0), 1.0), '.3f')
             out.append(f"| emissivity {channel_label(ch)} | {value} |")
         if info["class"] == "clear":
             out.append("\n<span class='cs-muted'>Clear pixel: no cloud retrieval; the curve below shows what a "
@@ -127,8 +129,8 @@ class PixelInspector(Viewer):
             return []
         chans = list(budget["channels"])
         lines = ["", "**Clear-sky error budget** (1 σ, K; background errors per surface from the configuration; "
-                 "this pixel simulated at its own state — the tests use the same budget evaluated per bin of "
-                 "background state, the σ column above)", "",
+                 "this pixel simulated at its own state — the tests use the same budget evaluated at the centre "
+                 "of the pixel's bin of background state, the last row; the two differ by a few per cent)", "",
                  "| source (σ) | " + " | ".join(channel_label(c) for c in chans) + " |",
                  "|---|" + "---|" * len(chans)]
         for key, (label, sigma, unit) in budget["components"].items():
@@ -141,9 +143,15 @@ class PixelInspector(Viewer):
         lines.append("| instrument noise | " + " | ".join(f"{budget['channels'][c]['noise']:.2f}" for c in chans)
                      + " |")
         lines.append("| **total** | " + " | ".join(f"**{budget['channels'][c]['total']:.2f}**" for c in chans) + " |")
-        if budget["split_window"] is not None:
-            lines.append(f"\n11 − 12 µm difference: σ {budget['split_window']:.2f} K (errors common to both "
-                         "channels cancel).")
+        screening = budget.get("screening", {})
+        if screening:
+            lines.append("| tests' σ (at the pixel's bin) | "
+                         + " | ".join(f"{screening[c]:.2f}" if c in screening else "–" for c in chans) + " |")
+        for key, sigma in budget.get("differences", {}).items():
+            a, b = key.split("-")
+            used = f"; the tests used {screening[key]:.2f} K" if key in screening else ""
+            lines.append(f"\n{channel_label(a)} − {channel_label(b)} difference: σ {sigma:.2f} K (errors common "
+                         f"to both channels cancel{used}).")
         return lines
 
     def curve(self, pixel=None, version=None):
