@@ -26,7 +26,7 @@ import numpy as np
 
 from . import export
 from .codes import CLASS_NAMES, CLEAR, NO_DATA
-from .invert import CloudLayer, inversion_channels, invert_pixels
+from .invert import CloudLayer, inversion_bias, inversion_channels, invert_pixels, layer_beta
 from .journal import Journal, journal_path
 from .scene import load_scene
 from .screen import (bias_decision, bias_from_sums, bias_sums, edits_grid, halo_rows, result_notes, scene_plan,
@@ -167,7 +167,7 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     sums = bias_sums(departure, path[core], mask, bits, valid[core], fields["surface"][core])
     if not final:
         return BlockOutcome(spec.start, spec.stop, sums, clear=clear[:, core])
-    cloud = CloudLayer.empty(mask.shape, plan.inv, cfg["cloud"]["top"])
+    cloud = CloudLayer.empty(mask.shape, plan.inv, cfg["cloud"]["top"], layer_beta(plan.inv, cfg))
     core_fields = {k: v[core] for k, v in fields.items()}
     todo = np.flatnonzero((valid[core] & (mask != CLEAR) & (mask != NO_DATA)).ravel())
     for a in range(0, todo.size, level_chunk(cfg)):
@@ -175,7 +175,8 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
         r = simulate_columns(gather_columns(core_fields, emis[:, core], part), chset, cfg["simulation"], levels=True)
         invert_pixels(cloud, part, {c: v[core] for c, v in obs.items()}, {c: clear[i, core] for i, c in enumerate(names)},
                       (r.level_pressure, r.level_temperature, r.opaque_radiance), fields["sat_zenith"][core],
-                      {c: v[core] for c, v in sigma.items()}, chset, cfg)
+                      {c: v[core] for c, v in sigma.items()}, chset, cfg, sol_zenith=fields["sol_zenith"][core],
+                      bias=inversion_bias(plan.bias), surface=fields["surface"][core], slant_path=path[core])
     result = export.ResultBlock(spec.start, clear[:, core], departure, {t: m[core] for t, m in scr.margins.items()},
                                 mask, bits, cloud, {c: clear_part(sigma, c)[core] for c in names})
     variables = export.block_variables(result, plan.header)

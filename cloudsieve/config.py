@@ -16,13 +16,16 @@ from .codes import SURFACES
 from .errors import ConfigError
 from .registry import REGISTRY
 
-TOP_METHODS = ("fixed", "opaque", "grey")
+TOP_METHODS = ("fixed", "opaque", "consistent")
+#: choices of ``[cloud] phase``
+PHASES = ("auto", "ice", "water", "grey")
 #: allowed range of ``[cloud] top_pressure`` [hPa] (and of the dashboard's slider)
 TOP_PRESSURE_RANGE = (10.0, 1100.0)
 
 #: Tables whose keys are open (new channel names may be added)
 _OPEN_TABLES = {("channels",), ("surface", "emissivity", "sea"), ("surface", "emissivity", "land"),
-                ("surface", "emissivity", "ice"), ("absorption",), ("instrument", "nedt"), ("background_noise",)}
+                ("surface", "emissivity", "ice"), ("absorption",), ("instrument", "nedt"), ("background_noise",),
+                ("cloud", "optics", "ice", "beta"), ("cloud", "optics", "water", "beta")}
 
 
 #: Keys of earlier versions and what replaced them (a user's old file gets this instead of "unknown key")
@@ -35,6 +38,8 @@ _REPLACED = {
                                                   "path by itself; set 'tests.split_window_excess.k_sigma'",
     ("tests", "night_fog_contrast", "threshold"): "the night fog test's threshold is now k_sigma × the σ of the "
                                                   "3.9 − 11 µm difference; set 'tests.night_fog_contrast.k_sigma'",
+    ("cloud", "pair"): "the cloud top is now fitted to every inversion channel at once ('cloud.top = \"consistent\"'"
+                       ", with 'cloud.channels'); remove 'cloud.pair'",
     ("cloud", "nedt"): "the cloud inversion takes the instrument noise from [instrument] (a constant radiance, "
                        "NEdT at a reference temperature); set 'instrument.nedt' instead",
     ("tests", "night_fog_contrast", "per_path"): "the σ of the 3.9 − 11 µm difference grows with the water-vapour "
@@ -164,19 +169,30 @@ def _check_values(cfg, problems):
     need(cfg["tests"]["night_fog_contrast"]["window"] in (1, 3, 5, 7, 9),
          "'tests.night_fog_contrast.window' must be 1 (the pixel alone), 3, 5, 7 or 9 pixels.")
     cl = cfg["cloud"]
-    need(cl["top"] in TOP_METHODS, f"'cloud.top' must be one of {', '.join(TOP_METHODS)}; got {cl['top']!r}.")
+    if cl["top"] == "grey":
+        need(False, "'cloud.top = \"grey\"' was replaced: use 'cloud.top = \"consistent\"' (every channel fits one "
+                    "cloud) with 'cloud.phase = \"grey\"' for the grey (β = 1) cloud.")
+    else:
+        need(cl["top"] in TOP_METHODS, f"'cloud.top' must be one of {', '.join(TOP_METHODS)}; got {cl['top']!r}.")
+    need(cl["phase"] in PHASES, f"'cloud.phase' must be one of {', '.join(PHASES)}; got {cl['phase']!r}.")
+    need(isinstance(cl["night_water_contrast"], (int, float)) and cl["night_water_contrast"] >= 0,
+         "'cloud.night_water_contrast' must be a number ≥ 0 K.")
     lo, hi = TOP_PRESSURE_RANGE
+    need(isinstance(cl["assumed_top_pressure"], (int, float)) and lo <= cl["assumed_top_pressure"] <= hi,
+         f"'cloud.assumed_top_pressure' must lie within {lo:g}–{hi:g} hPa.")
     need(lo <= cl["top_pressure"] <= hi, f"'cloud.top_pressure' must lie within {lo:g}–{hi:g} hPa.")
     if "top_height" in cl:
         need(isinstance(cl["top_height"], (int, float)) and 0 <= cl["top_height"] <= 20,
              "'cloud.top_height' must be a number within 0–20 km.")
     need(0.5 < cl["eps_max"] < 1, "'cloud.eps_max' must lie strictly between 0.5 and 1.")
     need(cl["ice_below"] <= cl["water_above"], "'cloud.ice_below' must not exceed 'cloud.water_above'.")
-    need(isinstance(cl["pair"], list) and len(cl["pair"]) == 2, "'cloud.pair' must list two channel names.")
     for phase in ("ice", "water"):
         o = cl["optics"][phase]
         need(0 <= o["single_scattering_albedo"] < 1, f"'cloud.optics.{phase}.single_scattering_albedo' must lie in [0, 1).")
         need(-1 < o["asymmetry"] < 1, f"'cloud.optics.{phase}.asymmetry' must lie in (-1, 1).")
+        for ch, b in o.get("beta", {}).items():
+            need(isinstance(b, (int, float)) and 0.1 <= b <= 5,
+                 f"'cloud.optics.{phase}.beta.{ch}' must be a number within 0.1–5 (τ_ch/τ_11um); got {b!r}.")
     need(cfg["bias"]["min_pixels"] >= 3, "'bias.min_pixels' must be ≥ 3.")
 
 

@@ -23,12 +23,13 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from physics.cloud import STATUS_NAMES
+from physics.cloud import STATUS_NAMES, STATUS_WORDS
 
 from . import CAUTION, __version__
 from .codes import CLASS_NAMES
 from .config import config_json
 from .errors import OutputError
+from .invert import PHASE_NAMES, layer_beta
 from .registry import REGISTRY, bit_table
 from .uncertainty import clear_part
 
@@ -196,17 +197,17 @@ def result_layout(h):
     for ch in h.cloud_channels:
         v[f"cloud_emissivity_{ch}"] = (np.float32, {
             "long_name": f"emissivity of channel {ch} at the retrieved cloud top, unclipped: "
-                         f"(L_obs - L_clear)/(L_opaque - L_clear); departures from cloud_emissivity "
-                         f"show noise or a cloud that is not grey", "units": "1"})
+                         f"(L_obs - L_clear)/(L_opaque - L_clear)", "units": "1"})
     ref = _reference_channel(h)
     v.update({
         "cloud_emissivity": (np.float32, {
-            "long_name": f"slant emissivity of the single grey cloud layer ({ref}), clipped to "
+            "long_name": f"slant emissivity of the single cloud layer ({ref}), clipped to "
                          f"[0, 1]; 1 where inversion_status is opaque (cloud_optical_depth then a lower bound)",
             "units": "1"}),
         "cloud_optical_depth": (np.float32, {
-            "long_name": "vertical infrared absorption optical depth of a single grey cloud layer "
-                         "(a lower bound where inversion_status is opaque)", "units": "1"}),
+            "long_name": f"vertical infrared absorption optical depth of a single cloud layer at {ref} "
+                         "(a lower bound where inversion_status is opaque; at the assumed top where it is "
+                         "top_assumed)", "units": "1"}),
         "cloud_optical_depth_uncertainty": (np.float32, {
             "long_name": "1-sigma uncertainty of cloud_optical_depth (inf: opaque, lower bound)", "units": "1"}),
         "cloud_extinction_optical_depth": (np.float32, {
@@ -214,10 +215,17 @@ def result_layout(h):
             "units": "1"}),
         "cloud_top_pressure": (np.float32, {"standard_name": "air_pressure_at_cloud_top", "units": "hPa",
                                             "long_name": f"cloud-top pressure ({h.method} top)"}),
+        "cloud_top_pressure_uncertainty": (np.float32, {
+            "long_name": "1-sigma uncertainty of cloud_top_pressure (inf: top assumed or unknown)", "units": "hPa"}),
         "cloud_top_temperature": (np.float32, {"long_name": "air temperature at the cloud top", "units": "K"}),
-        "inversion_status": (np.int8, {"long_name": "outcome of the grey-cloud inversion", "units": "1",
+        "inversion_status": (np.int8, {"long_name": "outcome of the single-layer cloud inversion", "units": "1",
                                        "flag_values": np.arange(len(STATUS_NAMES), dtype=np.int8),
-                                       "flag_meanings": " ".join(STATUS_NAMES)}),
+                                       "flag_meanings": " ".join(STATUS_NAMES),
+                                       "comment": "; ".join(f"{k}: {v}" for k, v in STATUS_WORDS.items())}),
+        "cloud_phase": (np.int8, {"long_name": "cloud phase whose absorption ratios the inversion used", "units": "1",
+                                  "flag_values": np.arange(len(PHASE_NAMES), dtype=np.int8),
+                                  "flag_meanings": " ".join(PHASE_NAMES),
+                                  "comment": _beta_comment(h)}),
         "cloud_optical_depth_uncertain": (np.int8, {"long_name": "relative optical-depth uncertainty above 100 %",
                                                     "units": "1", "flag_values": np.array([0, 1], np.int8),
                                                     "flag_meanings": "no yes"}),
@@ -226,6 +234,13 @@ def result_layout(h):
     for _, attrs in v.values():  # auxiliary coordinates (CF 5): grid indices, and lat/lon when given
         attrs["coordinates"] = _coordinates_attr(coords)
     return Layout(len(h.row), len(h.col), coords, v, result_attrs(h))
+
+
+def _beta_comment(h):
+    """The absorption ratios β = τ_ch/τ_ref per phase the inversion used, in words."""
+    parts = [f"{p}: " + ", ".join(f"{c} {b:.3g}" for c, b in zip(h.cloud_channels, betas))
+             for p, betas in layer_beta(tuple(h.cloud_channels), h.config).items()]
+    return "absorption optical depth over that of the reference channel (beta) by phase: " + "; ".join(parts)
 
 
 def _reference_channel(h):
@@ -267,7 +282,8 @@ def block_variables(block, h):
     out.update({"cloud_emissivity": np.clip(cl.emissivity[k_ref], 0.0, 1.0), "cloud_optical_depth": cl.optical_depth,
                 "cloud_optical_depth_uncertainty": cl.optical_depth_sigma,
                 "cloud_extinction_optical_depth": cl.extinction_optical_depth, "cloud_top_pressure": cl.top_pressure,
-                "cloud_top_temperature": cl.top_temperature, "inversion_status": cl.status,
+                "cloud_top_pressure_uncertainty": cl.top_pressure_sigma,
+                "cloud_top_temperature": cl.top_temperature, "inversion_status": cl.status, "cloud_phase": cl.phase,
                 "cloud_optical_depth_uncertain": cl.uncertain})
     return out
 
@@ -382,6 +398,8 @@ def result_table(result):
             cols[name] = np.asarray(CLASS_NAMES)[vals]
         elif name == "inversion_status":
             cols[name] = np.asarray(STATUS_NAMES)[vals]
+        elif name == "cloud_phase":
+            cols[name] = np.asarray(PHASE_NAMES)[vals]
         else:
             cols[name] = vals
     return pd.DataFrame(cols)

@@ -1,8 +1,8 @@
-"""Single-layer grey-cloud inversion of scene pixels: the per-pixel core and its gather/scatter.
+"""Single-layer cloud inversion of scene pixels: the per-pixel core and its gather/scatter.
 
-:func:`invert_columns` inverts a set of pixel columns (physics.cloud.invert_grey_cloud under the
-``[cloud]`` settings, plus the phase-dependent similarity relation for the extinction optical
-depth). :func:`invert_pixels` is the one gather/scatter around it: it takes the pixels'
+:func:`invert_columns` inverts a set of pixel columns (physics.cloud.invert_cloud under the
+``[cloud]`` settings: top choice, phase and its absorption ratios β, then the phase's
+similarity relation for the extinction optical depth). :func:`invert_pixels` is the one gather/scatter around it: it takes the pixels'
 observed and clear-sky brightness temperatures from (y, x) grids (a whole scene or a block of
 rows), inverts them and writes the results into a :class:`CloudLayer`. The dashboard's
 :func:`invert_all` and the block pipeline (:mod:`cloudsieve.batch`) both call it.
@@ -17,21 +17,31 @@ from physics.atmosphere import geopotential_height
 
 from .codes import CLOUD, MARGINAL
 from .simulate import level_chunk
-from .uncertainty import clear_part, noise_radiance
+from .uncertainty import clear_correlation, clear_part, noise_radiance
+
+
+#: Phase codes of the cloud layer (``CloudLayer.phase``)
+PHASE_NONE, PHASE_ICE, PHASE_WATER, PHASE_GREY = 0, 1, 2, 3
+PHASE_NAMES = ("none", "ice", "water", "grey")
+PHASE_WORDS = {"none": "no cloud retrieved", "ice": "ice (β of the configured ice optics)",
+               "water": "water (β of droplet optics)",
+               "grey": "grey (β = 1 in every channel: large ice crystals, or phase = grey configured)"}
 
 
 @dataclass
 class CloudLayer:
-    """Grey-cloud retrieval on a grid (NaN and status ``not_cloudy`` where not inverted).
+    """Single-layer cloud retrieval on a grid (NaN and status ``not_cloudy`` where not inverted).
 
     emissivity : (n_inv, y, x) per inversion channel, unclipped [1]
-    optical_depth, optical_depth_sigma : (y, x) absorption optical depth and its 1-σ [1]
+    optical_depth, optical_depth_sigma : (y, x) absorption optical depth (reference channel) and its 1-σ [1]
     extinction_optical_depth : (y, x) [1]
-    top_pressure [hPa], top_temperature [K] : (y, x)
+    top_pressure, top_pressure_sigma [hPa], top_temperature [K] : (y, x)
     status : (y, x) int8 (physics.cloud.STATUS_NAMES)
+    phase : (y, x) int8 (PHASE_NAMES): the optics the pixel was retrieved with
     uncertain : (y, x) bool, relative optical-depth uncertainty > 100 %
     channels : inversion channel names
     method : cloud-top choice configured
+    beta : {phase name: (β per inversion channel)} the absorption ratios used
     notes : notes for the user (fallbacks)
     """
 
@@ -40,21 +50,26 @@ class CloudLayer:
     optical_depth_sigma: np.ndarray
     extinction_optical_depth: np.ndarray
     top_pressure: np.ndarray
+    top_pressure_sigma: np.ndarray
     top_temperature: np.ndarray
     status: np.ndarray
+    phase: np.ndarray
     uncertain: np.ndarray
     channels: tuple
     method: str
+    beta: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
 
-    FIELDS = ("optical_depth", "optical_depth_sigma", "extinction_optical_depth", "top_pressure", "top_temperature")
+    FIELDS = ("optical_depth", "optical_depth_sigma", "extinction_optical_depth", "top_pressure",
+              "top_pressure_sigma", "top_temperature")
 
     @classmethod
-    def empty(cls, shape, channels, method):
+    def empty(cls, shape, channels, method, beta=None):
         """A layer of ``shape`` (y, x) with nothing inverted yet."""
         nan = lambda: np.full(shape, np.nan)  # noqa: E731
-        return cls(np.full((len(channels),) + tuple(shape), np.nan), nan(), nan(), nan(), nan(), nan(),
-                   np.full(shape, pcloud.STATUS_NOT_CLOUDY, np.int8), np.zeros(shape, bool), tuple(channels), method)
+        return cls(np.full((len(channels),) + tuple(shape), np.nan), nan(), nan(), nan(), nan(), nan(), nan(),
+                   np.full(shape, pcloud.STATUS_NOT_CLOUDY, np.int8), np.zeros(shape, np.int8),
+                   np.zeros(shape, bool), tuple(channels), method, dict(beta or {}))
 
     def put(self, flat_index, res):
         """Write a :class:`ColumnInversion` of pixels ``flat_index`` (flat (y, x) indices) into the layer."""
@@ -63,6 +78,7 @@ class CloudLayer:
         for name in self.FIELDS:
             getattr(self, name).reshape(-1)[flat_index] = getattr(res, name)
         self.status.reshape(-1)[flat_index] = res.status
+        self.phase.reshape(-1)[flat_index] = res.phase
         self.uncertain.reshape(-1)[flat_index] = res.uncertain
 
     def masked(self, mask):
@@ -72,7 +88,8 @@ class CloudLayer:
         return replace(self, emissivity=np.where(keep[None], self.emissivity, np.nan),
                        **{name: nan(getattr(self, name)) for name in self.FIELDS},
                        status=np.where(keep, self.status, pcloud.STATUS_NOT_CLOUDY).astype(np.int8),
-                       uncertain=keep & self.uncertain, notes=list(self.notes))
+                       phase=np.where(keep, self.phase, PHASE_NONE).astype(np.int8),
+                       uncertain=keep & self.uncertain, beta=dict(self.beta), notes=list(self.notes))
 
     def as_float32(self):
         """Float fields in float32 (what the exports write), except the top pressure: the
@@ -84,10 +101,11 @@ class CloudLayer:
 
 @dataclass
 class ColumnInversion:
-    """Grey-cloud inversion of n pixel columns.
+    """Single-layer cloud inversion of n pixel columns.
 
     emissivity : (n, n_inv) [1]; optical_depth, optical_depth_sigma, extinction_optical_depth [1],
-    top_pressure [hPa], top_temperature [K] : (n,); status : (n,) int8; uncertain : (n,) bool
+    top_pressure, top_pressure_sigma [hPa], top_temperature [K] : (n,); status, phase : (n,) int8;
+    uncertain : (n,) bool
     """
 
     emissivity: np.ndarray
@@ -95,8 +113,10 @@ class ColumnInversion:
     optical_depth_sigma: np.ndarray
     extinction_optical_depth: np.ndarray
     top_pressure: np.ndarray
+    top_pressure_sigma: np.ndarray
     top_temperature: np.ndarray
     status: np.ndarray
+    phase: np.ndarray
     uncertain: np.ndarray
 
 
@@ -123,20 +143,93 @@ def _fixed_top(cc, lp, lt, n):
     return np.exp(np.log(p0) + w * (np.log(p1) - np.log(p0)))
 
 
+def reference_index(inv, config):
+    """Index in ``inv`` of the channel that places the opaque top and carries β = 1."""
+    ref = config["cloud"]["reference_channel"]
+    return inv.index(ref) if ref in inv else 0
+
+
+def phase_beta(phase, inv, config):
+    """Absorption ratios β = τ_ch/τ_ref of ``phase`` ("ice", "water" or "grey") for channels ``inv``:
+    ``[cloud.optics.<phase>] beta`` relative to the reference channel (a channel without a value: 1)."""
+    n = len(inv)
+    if phase == "grey":
+        return np.ones(n)
+    table = config["cloud"]["optics"][phase].get("beta", {})
+    ref = inv[reference_index(inv, config)]
+    ref_beta = float(table.get(ref, 1.0))
+    return np.array([float(table.get(c, 1.0)) / ref_beta for c in inv])
+
+
+def layer_beta(inv, config):
+    """{phase name: β tuple} of the phases the configuration may retrieve with."""
+    phase = config["cloud"]["phase"]
+    phases = ("ice", "water", "grey") if phase == "auto" else (phase,)
+    return {p: tuple(float(b) for b in phase_beta(p, inv, config)) for p in phases}
+
+
 def inversion_notes(inv, config):
-    """Notes on the cloud-top choice a scene with inversion channels ``inv`` falls back to."""
+    """Notes on the cloud-top choice and phase a scene with inversion channels ``inv`` falls back to."""
     cc = config["cloud"]
     notes = []
     if cc["reference_channel"] not in inv:
         notes.append(f"reference channel {cc['reference_channel']} absent: {inv[0]} places the opaque top")
-    if cc["top"] == "grey" and not all(p in inv for p in cc["pair"]):
-        notes.append(f"grey-consistency top needs {cc['pair'][0]} and {cc['pair'][1]}: using the opaque top instead")
+    if cc["top"] == "consistent" and len(inv) < 2:
+        notes.append(f"one inversion channel ({inv[0]}) cannot fix a cloud top: every cloudy pixel gets the assumed "
+                     f"top of {cc['assumed_top_pressure']:g} hPa (status top_assumed)")
+    if cc["phase"] in ("ice", "water", "auto"):
+        phases = ("ice", "water") if cc["phase"] == "auto" else (cc["phase"],)
+        for p in phases:
+            missing = [c for c in inv if c != inv[reference_index(inv, config)]
+                       and c not in cc["optics"][p].get("beta", {})]
+            if missing:
+                notes.append(f"no {p} absorption ratio for {', '.join(missing)} in [cloud.optics.{p}] beta: "
+                             "taken as 1 (grey) there")
     return notes
 
 
+def _retrieve(phase, obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, corr):
+    cc = config["cloud"]
+    return pcloud.invert_cloud(
+        obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(obs.shape[0], bool), beta=phase_beta(phase, inv, config),
+        method=cc["top"], fixed_pressure=fixed, reference=reference_index(inv, config), top_limit=top_limit,
+        assumed_pressure=cc["assumed_top_pressure"], eps_max=cc["eps_max"],
+        max_sigma_pressure=cc["max_sigma_pressure"], clear_correlation=corr)
+
+
+def _where(cond, a, b):
+    """Field-wise choice between two CloudRetrievals of the same pixels."""
+    return type(a)(*(np.where(cond.reshape(cond.shape + (1,) * (x.ndim - 1)), x, y) for x, y in zip(a, b)))
+
+
+def choose_phase(ice, water, night_contrast, config):
+    """Per pixel, True where the ice retrieval is taken over the water one (``[cloud] phase = "auto"``).
+
+    Rules, in order: a top colder than ``ice_below`` in the ice retrieval → ice; a top warmer than
+    ``water_above`` in the water retrieval → water (both or neither: go on); at night, a 3.9 µm
+    departure below the 11 µm one by more than ``night_water_contrast`` → water (droplets absorb
+    less at 3.9 µm than at 11 µm, so a water cloud looks colder there at night: common practice
+    of night fog and low-cloud detection); else the phase whose channels fit better (lower χ²);
+    else the ice retrieval's top temperature below the middle of the two limits → ice.
+    """
+    cc = config["cloud"]
+    cold = ice.top_temperature <= cc["ice_below"]
+    warm = water.top_temperature >= cc["water_above"]
+    undecided = cold == warm
+    nc = np.asarray(night_contrast, dtype=float)
+    night_water = np.isfinite(nc) & (nc < -cc["night_water_contrast"])
+    chi_i = np.where(np.isfinite(ice.chi2), ice.chi2, np.inf)
+    chi_w = np.where(np.isfinite(water.chi2), water.chi2, np.inf)
+    by_fit = chi_i != chi_w
+    middle = 0.5 * (cc["ice_below"] + cc["water_above"])
+    pick = np.where(by_fit, chi_i < chi_w, ice.top_temperature < middle)
+    pick = np.where(night_water, False, pick)
+    return np.where(undecided, pick, cold)
+
+
 def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sat_zenith, sigma_clear, chans, inv,
-                   config):
-    """Grey-cloud inversion of a set of pixel columns.
+                   config, night_contrast=None, clear_correlation=None):
+    """Single-layer cloud inversion of a set of pixel columns.
 
     Parameters
     ----------
@@ -147,15 +240,19 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     sigma_clear : (n,) or (n, n_inv) clear-sky 1-σ [K] without the instrument noise (one for every
         channel, or per channel; uncertainty.clear_part)
     chans : physics Channels of the inversion channels; inv : their names
-    config : dict (fallbacks of the top choice: :func:`inversion_notes`)
+    config : dict (``[cloud]``; fallbacks: :func:`inversion_notes`)
+    night_contrast : (n,), optional
+        (obs − clear) at 3.9 µm minus that at 11 µm [K] where it is night, NaN elsewhere (the
+        phase choice, :func:`choose_phase`).
+    clear_correlation : (n, n_inv, n_inv), optional
+        Correlation of the clear-sky errors between the channels (uncertainty.clear_correlation);
+        None: independent.
 
     Returns
     -------
     ColumnInversion
     """
     cc = config["cloud"]
-    method = cc["top"]
-    n_inv = len(inv)
     n_blk = obs_bt.shape[0]
     obs = np.stack([ch.radiance(obs_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     clr = np.stack([ch.radiance(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
@@ -171,35 +268,64 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     # the tropopause (first temperature minimum going up) bounds the cloud top
     k_trop = np.argmin(lt, axis=-1)
     top_limit = np.take_along_axis(lp, k_trop[:, None], axis=-1)[:, 0]
-    ref = inv.index(cc["reference_channel"]) if cc["reference_channel"] in inv else 0
-    pair = tuple(cc["pair"])
-    use_method = method
-    if method == "grey":
-        if all(p in inv for p in pair):
-            pair_idx = (inv.index(pair[0]), inv.index(pair[1]))
-        else:
-            pair_idx = (0, 0)
-            use_method = "opaque"
+    fixed = _fixed_top(cc, lp, lt, n_blk) if cc["top"] == "fixed" else None
+    args = (obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, clear_correlation)
+    if cc["phase"] == "auto":
+        # ice of the configured optics, or large crystals (β → 1, geometric-optics limit): the better fit
+        ice, grey = _retrieve("ice", *args), _retrieve("grey", *args)
+        chi_i = np.where(np.isfinite(ice.chi2), ice.chi2, np.inf)
+        chi_g = np.where(np.isfinite(grey.chi2), grey.chi2, np.inf)
+        large = chi_g < chi_i
+        ice = _where(large, grey, ice)
+        water = _retrieve("water", *args)
+        nc = np.full(n_blk, np.nan) if night_contrast is None else night_contrast
+        take_ice = choose_phase(ice, water, nc, config)
+        res = _where(take_ice, ice, water)
+        phase = np.where(take_ice, np.where(large, PHASE_GREY, PHASE_ICE), PHASE_WATER).astype(np.int8)
     else:
-        pair_idx = (0, min(1, n_inv - 1))
-    fixed = _fixed_top(cc, lp, lt, n_blk) if method == "fixed" else None
-    res = pcloud.invert_grey_cloud(
-        obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(n_blk, bool), method=use_method,
-        fixed_pressure=fixed, reference=ref, pair=pair_idx, top_limit=top_limit, eps_max=cc["eps_max"],
-        max_sigma_pressure=cc["max_sigma_pressure"],
-    )
-    # phase from the top temperature -> similarity-relation extinction
-    ice, water = cc["optics"]["ice"], cc["optics"]["water"]
+        res = _retrieve(cc["phase"], *args)
+        phase = np.full(n_blk, PHASE_NAMES.index(cc["phase"]), np.int8)
+    phase = np.where(np.isfinite(res.optical_depth) | (res.status == pcloud.STATUS_BEYOND_OPAQUE), phase,
+                     PHASE_NONE).astype(np.int8)
+    # similarity-relation extinction with the phase's optics (grey: interpolated by top temperature)
+    ice_o, water_o = cc["optics"]["ice"], cc["optics"]["water"]
     frac_ice = np.clip((cc["water_above"] - res.top_temperature) / max(cc["water_above"] - cc["ice_below"], 1e-6),
                        0.0, 1.0)
-    ssa = frac_ice * ice["single_scattering_albedo"] + (1 - frac_ice) * water["single_scattering_albedo"]
-    g = frac_ice * ice["asymmetry"] + (1 - frac_ice) * water["asymmetry"]
+    frac_ice = np.where(phase == PHASE_ICE, 1.0, np.where(phase == PHASE_WATER, 0.0, frac_ice))
+    ssa = frac_ice * ice_o["single_scattering_albedo"] + (1 - frac_ice) * water_o["single_scattering_albedo"]
+    g = frac_ice * ice_o["asymmetry"] + (1 - frac_ice) * water_o["asymmetry"]
     return ColumnInversion(res.emissivity, res.optical_depth, res.optical_depth_sigma,
                            pcloud.extinction_optical_depth(res.optical_depth, ssa, g), res.top_pressure,
-                           res.top_temperature, res.status, res.uncertain)
+                           res.top_pressure_sigma, res.top_temperature, res.status, phase, res.uncertain)
 
 
-def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear, chset, config):
+def night_contrast_of(obs, clear, sol_zenith, config):
+    """(obs − clear) at 3.9 µm minus that at 11 µm [K] where it is night (NaN elsewhere, or
+    without both channels); (y, x) arrays from channel → (y, x) mappings."""
+    if "3p9um" not in obs or "11um" not in obs or sol_zenith is None:
+        return None
+    sz = np.asarray(sol_zenith, dtype=float)
+    night = np.isfinite(sz) & (sz > config["screening"]["night_sun_zenith"])
+    d = (np.asarray(obs["3p9um"], float) - np.asarray(clear["3p9um"], float)
+         - np.asarray(obs["11um"], float) + np.asarray(clear["11um"], float))
+    return np.where(night, d, np.nan)
+
+
+def inversion_bias(bias):
+    """The clear-sky bias lines the inversion adds back to the simulation ({channel: fit} with the
+    fit's numbers rounded: a to 0.1 K, b to 0.002 K per kg m⁻² (0.1 K at a path of 50 kg m⁻²), so
+    that a retune that moves the fit by less does not re-run the inversion); None without one."""
+    if not bias:
+        return None
+
+    def rnd(line):
+        return {"a": round(float(line["a"]), 1), "b": round(float(line["b"]) / 0.002) * 0.002}
+
+    return {c: dict(rnd(f), surfaces={k: rnd(v) for k, v in f.get("surfaces", {}).items()}) for c, f in bias.items()}
+
+
+def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear, chset, config, sol_zenith=None,
+                  bias=None, surface=None, slant_path=None):
     """Invert pixels ``flat_index`` of a grid (or block) and write them into ``layer``.
 
     Parameters
@@ -216,22 +342,41 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
         σ and NEΔT, the noise taken out), or one (y, x) clear-sky σ without noise for all channels
     chset : simulate.ChannelSet of the scene
     config : dict
+    sol_zenith : (y, x) [deg], optional: night pixels' 3.9 µm behaviour helps choose the phase
+    bias : {channel: fit}, optional
+        The clear-sky bias removed from the departures (:func:`inversion_bias`): the inversion's
+        clear sky is the simulation plus it, i.e. what the bias-corrected departures measure from;
+        needs ``surface`` (codes) and ``slant_path`` [kg m⁻²] (y, x) grids.
     """
     inv = layer.channels
     ci = [chset.names.index(c) for c in inv]
     take = lambda a: np.asarray(a).ravel()[flat_index]  # noqa: E731
-    obs_bt = np.stack([take(obs[c]) for c in inv], axis=-1)
-    clr_bt = np.stack([take(clear[c]) for c in inv], axis=-1).astype(float)
+    wanted = set(inv) | {"3p9um", "11um"}
+    obs = {c: take(v) for c, v in obs.items() if c in wanted}
+    clear = {c: take(v).astype(float) for c, v in clear.items() if c in wanted}
+    if bias:
+        from .screen import bias_field
+
+        surf, path = take(surface), take(slant_path)
+        clear = {c: v + bias_field(bias[c], surf, path) if c in bias else v for c, v in clear.items()}
+    obs_bt = np.stack([obs[c] for c in inv], axis=-1)
+    clr_bt = np.stack([clear[c] for c in inv], axis=-1)
     lp, lt, opq = levels
     sig = (np.stack([take(clear_part(sigma_clear, c)) for c in inv], axis=-1) if isinstance(sigma_clear, dict)
            else take(sigma_clear))
+    nc = None
+    if config["cloud"]["phase"] == "auto" and sol_zenith is not None and "3p9um" in obs and "11um" in obs:
+        nc = night_contrast_of(obs, clear, take(sol_zenith), config)
+    corr = None
+    if isinstance(sigma_clear, dict) and config["cloud"]["top"] == "consistent":
+        corr = clear_correlation(sigma_clear, inv, take)
     res = invert_columns(obs_bt, clr_bt, lp, lt, opq[:, :, ci], take(sat_zenith), sig,
-                         [chset.channels[i] for i in ci], inv, config)
+                         [chset.channels[i] for i in ci], inv, config, night_contrast=nc, clear_correlation=corr)
     layer.put(flat_index, res)
 
 
-def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None):
-    """The grey-cloud inversion of every valid pixel of an in-memory scene (the dashboard's stage 2).
+def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None, bias=None):
+    """The single-layer cloud inversion of every valid pixel of an in-memory scene (the dashboard's stage 2).
 
     Parameters
     ----------
@@ -243,6 +388,8 @@ def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None
     only : (y, x) bool array, optional
         Invert just these pixels; the others get status not_cloudy and NaN.
     column_simulator : simulate.ColumnSimulator, optional
+    bias : {channel: fit}, optional
+        The removed clear-sky bias (:func:`inversion_bias`), added back to the clear sky.
 
     Returns
     -------
@@ -250,7 +397,8 @@ def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None
     """
     ds = scene.data
     shape = (ds.sizes["y"], ds.sizes["x"])
-    layer = CloudLayer.empty(shape, inversion_channels(sim.channels, config), config["cloud"]["top"])
+    inv = inversion_channels(sim.channels, config)
+    layer = CloudLayer.empty(shape, inv, config["cloud"]["top"], layer_beta(inv, config))
     layer.notes = inversion_notes(layer.channels, config)
     idx = sim.valid_index
     chosen = None if only is None else np.flatnonzero(np.asarray(only, bool).ravel()[idx])
@@ -263,6 +411,8 @@ def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None
     obs = {c: ds[f"bt_{c}"].values for c in sim.channels}
     clear = {c: sim.bt_clear[i] for i, c in enumerate(sim.channels)}
     zen = ds["sat_zenith"].values
+    sun = ds["sol_zenith"].values if "sol_zenith" in ds else None
+    surface = ds["surface"].values
 
     def run(blk):
         flat = idx[blk]
@@ -270,7 +420,8 @@ def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None
             levels = (sim.level_pressure[blk], sim.level_temperature[blk], sim.opaque_radiance[blk])
         else:
             levels = column_simulator.levels(flat)
-        invert_pixels(layer, flat, obs, clear, levels, zen, sigma_clear, sim.chset, config)
+        invert_pixels(layer, flat, obs, clear, levels, zen, sigma_clear, sim.chset, config, sol_zenith=sun, bias=bias,
+                      surface=surface, slant_path=sim.slant_path)
 
     # blocks write disjoint pixels of the layer, so they run on the configured threads
     with ThreadPoolExecutor(max(1, int(config["simulation"].get("threads", 1)))) as pool:

@@ -13,6 +13,7 @@ choice re-runs the inversion (per pixel, no new simulation). The dashboard's par
 (:mod:`dashboard.model`) wraps one Session per browser session.
 """
 import copy
+import json
 import tempfile
 import time
 from pathlib import Path
@@ -24,7 +25,7 @@ from physics import cloud as pcloud
 from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, SURFACES, per_surface
 from .config import TOP_METHODS, TOP_PRESSURE_RANGE, load_config
 from .export import result_dataset, write_result
-from .invert import invert_all
+from .invert import PHASE_NAMES, PHASE_WORDS, invert_all, inversion_bias, phase_beta
 from .journal import Journal, StaleEditsError, journal_path
 from .registry import REGISTRY, bit_table
 from .scene import load_scene
@@ -104,7 +105,7 @@ class Session:
 
         Parameters
         ----------
-        cloud_top : {"fixed", "opaque", "grey"}, optional
+        cloud_top : {"fixed", "opaque", "consistent"}, optional
         top_pressure : float, optional
             Fixed cloud-top pressure [hPa]; replaces a configured ``[cloud] top_height`` (the
             analyst chose a pressure).
@@ -153,16 +154,18 @@ class Session:
         self.update()
 
     # ------------------------------------------------------------------ computing
-    def _cloud_layer(self, cfg, mask):
+    def _cloud_layer(self, cfg, mask, bias=None):
         only = None
         if self.invert_scope == "flagged":
             only = (mask == CLOUD) | (mask == MARGINAL)
         cc = cfg["cloud"]
-        key = (cc["top"], (cc["top_pressure"], cc.get("top_height")) if cc["top"] == "fixed" else None,
+        inv_bias = inversion_bias(bias)
+        key = (json.dumps(cc, sort_keys=True, default=str), json.dumps(inv_bias, sort_keys=True),
                None if only is None else hash(np.packbits(only).tobytes()))
         if key != self._cloud_key:
             t0 = time.perf_counter()
-            self._cloud = invert_all(self.scene, self.sim, cfg, self.sim.sigma, only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None)
+            self._cloud = invert_all(self.scene, self.sim, cfg, self.sim.sigma, only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None,
+                                     bias=inv_bias)
             if self.lean:
                 self._cloud = self._cloud.as_float32()
             self._cloud_key = key
@@ -180,7 +183,8 @@ class Session:
         edits = self.edits()
         self._shown_latest_edit = edits[-1]["id"] if edits else None
         res = screen_scene(self.scene, self.sim, cfg, edits=edits, cache=self._screen_cache)
-        res.cloud = self._cloud_layer(cfg, res.mask).masked(res.mask)
+        applied = all(b.get("applied") for b in res.bias.values()) if res.bias else False
+        res.cloud = self._cloud_layer(cfg, res.mask, res.bias if applied else None).masked(res.mask)
         if self.lean:  # exports write float32 anyway; the departures and σ stay shared with the cache
             res.margins = {t: m.astype(np.float32) for t, m in res.margins.items()}
             # the dashboard shows each threshold as its median over valid pixels: keep just that
@@ -284,7 +288,12 @@ class Session:
                             "bias_removed": _num(obs - clear - dep), "sigma": _num(self.sim.sigma[ch][row, col])}
         margins = {t: _num(m[row, col]) for t, m in res.margins.items()}
         cl = res.cloud
-        cloud = {"status": pcloud.STATUS_NAMES[int(cl.status[row, col])],
+        status = pcloud.STATUS_NAMES[int(cl.status[row, col])]
+        phase = PHASE_NAMES[int(cl.phase[row, col])]
+        cloud = {"status": status, "status_words": pcloud.STATUS_WORDS[status],
+                 "phase": phase, "phase_words": PHASE_WORDS[phase],
+                 "beta": dict(zip(cl.channels, cl.beta[phase])) if phase in cl.beta else None,
+                 "top_pressure_sigma": _num(cl.top_pressure_sigma[row, col]),
                  "optical_depth": _num(cl.optical_depth[row, col]),
                  "optical_depth_sigma": _num(cl.optical_depth_sigma[row, col]),
                  "extinction_optical_depth": _num(cl.extinction_optical_depth[row, col]),
@@ -346,9 +355,10 @@ class Session:
     def optical_depth_curve(self, row, col, taus=None):
         """Modelled brightness temperature against cloud optical depth at the pixel's top.
 
-        Uses the grey-cloud forward model (physics.cloud.grey_cloud_radiance) with the
-        clear-sky and opaque-level radiances of the simulation, at the retrieved top
-        pressure, or at the reference (``top_pressure``) one for a clear pixel. Returns dict
+        Uses the single-layer forward model (physics.cloud.cloud_radiance) with the clear-sky
+        and opaque-level radiances of the simulation and the absorption ratios β of the
+        pixel's retrieved phase (grey where none), at the retrieved top pressure, or at the
+        reference (``top_pressure``) one for a clear pixel. τ is the reference channel's. Returns dict
         with "tau", per channel modelled BT [K], and the observed BT per channel.
         """
         ny, nx = self.result.mask.shape
@@ -373,10 +383,13 @@ class Session:
         opq = pcloud.interpolate_levels(lp, opq_levels, p_top)
         clr = self.sim.clear_radiance[pos].astype(float)
         mu = np.cos(np.deg2rad(float(self.scene.data["sat_zenith"].values[row, col])))
-        out = {"tau": taus.tolist(), "top_pressure": float(p_top), "model": {}, "observed": {}}
+        cl = self._cloud if self._cloud is not None else self.result.cloud
+        phase = PHASE_NAMES[int(cl.phase[row, col])] if cl is not None else "none"
+        beta = phase_beta(phase if phase in ("ice", "water") else "grey", tuple(self.sim.channels), self.config)
+        out = {"tau": taus.tolist(), "top_pressure": float(p_top), "phase": phase, "model": {}, "observed": {}}
         for i, ch in enumerate(self.sim.channels):
             chan = self.sim.channel_objects[i]
-            rad = pcloud.grey_cloud_radiance(clr[i:i + 1], opq[i:i + 1], taus, mu)[..., 0]
+            rad = pcloud.cloud_radiance(clr[i:i + 1], opq[i:i + 1], taus, mu, beta[i:i + 1])[..., 0]
             out["model"][ch] = chan.brightness_temperature(rad).tolist()
             out["observed"][ch] = _num(self.scene.data[f"bt_{ch}"].values[row, col])
         return out

@@ -209,8 +209,9 @@ def _contrast_sigma(jacobian, surface, config):
 BIN_WIDTHS = {"log_tcwv": 0.04, "t_air": 1.0, "skin_minus_air": 1.0, "sec_zenith": 0.02, "p_surf": 10.0,
               "emissivity": 0.005}
 
-#: Channel pairs whose difference a test uses: its σ has its own budget (correlated errors)
-DIFFERENCES = (("11um", "12um"), ("3p9um", "11um"))
+#: Channel pairs whose difference a test or the cloud inversion uses: its σ has its own budget
+#: (correlated errors; the cloud top's χ² reads the channels' correlation from it)
+DIFFERENCES = (("11um", "12um"), ("3p9um", "11um"), ("8p6um", "11um"), ("8p6um", "12um"))
 
 
 @dataclass
@@ -502,6 +503,40 @@ def clear_part(sigma, channel):
     cloud inversion adds to its own observation noise)."""
     total, noise = sigma[channel], sigma[f"noise:{channel}"]
     return np.sqrt(np.maximum(total * total - noise * noise, 0.0)).astype(np.float32)
+
+
+def clear_correlation(sigma, channels, take=lambda a: a):
+    """Correlation of the clear-sky errors between ``channels`` per pixel, (..., n, n) [1], from the
+    σ grids of :func:`sigma_grids`: for a pair with a difference budget (``DIFFERENCES``),
+    ρ = (σ_a² + σ_b² − σ_a−b²) / (2 σ_a σ_b) on the clear-sky parts (noise taken out); other pairs
+    0 (independent). ``take`` selects the pixels of each grid (e.g. a flat index)."""
+    n = len(channels)
+    clr = [np.asarray(take(clear_part(sigma, c)), dtype=float) for c in channels]
+    shape = clr[0].shape
+    out = np.zeros(shape + (n, n))
+    for i in range(n):
+        out[..., i, i] = 1.0
+    for i, a in enumerate(channels):
+        for j, b in enumerate(channels):
+            key = f"{a}-{b}"
+            if j <= i and f"{b}-{a}" in sigma:
+                continue
+            if key not in sigma:
+                continue
+            noise2 = (np.asarray(take(sigma[f"noise:{a}"]), float) ** 2 if f"noise:{a}" in sigma else 0.0) + (
+                np.asarray(take(sigma[f"noise:{b}"]), float) ** 2 if f"noise:{b}" in sigma else 0.0)
+            d2 = np.maximum(np.asarray(take(sigma[key]), float) ** 2 - noise2, 0.0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                rho = (clr[i] ** 2 + clr[j] ** 2 - d2) / (2.0 * clr[i] * clr[j])
+            rho = np.clip(np.where(np.isfinite(rho), rho, 0.0), -1.0, 1.0)
+            out[..., i, j] = out[..., j, i] = rho
+    # float32 σ's and pairs without a budget can leave the matrix slightly indefinite: keep its
+    # eigenvalues at or above 1 % of the largest (a correlation of at most about 0.99)
+    w, v = np.linalg.eigh(out)
+    w = np.maximum(w, 0.01 * w[..., -1:])
+    out = np.einsum("...ik,...k,...jk->...ij", v, w, v)
+    d = np.sqrt(np.einsum("...ii->...i", out))
+    return out / d[..., :, None] / d[..., None, :]
 
 
 def noise_radiance(channel, config):

@@ -1,37 +1,39 @@
-r"""Single-layer grey cloud: forward model and inversion of emissivity and optical depth.
+r"""Single cloud layer: forward model and inversion of top, emissivity and optical depth.
 
-A thin cloud at pressure p_c that absorbs and emits like a grey body (the same absorption
-optical depth in every window channel) and does not reflect changes the top-of-atmosphere
-radiance of each channel to
+A cloud at pressure p_c that absorbs and emits and does not reflect changes the
+top-of-atmosphere radiance of channel c to
 
-.. math:: L = (1 - \varepsilon) L_{clr} + \varepsilon L_{opq}(p_c),
-          \qquad \varepsilon = 1 - e^{-\tau/\mu}
+.. math:: L_c = (1 - \varepsilon_c) L_{clr,c} + \varepsilon_c L_{opq,c}(p_c),
+          \qquad \varepsilon_c = 1 - e^{-\beta_c \tau/\mu}
 
-where L_clr is the clear-sky radiance and L_opq(p_c) the radiance an opaque black surface at
-p_c (at the air temperature there) gives at the top, seen through the atmosphere above it
-(physics.transfer returns it for every level). This is the standard effective-emissivity
-cloud model of infrared sounding (e.g. Smith & Platt 1978, J. Appl. Meteor. 17, 1796;
-Menzel, Smith & Stewart 1983, J. Clim. Appl. Meteor. 22, 377), with ε the slant emissivity.
+where L_clr is the clear-sky radiance, L_opq(p_c) the radiance an opaque black surface at p_c
+(at the air temperature there) gives at the top, seen through the atmosphere above it
+(physics.transfer returns it for every level), τ the vertical absorption optical depth in the
+reference channel (11 µm) and β_c = τ_c/τ the ratio of the cloud's absorption optical depths.
+This is the effective-emissivity cloud model of infrared sounding (e.g. Smith & Platt 1978,
+J. Appl. Meteor. 17, 1796; Menzel, Smith & Stewart 1983, J. Clim. Appl. Meteor. 22, 377), with
+ε the slant emissivity. A grey cloud is β = 1 in every channel; ice and water clouds have
+ratios set by their particles' absorption (Parol et al. 1991, J. Appl. Meteor. 30, 973;
+Inoue 1985, J. Meteor. Soc. Japan 63, 88 for the split window; values in the configuration).
 
-Inversion per channel: ε = (L_obs − L_clr)/(L_opq − L_clr), then the vertical absorption
-optical depth τ = −μ ln(1 − ε).
+Inversion per channel: ε_c = (L_obs − L_clr)/(L_opq − L_clr), then τ = −μ ln(1 − ε_c)/β_c.
 
 Cloud-top choices
 -----------------
-fixed   a pressure given by the user;
-opaque  the level where L_opq equals the observation in a reference channel: the cloud-top
-        pressure of a thick (ε = 1) cloud. The reference channel is black there by
-        construction, so such pixels get status ``opaque`` and τ only as a lower bound;
-grey    the level where two window channels give the same emissivity, i.e. where the ratio
-        of their cloud signals equals the ratio of (L_opq − L_clr): the radiance-ratio idea
-        of Smith & Platt (1978) and Menzel et al. (1983), applied to a grey cloud. Where that
-        two-channel problem is ill-conditioned (no crossing, or a top-pressure uncertainty
-        beyond a limit), the opaque level is used instead (status ``opaque``).
+fixed       a pressure given by the user;
+opaque      the level where L_opq equals the observation in the reference channel: the top of a
+            thick (ε = 1) cloud. The reference channel is black there by construction, so such
+            pixels get status ``opaque`` and τ only as a lower bound;
+consistent  the level where every channel's signal fits one cloud with the ratios β
+            (:func:`consistent_top`, a χ² search over the levels where the problem is not
+            degenerate, between the tropopause and the opaque top). Where the channels cannot
+            fix the top (a single channel, or a top uncertainty beyond a limit) the pixel gets
+            a stated assumed top and status ``top_assumed``.
 
 Beyond absorption: scattering reduces the infrared extinction that absorption sees. The
 similarity relation τ_abs ≈ (1 − ω₀ g) τ_ext (van de Hulst 1974, J. Atmos. Sci. 31, 2077;
-used for infrared cloud emissivity e.g. by Parol et al. 1991, J. Appl. Meteor. 30, 973)
-gives the extinction optical depth from the retrieved absorption optical depth.
+used for infrared cloud emissivity e.g. by Parol et al. 1991) gives the extinction optical
+depth from the retrieved absorption optical depth.
 
 Array layout: channel axis last, level axis before it: (..., n_levels, n_ch); pressures
 (..., n_levels) surface first.
@@ -47,7 +49,19 @@ STATUS_BEYOND_OPAQUE = 2  # ε > 1 beyond noise: the cloud must be higher/colder
 STATUS_WARMER_THAN_CLEAR = 3  # observation warmer than clear sky: no cloud signal to invert
 STATUS_ILL_CONDITIONED = 4  # L_opq ≈ L_clr at the assumed top: emissivity undetermined
 STATUS_NOT_CLOUDY = 5  # pixel not screened as cloud-affected; no inversion attempted
-STATUS_NAMES = ("inverted", "opaque", "beyond_opaque", "warmer_than_clear", "ill_conditioned", "not_cloudy")
+STATUS_TOP_ASSUMED = 6  # the channels could not fix the top: τ at the stated assumed top
+STATUS_NAMES = ("inverted", "opaque", "beyond_opaque", "warmer_than_clear", "ill_conditioned", "not_cloudy",
+                "top_assumed")
+#: What each status means, in words (dashboard, CSV key, NetCDF comment)
+STATUS_WORDS = {
+    "inverted": "semi-transparent cloud: top and optical depth retrieved",
+    "opaque": "opaque cloud: top retrieved, optical depth only a lower bound",
+    "beyond_opaque": "colder than an opaque cloud at the highest allowed top: no optical depth",
+    "warmer_than_clear": "warmer than the clear sky: no cloud signal to invert",
+    "ill_conditioned": "opaque-cloud and clear radiances too close: nothing to invert",
+    "not_cloudy": "not screened as cloud; no inversion",
+    "top_assumed": "the channels could not fix the top: optical depth at the assumed top",
+}
 
 
 def slant_emissivity(optical_depth, mu):
@@ -77,8 +91,8 @@ def optical_depth_from_emissivity(emissivity, mu):
         return -np.asarray(mu) * np.log1p(-np.asarray(emissivity))
 
 
-def grey_cloud_radiance(clear_radiance, opaque_radiance, optical_depth, mu):
-    """Top-of-atmosphere radiance with a single grey cloud.
+def cloud_radiance(clear_radiance, opaque_radiance, optical_depth, mu, beta=None):
+    """Top-of-atmosphere radiance with a single cloud layer.
 
     Parameters
     ----------
@@ -87,16 +101,19 @@ def grey_cloud_radiance(clear_radiance, opaque_radiance, optical_depth, mu):
     opaque_radiance : array_like (..., n_ch)
         Radiance of an opaque black cloud at the cloud top. [same unit]
     optical_depth : array_like (...)
-        Vertical absorption optical depth of the cloud. [1]
+        Vertical absorption optical depth of the cloud in the reference channel. [1]
     mu : array_like (...)
         Cosine of the viewing zenith angle. [1]
+    beta : array_like (..., n_ch) or (n_ch,), optional
+        Absorption optical depth per channel over the reference channel's; None: grey. [1]
 
     Returns
     -------
     ndarray (..., n_ch)
-        (1 − ε) L_clr + ε L_opq with ε = 1 − exp(−τ/μ). [same unit]
+        (1 − ε) L_clr + ε L_opq with ε = 1 − exp(−β τ/μ). [same unit]
     """
-    eps = slant_emissivity(np.asarray(optical_depth)[..., None], np.asarray(mu)[..., None])
+    tau = np.asarray(optical_depth)[..., None] * (1.0 if beta is None else np.asarray(beta))
+    eps = slant_emissivity(tau, np.asarray(mu)[..., None])
     return (1.0 - eps) * np.asarray(clear_radiance) + eps * np.asarray(opaque_radiance)
 
 
@@ -187,85 +204,174 @@ def opaque_top_pressure(observed, opaque_levels, level_pressure, top_limit=None)
     return np.where(found, p_cross, fallback), found
 
 
-def grey_top_pressure(observed, clear, opaque_levels, level_pressure, sigma_observed, top_limit=None,
-                      max_sigma_pressure=100.0):
-    r"""Cloud-top pressure where two channels give the same emissivity (grey consistency).
+def _take(a, i):
+    """a[..., i] along the last axis with a per-pixel index i (...)."""
+    return np.take_along_axis(a, i[..., None], axis=-1)[..., 0]
+
+
+def consistent_top(signal, clear_to_opaque, level_pressure, sigma_observed, clear_covariance, beta, allowed,
+                   reference=0, noise_sigmas=2.0):
+    r"""Cloud-top pressure at which every channel's cloud signal fits one cloud layer (χ² search).
 
     Parameters
     ----------
-    observed, clear : array_like (..., 2)
-        Observed and clear-sky radiances in the two channels. [radiance]
-    opaque_levels : array_like (..., n_levels, 2)
-        L_opq on the levels in both channels. [radiance]
+    signal : array_like (..., n_ch)
+        Cloud signal S = L_obs − L_clr per channel. [mW m⁻² sr⁻¹ (cm⁻¹)⁻¹]
+    clear_to_opaque : array_like (..., n_levels, n_ch)
+        D(p) = L_opq(p) − L_clr on the levels. [same unit]
     level_pressure : array_like (..., n_levels)
         [hPa], surface first.
-    sigma_observed : array_like (..., 2)
-        1-σ radiance uncertainty of the cloud signal L_obs − L_clr per channel. [radiance]
-    top_limit : array_like (...), optional
-        Lowest pressure allowed. [hPa]
-    max_sigma_pressure : float
-        Largest acceptable 1-σ uncertainty of the retrieved pressure. [hPa]
+    sigma_observed : array_like (..., n_ch)
+        1-σ of the observation (instrument noise, independent between channels). [same unit]
+    clear_covariance : array_like (..., n_ch, n_ch)
+        Covariance of the clear-sky radiance errors between channels. [same unit squared]
+    beta : array_like (..., n_ch) or (n_ch,)
+        Absorption optical depth of the cloud in each channel over that in the reference
+        channel, β = τ_ch / τ_ref (1 in the reference channel; 1 everywhere for a grey cloud). [1]
+    allowed : array_like of bool (..., n_levels)
+        Levels where a top may lie (at or below the tropopause, above the surface level).
+    reference : int
+        Index of the reference channel (11 µm in practice).
+    noise_sigmas : float
+        How many σ count as "within the uncertainty" in the rejections below. [1]
 
     Returns
     -------
     pressure : ndarray (...)
-        [hPa] (NaN where not ``ok``)
-    ok : ndarray of bool (...)
-        False where the problem is ill-conditioned (no sign change of the emissivity
-        difference, or a pressure uncertainty beyond ``max_sigma_pressure``).
+        Best top [hPa] (NaN where no level is usable).
     sigma_pressure : ndarray (...)
-        Propagated 1-σ pressure uncertainty. [hPa]
+        Half the pressure span over which χ² stays within max(1, χ²_min) of its minimum,
+        at least half a model layer [hPa] (inf where no level is usable). Two minima of similar
+        depth give a wide span: the channels cannot tell the two tops apart.
+    chi2_min : ndarray (...)
+        χ² at the best level (inf where none is usable).
+    usable : ndarray of bool (..., n_levels)
+        Levels left after the rejections.
 
     Notes
     -----
-    With ε_i(p) = (L_obs,i − L_clr,i)/(L_opq,i(p) − L_clr,i), the grey assumption requires
-    ε_1(p_c) = ε_2(p_c) (Smith & Platt 1978; Menzel et al. 1983 use the same ratio with
-    CO₂-band channels). The difference g(p) = ε_1 − ε_2 is evaluated on all levels, the
-    lowest sign change is interpolated in ln p, and its uncertainty follows from the
-    emissivity uncertainties divided by |dg/d ln p|.
+    At each level the reference channel fixes the slant emissivity ε_ref = S_ref / D_ref, hence
+    e^(−τ/μ) = 1 − ε_ref; a cloud with absorption ratios β then has ε_c = 1 − (1 − ε_ref)^β_c in
+    channel c and gives the signal ε_c D_c. The residuals of the other channels,
+    r_c = S_c − ε_c D_c, are weighed by their covariance, χ²(p) = rᵀ C_r⁻¹ r, smallest at the top:
+    the radiance-ratio idea of Smith & Platt (1978, J. Appl. Meteor. 17, 1796) and Menzel et al.
+    (1983, J. Clim. Appl. Meteor. 22, 377), written as a least-squares fit with non-grey ratios
+    (as in the split-window analysis of Parol et al. 1991, J. Appl. Meteor. 30, 973).
+
+    C_r = J C_clr Jᵀ + N diag(σ_obs²) Nᵀ, first order: a clear-sky error δ_c moves r_c by
+    −(1 − ε_c) δ_c, and δ_ref moves it by s_c D_c (1 − ε_ref)/D_ref through ε_ref; an observation
+    error moves r_c by itself and by −s_c D_c / D_ref. s_c = ∂ε_c/∂ε_ref is taken as the secant
+    over ε_ref ± σ(ε_ref) (the derivative diverges at ε_ref → 1 when β < 1). The clear-sky errors
+    of window channels are strongly correlated (a skin-temperature or water-vapour error moves
+    them together), so C_clr matters: with the channels' errors taken as independent the
+    spectral differences that fix the top would drown in σ's that mostly cancel.
+
+    Levels are rejected where the problem is degenerate: D_ref not more negative than
+    ``noise_sigmas`` times the σ of the signal (the opaque-cloud radiance is within the
+    uncertainty of the clear one, so any ε fits a small signal), or ε_ref outside [0, 1] by more
+    than ``noise_sigmas`` σ (a cloud emits no more than a black body, and no less than nothing).
     """
-    obs = np.asarray(observed)
-    clr = np.asarray(clear)
-    lo = np.asarray(opaque_levels)
-    lp = np.asarray(level_pressure)
-    sig = np.asarray(sigma_observed)
-    denom = lo - clr[..., None, :]
+    s = np.asarray(signal, dtype=float)
+    d = np.asarray(clear_to_opaque, dtype=float)
+    lp = np.asarray(level_pressure, dtype=float)
+    s_obs = np.asarray(sigma_observed, dtype=float)
+    cov = np.asarray(clear_covariance, dtype=float)
+    n_ch = s.shape[-1]
+    beta = np.broadcast_to(np.asarray(beta, dtype=float), s.shape)
+    r = reference
+    d_r = d[..., r]
+    var_clr_r = cov[..., r, r]
+    s_sig_r = np.sqrt(s_obs[..., r] ** 2 + var_clr_r)[..., None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        eps = (obs - clr)[..., None, :] / denom
-        sig_eps = np.hypot(sig[..., None, 0] / denom[..., 0], sig[..., None, 1] / denom[..., 1])
-    g = eps[..., 0] - eps[..., 1]
-    usable = (denom[..., 0] < 0) & (denom[..., 1] < 0) & np.isfinite(g)
-    if top_limit is not None:
-        usable &= lp >= np.asarray(top_limit)[..., None]
-    usable[..., 0] = False  # the surface level is no cloud top
-    both = usable[..., :-1] & usable[..., 1:]
-    change = both & (np.sign(g[..., :-1]) != np.sign(g[..., 1:]))
-    found = change.any(axis=-1)
-    k = np.argmax(change, axis=-1)
-    take = lambda a, i: np.take_along_axis(a, i[..., None], axis=-1)[..., 0]  # noqa: E731
-    g0, g1 = take(g, k), take(g, k + 1)
-    lp0, lp1 = np.log(take(lp, k)), np.log(take(lp, k + 1))
+        eps_r = s[..., None, r] / d_r
+        s_eps_r = np.sqrt(s_obs[..., None, r] ** 2 + (1 - np.clip(eps_r, 0, 1)) ** 2 * var_clr_r[..., None]) / np.abs(d_r)
+    usable = (np.asarray(allowed, bool) & (d_r < -noise_sigmas * s_sig_r) & np.isfinite(eps_r)
+              & (eps_r <= 1.0 + noise_sigmas * s_eps_r) & (eps_r >= -noise_sigmas * s_eps_r))
+    trans = 1.0 - np.clip(eps_r, 0.0, 1.0)  # e^(−τ/μ) in the reference channel
+    t_hi = np.clip(trans + s_eps_r, 0.0, 1.0)
+    t_lo = np.clip(trans - s_eps_r, 0.0, 1.0)
+    others = [c for c in range(n_ch) if c != r]
+    m = len(others)
+    shape_l = trans.shape
+    resid = np.zeros(shape_l + (m,))
+    jac = np.zeros(shape_l + (m, n_ch))  # ∂r/∂(clear-sky error)
+    jn = np.zeros(shape_l + (m, n_ch))  # ∂r/∂(observation error)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for i, c in enumerate(others):
+            b = beta[..., None, c]
+            t_c = trans**b
+            d_c = d[..., c]
+            resid[..., i] = s[..., None, c] - (1.0 - t_c) * d_c
+            span = t_hi - t_lo
+            secant = np.where(span > 0, (t_hi**b - t_lo**b) / np.where(span > 0, span, 1.0), b)
+            jac[..., i, c] = -t_c
+            jac[..., i, r] = secant * d_c * trans / d_r
+            jn[..., i, c] = 1.0
+            jn[..., i, r] = -secant * d_c / d_r
+        c_r = (np.einsum("...ia,...ab,...jb->...ij", jac, cov[..., None, :, :], jac)
+               + np.einsum("...ia,...a,...ja->...ij", jn, s_obs[..., None, :] ** 2, jn))
+        if m:
+            ok_cov = np.all(np.isfinite(c_r), axis=(-2, -1)) & usable
+            c_r = np.where(ok_cov[..., None, None], c_r, np.eye(m))
+            res_v = np.where(ok_cov[..., None], resid, 0.0)
+            chi2 = np.einsum("...i,...i->...", res_v, np.linalg.solve(c_r, res_v[..., None])[..., 0])
+        else:
+            chi2 = np.zeros(shape_l)
+    chi2 = np.where(usable & np.isfinite(chi2), chi2, np.inf)
+    has = np.isfinite(chi2).any(axis=-1)
+    k = np.argmin(chi2, axis=-1)
+    x = np.log(lp)
+    n_lev = x.shape[-1]
+    kk = np.clip(k, 1, n_lev - 2)
+    xm, x0, xp = _take(x, kk - 1), _take(x, kk), _take(x, kk + 1)
+    fm, f0, fp = _take(chi2, kk - 1), _take(chi2, kk), _take(chi2, kk + 1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        w = np.clip(g0 / (g0 - g1), 0.0, 1.0)
-        slope = np.abs((g1 - g0) / (lp1 - lp0))  # |dg/d ln p|
-        s_eps = take(sig_eps, k) * (1 - w) + take(sig_eps, k + 1) * w
-        p = np.exp(lp0 + w * (lp1 - lp0))
-        sigma_p = p * s_eps / slope
-    ok = found & np.isfinite(sigma_p) & (sigma_p <= max_sigma_pressure)
-    return np.where(ok, p, np.nan), ok, np.where(found, sigma_p, np.inf)
+        num = (x0 - xm) ** 2 * (f0 - fp) - (x0 - xp) ** 2 * (f0 - fm)
+        den = (x0 - xm) * (f0 - fp) - (x0 - xp) * (f0 - fm)
+        xs = x0 - 0.5 * num / den
+    interior = has & (k == kk) & np.isfinite(fm) & np.isfinite(fp) & np.isfinite(xs)
+    xs = np.where(interior, np.clip(xs, np.minimum(xm, xp), np.maximum(xm, xp)), _take(x, k))
+    chi2_min = np.where(has, _take(chi2, k), np.inf)
+    threshold = chi2_min + np.maximum(1.0, chi2_min)
+    lo, hi = _span(x, chi2, usable, np.where(has, threshold, 0.0))
+    layer = 0.5 * np.abs(xp - xm)  # one model layer in ln p around the minimum
+    sigma_x = np.maximum(0.5 * (hi - lo), 0.5 * layer)
+    p = np.exp(xs)
+    return (np.where(has, p, np.nan), np.where(has, p * sigma_x, np.inf), chi2_min, usable)
+
+
+def _span(x, chi2, usable, threshold):
+    """(lowest, highest) x where χ² ≤ threshold on usable levels, edges interpolated to the crossing."""
+    inside = usable & (chi2 <= threshold[..., None])
+    with np.errstate(invalid="ignore"):
+        f = np.where(usable, chi2 - threshold[..., None], np.nan)
+    f0, f1 = f[..., :-1], f[..., 1:]
+    cross = usable[..., :-1] & usable[..., 1:] & np.isfinite(f0) & np.isfinite(f1) & ((f0 <= 0) != (f1 <= 0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.clip(f0 / (f0 - f1), 0.0, 1.0)
+    xc = x[..., :-1] + w * (x[..., 1:] - x[..., :-1])
+    cand = np.concatenate([np.where(inside, x, np.inf), np.where(cross, xc, np.inf)], axis=-1)
+    lo = cand.min(axis=-1)
+    cand = np.where(np.isinf(cand), -np.inf, cand)
+    hi = cand.max(axis=-1)
+    ok = np.isfinite(lo) & np.isfinite(hi)
+    return np.where(ok, lo, 0.0), np.where(ok, hi, 0.0)
 
 
 class CloudRetrieval(NamedTuple):
-    """Per-pixel grey-cloud retrieval (all arrays shaped like the pixel grid).
+    """Per-pixel single-layer cloud retrieval (all arrays shaped like the pixel grid).
 
     emissivity : (..., n_ch) slant emissivity per channel [1]
     emissivity_sigma : (..., n_ch) its 1-σ uncertainty [1]
-    optical_depth : (...) vertical absorption optical depth, inverse-variance mean over channels [1]
-    optical_depth_sigma : (...) its 1-σ uncertainty [1]
+    optical_depth : (...) vertical absorption optical depth in the reference channel, inverse-
+        variance mean of the channels' τ_ch / β_ch [1]
+    optical_depth_sigma : (...) its 1-σ uncertainty, including that of the top [1]
     top_pressure : (...) [hPa]
+    top_pressure_sigma : (...) its 1-σ uncertainty [hPa] (0 for a fixed top, inf where unknown)
     top_temperature : (...) air temperature at the top [K]
     status : (...) int8, see STATUS_NAMES
     uncertain : (...) bool, relative optical-depth uncertainty above 100 %
+    chi2 : (...) misfit of the channels at the top (consistent top only; NaN otherwise) [1]
     """
 
     emissivity: np.ndarray
@@ -273,12 +379,21 @@ class CloudRetrieval(NamedTuple):
     optical_depth: np.ndarray
     optical_depth_sigma: np.ndarray
     top_pressure: np.ndarray
+    top_pressure_sigma: np.ndarray
     top_temperature: np.ndarray
     status: np.ndarray
     uncertain: np.ndarray
+    chi2: np.ndarray
 
 
-def invert_grey_cloud(
+def _layer_spacing(lp, p):
+    """Half the ln-p thickness of the model layer holding p, times p: a resolution floor [hPa]."""
+    x = np.log(lp)
+    k = np.clip(np.sum(lp >= p[..., None], axis=-1) - 1, 0, lp.shape[-1] - 2)
+    return 0.5 * p * np.abs(_take(x, k) - _take(x, k + 1))
+
+
+def invert_cloud(
     observed,
     clear,
     opaque_levels,
@@ -288,16 +403,18 @@ def invert_grey_cloud(
     sigma_observed,
     sigma_clear,
     cloudy,
-    method="opaque",
+    beta=None,
+    method="consistent",
     fixed_pressure=None,
     reference=0,
-    pair=(0, 1),
     top_limit=None,
+    assumed_pressure=350.0,
     eps_max=0.99,
     noise_sigmas=2.0,
     max_sigma_pressure=100.0,
+    clear_correlation=None,
 ):
-    r"""Invert a single-layer grey cloud per pixel.
+    r"""Invert a single cloud layer per pixel: top pressure, emissivities, absorption optical depth.
 
     Parameters
     ----------
@@ -314,23 +431,31 @@ def invert_grey_cloud(
         simulation. [same unit]
     cloudy : array_like of bool (...)
         Pixels to invert; others get ``not_cloudy``.
-    method : {"fixed", "opaque", "grey"}
+    beta : array_like (..., n_ch) or (n_ch,), optional
+        Absorption optical-depth ratios τ_ch / τ_ref of the cloud (module docstring); None: grey
+        (all 1). [1]
+    method : {"fixed", "opaque", "consistent"}
         Cloud-top choice (module docstring).
     fixed_pressure : array_like (...), optional
         Cloud-top pressure for ``method="fixed"``. [hPa]
     reference : int
-        Channel index used to place an opaque top (the 11 µm channel in practice).
-    pair : (int, int)
-        Channel indices of the two channels for the grey-consistency top.
+        Channel index of the reference channel (β = 1; the 11 µm channel in practice).
     top_limit : array_like (...), optional
         Highest cloud top allowed (lowest pressure), e.g. the tropopause. [hPa]
+    assumed_pressure : float or array_like (...)
+        Top used where the consistent top cannot be fixed (status ``top_assumed``); clipped to
+        the allowed range (between ``top_limit`` and the opaque top). [hPa]
     eps_max : float
-        Emissivities above this (and within noise of 1) are reported as opaque. [1]
+        Reference emissivities above this (and within noise of 1) are reported as opaque. [1]
     noise_sigmas : float
         How many σ beyond 1 (or above 0) an emissivity must lie to count as beyond opaque
-        (or warmer than clear). [1]
+        (or warmer than clear); also the σ multiple of the degenerate-level rejection. [1]
     max_sigma_pressure : float
-        Grey-consistency tops with a larger 1-σ pressure uncertainty fall back to opaque. [hPa]
+        Consistent tops with a larger 1-σ pressure uncertainty are not kept: the pixel gets the
+        assumed top (status ``top_assumed``). [hPa]
+    clear_correlation : array_like (..., n_ch, n_ch), optional
+        Correlation of the clear-sky errors between channels (the consistent top); None:
+        independent. [1]
 
     Returns
     -------
@@ -338,9 +463,16 @@ def invert_grey_cloud(
 
     Notes
     -----
+    Per channel, ε_c = (L_obs − L_clr)/(L_opq(p_top) − L_clr) and τ_c = −μ ln(1 − ε_c)/β_c.
     Error propagation (first order, independent errors): with D = L_opq − L_clr,
-    σ_ε² = [σ_obs² + (1 − ε)² σ_clr²] / D², and σ_τ = μ σ_ε / (1 − ε). The pixel's τ is
-    the inverse-variance weighted mean of the channel values with ε < eps_max.
+    σ_ε² = [σ_obs² + (1 − ε)² σ_clr²] / D², σ_τ = μ σ_ε / ((1 − ε) β). The pixel's τ is the
+    inverse-variance weighted mean of the channel values with ε < eps_max; its σ adds (in
+    quadrature) half the change of the reference channel's τ between p_top ± σ_p.
+
+    The reference channel decides the status where it carries a signal above its noise:
+    ε_ref beyond 1 + noise → ``beyond_opaque`` (the cloud must be colder than the top allows;
+    τ is not given), ε_ref ≥ eps_max → ``opaque`` (τ is a lower bound, its σ infinite),
+    below −noise → ``warmer_than_clear``.
     """
     obs = np.asarray(observed, dtype=float)
     clr = np.asarray(clear, dtype=float)
@@ -352,67 +484,96 @@ def invert_grey_cloud(
     s_clr = np.asarray(sigma_clear, dtype=float)
     cloudy = np.asarray(cloudy, dtype=bool)
     shape = obs.shape[:-1]
+    n_ch = obs.shape[-1]
+    beta = np.broadcast_to(np.ones(n_ch) if beta is None else np.asarray(beta, dtype=float), obs.shape)
+    ref = reference
+    chi2 = np.full(shape, np.nan)
+    sigma_p = np.zeros(shape)
+    assumed = np.zeros(shape, bool)
 
     if method == "fixed":
         if fixed_pressure is None:
             raise ValueError("method 'fixed' needs fixed_pressure [hPa]")
         p_top = np.broadcast_to(np.asarray(fixed_pressure, dtype=float), shape).copy()
-        placed_opaque = np.zeros(shape, bool)
-    elif method in ("opaque", "grey"):
-        p_top, found = opaque_top_pressure(obs[..., reference], lo[..., reference], lp, top_limit)
-        # where the opaque top holds, the reference channel is black there by construction:
-        # the observation then bounds τ from below and says nothing more about it (the other
-        # channels' emissivities at that top measure non-greyness, not optical depth)
-        placed_opaque = found
-        if method == "grey":
-            i, j = pair
-            sig_signal = np.hypot(s_obs, s_clr)
-            p_grey, ok, _ = grey_top_pressure(
-                obs[..., [i, j]], clr[..., [i, j]], lo[..., [i, j]], lp, sig_signal[..., [i, j]], top_limit,
-                max_sigma_pressure,
-            )
-            p_top = np.where(ok, p_grey, p_top)
-            placed_opaque = found & ~ok
+    elif method in ("opaque", "consistent"):
+        p_opq, found = opaque_top_pressure(obs[..., ref], lo[..., ref], lp, top_limit)
+        p_top = p_opq
+        sigma_p = _layer_spacing(lp, p_opq)
+        if method == "consistent":
+            allowed = np.ones(lp.shape, bool) if top_limit is None else lp >= np.asarray(top_limit)[..., None]
+            allowed[..., 0] = False  # the surface level is no cloud top
+            d = lo - clr[..., None, :]
+            corr = np.eye(n_ch) if clear_correlation is None else np.asarray(clear_correlation, dtype=float)
+            cov = corr * s_clr[..., :, None] * s_clr[..., None, :]
+            p_c, s_c, chi2_c, _ = consistent_top(obs - clr, d, lp, s_obs, cov, beta, allowed, ref, noise_sigmas)
+            ok = np.isfinite(p_c) & (s_c <= max_sigma_pressure) & (n_ch > 1)
+            lowest = lp[..., 0] if top_limit is None else np.asarray(top_limit, dtype=float)
+            guess = np.clip(np.broadcast_to(np.asarray(assumed_pressure, dtype=float), shape),
+                            np.broadcast_to(lowest, shape), p_opq)
+            assumed = ~ok & found
+            p_top = np.where(ok, p_c, np.where(assumed, guess, p_opq))
+            sigma_p = np.where(ok, s_c, np.where(assumed, np.inf, sigma_p))
+            chi2 = np.where(ok, chi2_c, np.nan)
     else:
-        raise ValueError(f"unknown cloud-top method {method!r}; use 'fixed', 'opaque' or 'grey'")
+        raise ValueError(f"unknown cloud-top method {method!r}; use 'fixed', 'opaque' or 'consistent'")
     p_top = np.clip(p_top, lp[..., -1], lp[..., 0])
 
-    l_opq = interpolate_levels(lp, lo, p_top)
+    def channel_optics(p):
+        l_opq = interpolate_levels(lp, lo, p)
+        d = l_opq - clr
+        with np.errstate(divide="ignore", invalid="ignore"):
+            eps = (obs - clr) / d
+            s_eps = np.sqrt(s_obs**2 + (1.0 - np.clip(eps, 0, 1)) ** 2 * s_clr**2) / np.abs(d)
+        return d, eps, s_eps
+
+    d, eps, s_eps = channel_optics(p_top)
     t_top = interpolate_levels(lp, lt, p_top)
-    d = l_opq - clr
-    with np.errstate(divide="ignore", invalid="ignore"):
-        eps = (obs - clr) / d
-        s_eps = np.sqrt(s_obs**2 + (1.0 - np.clip(eps, 0, 1)) ** 2 * s_clr**2) / np.abs(d)
     mu_c = mu[..., None]
     conditioned = np.abs(d) > noise_sigmas * np.hypot(s_obs, s_clr)
     opaque_ch = (eps >= eps_max) & (eps <= 1.0 + noise_sigmas * s_eps)
     beyond_ch = eps > 1.0 + noise_sigmas * s_eps
     warmer_ch = eps < -noise_sigmas * s_eps
-    valid = conditioned & (eps < eps_max) & ~warmer_ch
+    valid = conditioned & (eps < eps_max) & ~warmer_ch & ~beyond_ch
     eps_c = np.clip(eps, 0.0, eps_max)
     with np.errstate(divide="ignore", invalid="ignore"):
-        tau_ch = optical_depth_from_emissivity(eps_c, mu_c)
-        s_tau_ch = mu_c * s_eps / (1.0 - eps_c)
+        tau_ch = optical_depth_from_emissivity(eps_c, mu_c) / beta
+        s_tau_ch = mu_c * s_eps / ((1.0 - eps_c) * beta)
         wts = np.where(valid, 1.0 / np.maximum(s_tau_ch, 1e-6) ** 2, 0.0)
         tau = np.sum(wts * np.where(valid, tau_ch, 0.0), axis=-1) / np.sum(wts, axis=-1)
         s_tau = 1.0 / np.sqrt(np.sum(wts, axis=-1))
+    # the top's own uncertainty, through the reference channel's τ at p ± σ_p
+    finite_sp = np.isfinite(sigma_p) & (sigma_p > 0)
+    if finite_sp.any():
+        sp = np.where(finite_sp, sigma_p, 0.0)
+        taus = []
+        for sign in (-1.0, 1.0):
+            _, e2, _ = channel_optics(np.clip(p_top + sign * sp, lp[..., -1], lp[..., 0]))
+            taus.append(optical_depth_from_emissivity(np.clip(e2[..., ref], 0.0, eps_max), mu))
+        s_top = np.where(finite_sp, 0.5 * np.abs(taus[1] - taus[0]), 0.0)
+        s_tau = np.hypot(s_tau, s_top)
     n_valid = valid.sum(axis=-1)
     tau_opaque = optical_depth_from_emissivity(eps_max, mu)
 
+    # status: the reference channel decides where it is conditioned; elsewhere the others do
+    r_cond = conditioned[..., ref]
     status = np.full(shape, STATUS_INVERTED, dtype=np.int8)
-    any_cond = conditioned.any(axis=-1)
-    all_opaque = (opaque_ch | beyond_ch | ~conditioned).all(axis=-1) & (opaque_ch.any(axis=-1))
-    status = np.where(all_opaque | (placed_opaque & conditioned[..., reference]), STATUS_OPAQUE, status)
-    status = np.where((n_valid == 0) & beyond_ch.any(axis=-1) & ~opaque_ch.any(axis=-1), STATUS_BEYOND_OPAQUE, status)
-    status = np.where((n_valid == 0) & warmer_ch.any(axis=-1) & ~opaque_ch.any(axis=-1)
-                      & ~beyond_ch.any(axis=-1), STATUS_WARMER_THAN_CLEAR, status)
-    status = np.where(~any_cond, STATUS_ILL_CONDITIONED, status)
+    others_opaque = (opaque_ch | beyond_ch | ~conditioned).all(axis=-1) & opaque_ch.any(axis=-1)
+    others_beyond = (n_valid == 0) & beyond_ch.any(axis=-1) & ~opaque_ch.any(axis=-1)
+    others_warmer = (n_valid == 0) & warmer_ch.any(axis=-1) & ~opaque_ch.any(axis=-1) & ~beyond_ch.any(axis=-1)
+    status = np.where(r_cond & opaque_ch[..., ref], STATUS_OPAQUE, status)
+    status = np.where(r_cond & beyond_ch[..., ref], STATUS_BEYOND_OPAQUE, status)
+    status = np.where(r_cond & warmer_ch[..., ref], STATUS_WARMER_THAN_CLEAR, status)
+    status = np.where(~r_cond & others_opaque, STATUS_OPAQUE, status)
+    status = np.where(~r_cond & others_beyond, STATUS_BEYOND_OPAQUE, status)
+    status = np.where(~r_cond & others_warmer, STATUS_WARMER_THAN_CLEAR, status)
+    status = np.where(~conditioned.any(axis=-1), STATUS_ILL_CONDITIONED, status)
     status = np.where((n_valid == 0) & (status == STATUS_INVERTED), STATUS_ILL_CONDITIONED, status)
+    status = np.where(assumed & (status == STATUS_INVERTED), STATUS_TOP_ASSUMED, status)
     status = np.where(cloudy, status, STATUS_NOT_CLOUDY).astype(np.int8)
 
     tau = np.where(status == STATUS_OPAQUE, tau_opaque, tau)
     s_tau = np.where(status == STATUS_OPAQUE, np.inf, s_tau)
-    keep = (status == STATUS_INVERTED) | (status == STATUS_OPAQUE)
+    keep = (status == STATUS_INVERTED) | (status == STATUS_OPAQUE) | (status == STATUS_TOP_ASSUMED)
     tau = np.where(keep, tau, np.nan)
     s_tau = np.where(keep, s_tau, np.nan)
     show_eps = cloudy[..., None] & np.isfinite(eps) & conditioned
@@ -422,9 +583,11 @@ def invert_grey_cloud(
         tau,
         s_tau,
         np.where(cloudy, p_top, np.nan),
+        np.where(cloudy, sigma_p, np.nan),
         np.where(cloudy, t_top, np.nan),
         status,
         keep & ~(s_tau <= tau),
+        np.where(cloudy, chi2, np.nan),
     )
 
 
