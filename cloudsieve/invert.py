@@ -312,16 +312,39 @@ def night_contrast_of(obs, clear, sol_zenith, config):
 
 
 def inversion_bias(bias):
-    """The clear-sky bias lines the inversion adds back to the simulation ({channel: fit} with the
-    fit's numbers rounded: a to 0.1 K, b to 0.002 K per kg m⁻² (0.1 K at a path of 50 kg m⁻²), so
-    that a retune that moves the fit by less does not re-run the inversion); None without one."""
+    """The clear-sky bias lines the inversion adds back to the simulation: {channel: {"a", "b",
+    "surfaces"}} of a bias fit (screen.bias_from_sums), or None without one."""
     if not bias:
         return None
 
-    def rnd(line):
-        return {"a": round(float(line["a"]), 1), "b": round(float(line["b"]) / 0.002) * 0.002}
+    def line(f):
+        return {"a": float(f["a"]), "b": float(f["b"])}
 
-    return {c: dict(rnd(f), surfaces={k: rnd(v) for k, v in f.get("surfaces", {}).items()}) for c, f in bias.items()}
+    return {c: dict(line(f), surfaces={k: line(v) for k, v in f.get("surfaces", {}).items()}) for c, f in bias.items()}
+
+
+#: a bias line that moved by less than this at a path of BIAS_PATH does not re-run the inversion [K]
+BIAS_TOLERANCE = 0.1
+BIAS_PATH = 50.0  # kg m⁻², a typical moist slant path
+
+
+def bias_close(old, new):
+    """Whether two :func:`inversion_bias` results differ by at most BIAS_TOLERANCE at 0 and at
+    BIAS_PATH kg m⁻² of slant path, in every channel and surface line."""
+    if old is None or new is None:
+        return old is new
+    if set(old) != set(new):
+        return False
+
+    def near(a, b):
+        return all(abs((a["a"] + a["b"] * x) - (b["a"] + b["b"] * x)) <= BIAS_TOLERANCE for x in (0.0, BIAS_PATH))
+
+    for c in old:
+        if not near(old[c], new[c]) or set(old[c]["surfaces"]) != set(new[c]["surfaces"]):
+            return False
+        if not all(near(old[c]["surfaces"][k], new[c]["surfaces"][k]) for k in old[c]["surfaces"]):
+            return False
+    return True
 
 
 def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear, chset, config, sol_zenith=None,

@@ -25,7 +25,7 @@ from physics import cloud as pcloud
 from .codes import CLASS_NAMES, CLEAR, CLOUD, EDIT_CODES, MARGINAL, SURFACES, per_surface
 from .config import TOP_METHODS, TOP_PRESSURE_RANGE, load_config
 from .export import result_dataset, write_result
-from .invert import PHASE_NAMES, PHASE_WORDS, invert_all, inversion_bias, phase_beta
+from .invert import PHASE_NAMES, PHASE_WORDS, bias_close, invert_all, inversion_bias, phase_beta
 from .journal import Journal, StaleEditsError, journal_path
 from .registry import REGISTRY, bit_table
 from .scene import load_scene
@@ -71,6 +71,7 @@ class Session:
         self.lean = self.sim.level_pressure is None
         self._cloud = None
         self._cloud_key = None
+        self._inv_bias = None
         self._screen_cache = {}  # threshold-independent screening arrays of this scene (screen.screen_scene)
         self._shown_latest_edit = None
         self.result = None
@@ -154,12 +155,17 @@ class Session:
         self.update()
 
     # ------------------------------------------------------------------ computing
-    def _cloud_layer(self, cfg, mask, bias=None):
+    def _cloud_layer(self, cfg, mask, bias=None, exact=False):
         only = None
         if self.invert_scope == "flagged":
             only = (mask == CLOUD) | (mask == MARGINAL)
         cc = cfg["cloud"]
+        # the bias the inversion adds back: kept while the fit moves by less than 0.1 K (a retune
+        # moves it a little; re-running the inversion for that would cost seconds for nothing)
         inv_bias = inversion_bias(bias)
+        if not exact and bias_close(self._inv_bias, inv_bias):
+            inv_bias = self._inv_bias
+        self._inv_bias = inv_bias
         key = (json.dumps(cc, sort_keys=True, default=str), json.dumps(inv_bias, sort_keys=True),
                None if only is None else hash(np.packbits(only).tobytes()))
         if key != self._cloud_key:
@@ -183,8 +189,7 @@ class Session:
         edits = self.edits()
         self._shown_latest_edit = edits[-1]["id"] if edits else None
         res = screen_scene(self.scene, self.sim, cfg, edits=edits, cache=self._screen_cache)
-        applied = all(b.get("applied") for b in res.bias.values()) if res.bias else False
-        res.cloud = self._cloud_layer(cfg, res.mask, res.bias if applied else None).masked(res.mask)
+        res.cloud = self._cloud_layer(cfg, res.mask, self._applied_bias(res)).masked(res.mask)
         if self.lean:  # exports write float32 anyway; the departures and σ stay shared with the cache
             res.margins = {t: m.astype(np.float32) for t, m in res.margins.items()}
             # the dashboard shows each threshold as its median over valid pixels: keep just that
@@ -244,7 +249,20 @@ class Session:
     def counts(self):
         return dict(self.result.counts)
 
+    @staticmethod
+    def _applied_bias(res):
+        applied = all(b.get("applied") for b in res.bias.values()) if res.bias else False
+        return res.bias if applied else None
+
+    def _exact_cloud(self):
+        """Before an export: the cloud layer with the current bias fit (the maps may show one up to
+        0.1 K older while retuning, invert.bias_close), so that a download equals a batch run."""
+        res = self.result
+        if inversion_bias(self._applied_bias(res)) != self._inv_bias:
+            res.cloud = self._cloud_layer(self.config, res.mask, self._applied_bias(res), exact=True).masked(res.mask)
+
     def result_dataset(self, action="screen"):
+        self._exact_cloud()
         return result_dataset(self.scene, self.sim, self.result, self.config, self.edits(), action)
 
     def export_bytes(self, fmt):

@@ -276,68 +276,122 @@ def consistent_top(signal, clear_to_opaque, level_pressure, sigma_observed, clea
     lp = np.asarray(level_pressure, dtype=float)
     s_obs = np.asarray(sigma_observed, dtype=float)
     cov = np.asarray(clear_covariance, dtype=float)
-    n_ch = s.shape[-1]
     beta = np.broadcast_to(np.asarray(beta, dtype=float), s.shape)
     r = reference
-    d_r = d[..., r]
     var_clr_r = cov[..., r, r]
     s_sig_r = np.sqrt(s_obs[..., r] ** 2 + var_clr_r)[..., None]
+    chi2, eps_r, s_eps_r = _misfit(s, d, s_obs, cov, beta, r)
+    d_r = d[..., r]
+    usable = (np.asarray(allowed, bool) & (d_r < -noise_sigmas * s_sig_r) & np.isfinite(eps_r)
+              & (eps_r <= 1.0 + noise_sigmas * s_eps_r) & (eps_r >= -noise_sigmas * s_eps_r))
+    chi2 = np.where(usable & np.isfinite(chi2), chi2, np.inf)
+    has = np.isfinite(chi2).any(axis=-1)
+    k = np.argmin(chi2, axis=-1)
+    x = np.log(lp)
+    n_lev = x.shape[-1]
+    # refine between the usable neighbours of the best level: D is linear in ln p between levels
+    # (interpolate_levels), so χ² is evaluated on a fine grid there
+    lo_k = np.where((k > 0) & np.isfinite(_take(chi2, np.maximum(k - 1, 0))), k - 1, k)
+    hi_k = np.where((k < n_lev - 1) & np.isfinite(_take(chi2, np.minimum(k + 1, n_lev - 1))), k + 1, k)
+    frac = np.linspace(0.0, 1.0, REFINE_STEPS)
+    x_lo, x_hi = _take(x, lo_k), _take(x, hi_k)
+    x_f = x_lo[..., None] + frac * (x_hi - x_lo)[..., None]  # (..., K)
+    d_f = np.empty(x_f.shape + (s.shape[-1],))
+    for j in range(REFINE_STEPS):
+        d_f[..., j, :] = _interp_ln_p(x, d, x_f[..., j], lo_k, hi_k)
+    chi2_f, _, _ = _misfit(s, d_f, s_obs, cov, beta, r)
+    chi2_f = np.where(np.isfinite(chi2_f), chi2_f, np.inf)
+    j = np.argmin(chi2_f, axis=-1)
+    xs = _take(x_f, j)
+    chi2_min = np.where(has, np.minimum(_take(chi2_f, j), _take(chi2, k)), np.inf)
+    xs = np.where(_take(chi2_f, j) <= _take(chi2, k), xs, _take(x, k))
+    threshold = chi2_min + np.maximum(1.0, chi2_min)
+    lo, hi = _span(x, chi2, usable, np.where(has, threshold, 0.0))
+    kk = np.clip(k, 1, n_lev - 2)
+    layer = 0.5 * np.abs(_take(x, kk + 1) - _take(x, kk - 1))  # one model layer in ln p around the minimum
+    sigma_x = np.maximum(0.5 * (hi - lo), 0.5 * layer)
+    p = np.exp(xs)
+    return (np.where(has, p, np.nan), np.where(has, p * sigma_x, np.inf), chi2_min, usable)
+
+
+#: fine points between the neighbours of the best level (consistent_top)
+REFINE_STEPS = 9
+
+
+def _interp_ln_p(x, values, xt, lo_k, hi_k):
+    """values (..., L, n_ch) at ln p = xt (...), linear in ln p between levels lo_k ≤ k ≤ hi_k."""
+    mid = np.where(lo_k < hi_k, lo_k + 1, lo_k)  # the middle level when the bracket spans two layers
+    xm = _take(x, mid)
+    use_upper = (xt <= xm) & (hi_k > mid)  # pressure decreases with index: smaller ln p is higher up
+    k0 = np.where(use_upper, mid, lo_k)
+    k1 = np.where(use_upper, hi_k, mid)
+    x0, x1 = _take(x, k0), _take(x, k1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(x1 != x0, (xt - x0) / (x1 - x0), 0.0)
+    v0 = np.take_along_axis(values, k0[..., None, None], axis=-2)[..., 0, :]
+    v1 = np.take_along_axis(values, k1[..., None, None], axis=-2)[..., 0, :]
+    return v0 + (v1 - v0) * np.clip(w, 0.0, 1.0)[..., None]
+
+
+def _misfit(s, d, s_obs, cov, beta, r):
+    """χ² of the other channels' residuals for cloud tops with D = ``d`` (..., K, n_ch), and the
+    reference emissivity and its σ there (consistent_top's notes)."""
+    n_ch = s.shape[-1]
+    d_r = d[..., r]
+    var_clr_r = cov[..., r, r]
     with np.errstate(divide="ignore", invalid="ignore"):
         eps_r = s[..., None, r] / d_r
         s_eps_r = np.sqrt(s_obs[..., None, r] ** 2 + (1 - np.clip(eps_r, 0, 1)) ** 2 * var_clr_r[..., None]) / np.abs(d_r)
-    usable = (np.asarray(allowed, bool) & (d_r < -noise_sigmas * s_sig_r) & np.isfinite(eps_r)
-              & (eps_r <= 1.0 + noise_sigmas * s_eps_r) & (eps_r >= -noise_sigmas * s_eps_r))
     trans = 1.0 - np.clip(eps_r, 0.0, 1.0)  # e^(−τ/μ) in the reference channel
     t_hi = np.clip(trans + s_eps_r, 0.0, 1.0)
     t_lo = np.clip(trans - s_eps_r, 0.0, 1.0)
     others = [c for c in range(n_ch) if c != r]
     m = len(others)
     shape_l = trans.shape
-    resid = np.zeros(shape_l + (m,))
-    jac = np.zeros(shape_l + (m, n_ch))  # ∂r/∂(clear-sky error)
-    jn = np.zeros(shape_l + (m, n_ch))  # ∂r/∂(observation error)
+    if not m:
+        return np.zeros(shape_l), eps_r, s_eps_r
+    # residual r_i = S_c − ε_c D_c of each other channel c = others[i], and its sensitivities:
+    # to the clear-sky error of c (−t_c), of the reference (g_i), to the reference's observation (h_i)
+    resid, t_cs, g, h = [], [], [], []
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        for i, c in enumerate(others):
+        span = t_hi - t_lo
+        safe_span = np.where(span > 0, span, 1.0)
+        for c in others:
             b = beta[..., None, c]
             t_c = trans**b
             d_c = d[..., c]
-            resid[..., i] = s[..., None, c] - (1.0 - t_c) * d_c
-            span = t_hi - t_lo
-            secant = np.where(span > 0, (t_hi**b - t_lo**b) / np.where(span > 0, span, 1.0), b)
-            jac[..., i, c] = -t_c
-            jac[..., i, r] = secant * d_c * trans / d_r
-            jn[..., i, c] = 1.0
-            jn[..., i, r] = -secant * d_c / d_r
-        c_r = (np.einsum("...ia,...ab,...jb->...ij", jac, cov[..., None, :, :], jac)
-               + np.einsum("...ia,...a,...ja->...ij", jn, s_obs[..., None, :] ** 2, jn))
-        if m:
-            ok_cov = np.all(np.isfinite(c_r), axis=(-2, -1)) & usable
-            c_r = np.where(ok_cov[..., None, None], c_r, np.eye(m))
-            res_v = np.where(ok_cov[..., None], resid, 0.0)
-            chi2 = np.einsum("...i,...i->...", res_v, np.linalg.solve(c_r, res_v[..., None])[..., 0])
+            secant = np.where(span > 0, (t_hi**b - t_lo**b) / safe_span, b)
+            resid.append(s[..., None, c] - (1.0 - t_c) * d_c)
+            t_cs.append(t_c)
+            g.append(secant * d_c * trans / d_r)
+            h.append(-secant * d_c / d_r)
+        var_obs_r = s_obs[..., None, r] ** 2
+
+        def cov_r(i, j):
+            """C_r[i, j] = J C_clr Jᵀ + N diag(σ_obs²) Nᵀ with J, N sparse (one column each + the reference)."""
+            ci, cj = others[i], others[j]
+            out = (t_cs[i] * t_cs[j] * cov[..., None, ci, cj] - t_cs[i] * g[j] * cov[..., None, ci, r]
+                   - g[i] * t_cs[j] * cov[..., None, r, cj] + g[i] * g[j] * var_clr_r[..., None]
+                   + h[i] * h[j] * var_obs_r)
+            if i == j:
+                out = out + s_obs[..., None, ci] ** 2
+            return out
+
+        if m == 1:
+            chi2 = resid[0] ** 2 / cov_r(0, 0)
+        elif m == 2:
+            a11, a22, a12 = cov_r(0, 0), cov_r(1, 1), cov_r(0, 1)
+            det = a11 * a22 - a12 * a12
+            chi2 = (a22 * resid[0] ** 2 - 2 * a12 * resid[0] * resid[1] + a11 * resid[1] ** 2) / det
         else:
-            chi2 = np.zeros(shape_l)
-    chi2 = np.where(usable & np.isfinite(chi2), chi2, np.inf)
-    has = np.isfinite(chi2).any(axis=-1)
-    k = np.argmin(chi2, axis=-1)
-    x = np.log(lp)
-    n_lev = x.shape[-1]
-    kk = np.clip(k, 1, n_lev - 2)
-    xm, x0, xp = _take(x, kk - 1), _take(x, kk), _take(x, kk + 1)
-    fm, f0, fp = _take(chi2, kk - 1), _take(chi2, kk), _take(chi2, kk + 1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        num = (x0 - xm) ** 2 * (f0 - fp) - (x0 - xp) ** 2 * (f0 - fm)
-        den = (x0 - xm) * (f0 - fp) - (x0 - xp) * (f0 - fm)
-        xs = x0 - 0.5 * num / den
-    interior = has & (k == kk) & np.isfinite(fm) & np.isfinite(fp) & np.isfinite(xs)
-    xs = np.where(interior, np.clip(xs, np.minimum(xm, xp), np.maximum(xm, xp)), _take(x, k))
-    chi2_min = np.where(has, _take(chi2, k), np.inf)
-    threshold = chi2_min + np.maximum(1.0, chi2_min)
-    lo, hi = _span(x, chi2, usable, np.where(has, threshold, 0.0))
-    layer = 0.5 * np.abs(xp - xm)  # one model layer in ln p around the minimum
-    sigma_x = np.maximum(0.5 * (hi - lo), 0.5 * layer)
-    p = np.exp(xs)
-    return (np.where(has, p, np.nan), np.where(has, p * sigma_x, np.inf), chi2_min, usable)
+            c_r = np.stack([np.stack([cov_r(i, j) for j in range(m)], -1) for i in range(m)], -2)
+            res_v = np.stack(resid, -1)
+            ok = np.all(np.isfinite(c_r), axis=(-2, -1)) & np.all(np.isfinite(res_v), axis=-1)
+            c_r = np.where(ok[..., None, None], c_r, np.eye(m))
+            res_v = np.where(ok[..., None], res_v, 0.0)
+            chi2 = np.einsum("...i,...i->...", res_v, np.linalg.solve(c_r, res_v[..., None])[..., 0])
+    ok = np.isfinite(chi2) & (chi2 >= 0)
+    return np.where(ok, chi2, np.inf), eps_r, s_eps_r
 
 
 def _span(x, chi2, usable, threshold):
@@ -507,7 +561,7 @@ def invert_cloud(
             cov = corr * s_clr[..., :, None] * s_clr[..., None, :]
             p_c, s_c, chi2_c, _ = consistent_top(obs - clr, d, lp, s_obs, cov, beta, allowed, ref, noise_sigmas)
             ok = np.isfinite(p_c) & (s_c <= max_sigma_pressure) & (n_ch > 1)
-            lowest = lp[..., 0] if top_limit is None else np.asarray(top_limit, dtype=float)
+            lowest = lp[..., -1] if top_limit is None else np.asarray(top_limit, dtype=float)
             guess = np.clip(np.broadcast_to(np.asarray(assumed_pressure, dtype=float), shape),
                             np.broadcast_to(lowest, shape), p_opq)
             assumed = ~ok & found

@@ -78,7 +78,7 @@ CONFIG_CASES = [
     ("config with unknown key", "[tests.texture]\ntreshold = 1.0\n", ["unknown key", "treshold", "Did you mean 'tests.texture.threshold'"]),
     ("config unknown table", "[screning]\nmarginal_fraction = 0.2\n", ["unknown key 'screning'"]),
     ("config not TOML", "this is = = not toml", ["not valid TOML"]),
-    ("config impossible value", "[cloud]\ntop = \"sideways\"\n", ["cloud.top", "fixed, opaque, grey"]),
+    ("config impossible value", "[cloud]\ntop = \"sideways\"\n", ["cloud.top", "fixed, opaque, consistent"]),
     ("config missing file", None, ["does not exist"]),
 ]
 

@@ -1,4 +1,4 @@
-"""Single-layer grey cloud: forward model, inversion, cloud-top choices, status, uncertainty.
+"""Single cloud layer: forward model, inversion, cloud-top choices, status, uncertainty.
 
 References: the effective-emissivity cloud model L = (1 − ε) L_clr + ε L_opq (Smith & Platt
 1978, J. Appl. Meteor. 17, 1796; from memory), Beer–Lambert slant emissivity ε = 1 − e^(−τ/μ)
@@ -38,17 +38,17 @@ def columns():
     return chans, prof, sky, np.cos(np.deg2rad(zen))
 
 
-def _observe(columns, p_top, taus=TAUS):
+def _observe(columns, p_top, taus=TAUS, beta=None):
     chans, prof, sky, mu = columns
     l_opq = pc.interpolate_levels(prof.pressure, sky.opaque_radiance, p_top)
-    return pc.grey_cloud_radiance(sky.radiance, l_opq, taus, mu)
+    return pc.cloud_radiance(sky.radiance, l_opq, taus, mu, beta)
 
 
-def _invert(columns, obs, method, **kw):
+def _invert(columns, obs, method, sig=1e-4, **kw):
     chans, prof, sky, mu = columns
-    sig = np.full(obs.shape, 1e-4)
-    return pc.invert_grey_cloud(obs, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig, sig,
-                                np.ones(obs.shape[0], bool), method=method, reference=1, pair=(1, 2), **kw)
+    sig = np.full(obs.shape, sig)
+    return pc.invert_cloud(obs, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig, sig,
+                           np.ones(obs.shape[0], bool), method=method, reference=1, **kw)
 
 
 def test_emissivity_and_optical_depth_are_inverse():
@@ -62,9 +62,9 @@ def test_emissivity_and_optical_depth_are_inverse():
 def test_analytic_single_layer_case():
     """Hand-made numbers: L_clr = 100, L_opq = 40, τ = 0.7, μ = 0.8 → ε = 1 − e^(−0.875)."""
     eps = 1 - np.exp(-0.7 / 0.8)
-    obs = pc.grey_cloud_radiance(np.array([100.0]), np.array([40.0]), 0.7, 0.8)
+    obs = pc.cloud_radiance(np.array([100.0]), np.array([40.0]), 0.7, 0.8)
     assert obs[0] == pytest.approx((1 - eps) * 100 + eps * 40, rel=1e-12)
-    r = pc.invert_grey_cloud(obs[None], np.array([[100.0]]), np.full((1, 3, 1), 40.0), np.array([[1000.0, 500, 100]]),
+    r = pc.invert_cloud(obs[None], np.array([[100.0]]), np.full((1, 3, 1), 40.0), np.array([[1000.0, 500, 100]]),
                              np.array([[280.0, 250, 220]]), np.array([0.8]), np.array([[0.01]]), np.array([[0.01]]),
                              np.array([True]), method="fixed", fixed_pressure=500.0)
     assert r.status[0] == pc.STATUS_INVERTED
@@ -87,13 +87,66 @@ def test_round_trip_fixed_top(columns, p_top):
 
 
 @pytest.mark.parametrize("p_top", [250.0, 400.0])
-def test_round_trip_grey_top(columns, p_top):
-    obs = _observe(columns, np.full(TAUS.size, p_top))
-    r = _invert(columns, obs, "grey", max_sigma_pressure=100.0)
-    good = TAUS >= 0.1
+@pytest.mark.parametrize("beta", [None, (0.9, 1.0, 1.15), (0.75, 1.0, 1.2)])
+def test_round_trip_consistent_top(columns, p_top, beta):
+    """Self-consistency only (the skill against another world is tests/test_cloud_truth.py): a
+    cloud made by the forward model with ratios β is found at its top with its τ, grey (β = 1)
+    being the same code with ones."""
+    obs = _observe(columns, np.full(TAUS.size, p_top), beta=None if beta is None else np.array(beta))
+    r = _invert(columns, obs, "consistent", beta=beta)
     rel = np.abs(r.optical_depth - TAUS) / TAUS
-    assert np.all(rel[good] <= 0.05), (rel, r.top_pressure)
+    assert np.all(r.status == pc.STATUS_INVERTED), r.status
+    assert np.all(rel <= 0.05), (rel, r.top_pressure)
     np.testing.assert_allclose(r.top_pressure, p_top, atol=10.0)
+    assert np.all(np.isfinite(r.top_pressure_sigma)) and np.all(r.top_pressure_sigma > 0)
+
+
+def test_a_wrong_beta_moves_the_top(columns):
+    """Ice ratios fitted to a grey cloud place it elsewhere and fit worse (what lets the phase
+    choice compare fits): the χ² of the wrong optics is larger at its own best top."""
+    obs = _observe(columns, np.full(TAUS.size, 300.0), taus=np.full(TAUS.size, 1.0))
+    sig = 0.02
+    right = _invert(columns, obs, "consistent", sig=sig)
+    wrong = _invert(columns, obs, "consistent", sig=sig, beta=(0.9, 1.0, 1.15))
+    assert np.all(np.abs(right.top_pressure - 300.0) < 15.0)
+    assert np.median(np.abs(wrong.top_pressure - 300.0)) > 30.0
+    assert np.all(wrong.chi2 > right.chi2)
+
+
+def test_one_channel_cannot_fix_the_top(columns):
+    """A single channel: status top_assumed and τ at the assumed top (clipped into the allowed
+    range), not an opaque lower bound."""
+    chans, prof, sky, mu = columns
+    obs = _observe(columns, np.full(TAUS.size, 350.0))
+    one = slice(1, 2)
+    sig = np.full((TAUS.size, 1), 1e-4)
+    r = pc.invert_cloud(obs[:, one], sky.radiance[:, one], sky.opaque_radiance[:, :, one], prof.pressure,
+                        prof.temperature, mu, sig, sig, np.ones(TAUS.size, bool), method="consistent",
+                        assumed_pressure=350.0)
+    thin = pc.slant_emissivity(TAUS, mu) < 0.99
+    assert np.all(r.status[thin] == pc.STATUS_TOP_ASSUMED)
+    np.testing.assert_allclose(r.top_pressure[thin], 350.0)
+    np.testing.assert_allclose(r.optical_depth[thin], TAUS[thin], rtol=1e-6)
+    assert np.all(np.isinf(r.top_pressure_sigma[thin]))
+
+
+def test_degenerate_levels_are_rejected(columns):
+    """Where the opaque-cloud radiance is within noise of the clear one, or ε would exceed 1
+    beyond noise, no level is usable; the surface level never is."""
+    chans, prof, sky, mu = columns
+    d = sky.opaque_radiance - sky.radiance[:, None, :]
+    obs = _observe(columns, np.full(TAUS.size, 300.0))
+    sig = np.full(obs.shape, 0.05)
+    cov = np.eye(3) * sig[:, :, None] ** 2
+    allowed = np.ones(prof.pressure.shape, bool)
+    allowed[:, 0] = False
+    _, _, _, usable = pc.consistent_top(obs - sky.radiance, d, prof.pressure, sig, cov, np.ones(3), allowed, 1)
+    small = np.abs(d[..., 1]) <= 2.0 * np.hypot(sig[:, None, 1], sig[:, None, 1])
+    eps = (obs - sky.radiance)[:, None, 1] / d[..., 1]
+    assert not np.any(usable & small)
+    assert not np.any(usable[:, 0])
+    assert not np.any(usable & (eps > 1.0 + 0.5))
+    assert np.all(usable.any(axis=-1))
 
 
 def test_round_trip_opaque_limit(columns):
@@ -119,9 +172,9 @@ def test_opaque_top_of_a_thin_cloud_gives_only_a_lower_bound(columns):
     assert np.all(r.status == pc.STATUS_OPAQUE)
     np.testing.assert_allclose(r.emissivity[:, 1], 1.0, atol=1e-6)
     np.testing.assert_allclose(r.optical_depth, -mu * np.log(1 - 0.99))
-    # the grey top of the same observations recovers τ (where it is well conditioned)
-    g = _invert(columns, obs, "grey")
-    assert (g.status == pc.STATUS_INVERTED).any()
+    # the consistent top of the same observations recovers τ
+    g = _invert(columns, obs, "consistent")
+    assert np.all(g.status == pc.STATUS_INVERTED)
 
 
 def test_mu_dependence(columns):
@@ -131,9 +184,9 @@ def test_mu_dependence(columns):
     l_opq = pc.interpolate_levels(prof.pressure, sky.opaque_radiance, p)
     out = []
     for m in (1.0, 0.5):
-        obs = pc.grey_cloud_radiance(sky.radiance, l_opq, TAUS, np.full(TAUS.size, m))
+        obs = pc.cloud_radiance(sky.radiance, l_opq, TAUS, np.full(TAUS.size, m))
         sig = np.full(obs.shape, 1e-4)
-        r = pc.invert_grey_cloud(obs, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature,
+        r = pc.invert_cloud(obs, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature,
                                  np.full(TAUS.size, m), sig, sig, np.ones(TAUS.size, bool), method="fixed",
                                  fixed_pressure=400.0, reference=1)
         below = pc.slant_emissivity(TAUS, m) < 0.99  # beyond eps_max τ is only a lower bound
@@ -162,7 +215,7 @@ def test_cloud_inside_the_solver_matches_the_grey_formula(columns):
     bs = channel_planck(chans, prof.temperature[:, 0] + 1.0)
     cloudy = schwarzschild_upwelling(tau, b, bs, np.full((TAUS.size, 3), 0.99), mu).radiance
     p_mid = np.sqrt(prof.pressure[:, k] * prof.pressure[:, k + 1])
-    r = pc.invert_grey_cloud(cloudy, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu,
+    r = pc.invert_cloud(cloudy, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu,
                              np.full(cloudy.shape, 1e-4), np.full(cloudy.shape, 1e-4), np.ones(TAUS.size, bool),
                              method="fixed", fixed_pressure=p_mid, reference=1)
     np.testing.assert_allclose(r.optical_depth, tau_c, rtol=0.05)
@@ -173,21 +226,21 @@ def test_statuses(columns):
     n = TAUS.size
     sig = np.full(sky.radiance.shape, 0.05)
     warmer = sky.radiance * 1.02
-    r = pc.invert_grey_cloud(warmer, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig, sig,
+    r = pc.invert_cloud(warmer, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig, sig,
                              np.ones(n, bool), method="fixed", fixed_pressure=500.0, reference=1)
     assert np.all(r.status == pc.STATUS_WARMER_THAN_CLEAR) and np.all(np.isnan(r.optical_depth))
     # colder than an opaque cloud at a low fixed top: the cloud must be higher
     cold = pc.interpolate_levels(prof.pressure, sky.opaque_radiance, np.full(n, 250.0))
-    r = pc.invert_grey_cloud(cold, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig, sig,
+    r = pc.invert_cloud(cold, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig, sig,
                              np.ones(n, bool), method="fixed", fixed_pressure=900.0, reference=1)
     assert np.all(r.status == pc.STATUS_BEYOND_OPAQUE)
     # a top at the surface level: L_opq − L_clr is within the noise, nothing to invert
     noisy = np.full(sky.radiance.shape, 10.0)
-    r = pc.invert_grey_cloud(sky.radiance * 0.99, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature,
+    r = pc.invert_cloud(sky.radiance * 0.99, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature,
                              mu, noisy, noisy, np.ones(n, bool), method="fixed", fixed_pressure=prof.pressure[:, 0],
                              reference=1)
     assert np.all(r.status == pc.STATUS_ILL_CONDITIONED)
-    r = pc.invert_grey_cloud(sky.radiance, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig,
+    r = pc.invert_cloud(sky.radiance, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, sig,
                              sig, np.zeros(n, bool), method="opaque", reference=1)
     assert np.all(r.status == pc.STATUS_NOT_CLOUDY)
 
@@ -196,7 +249,7 @@ def test_uncertainty_flag_for_thin_noisy_cloud(columns):
     chans, prof, sky, mu = columns
     obs = _observe(columns, np.full(TAUS.size, 400.0), np.full(TAUS.size, 0.02))
     big = np.full(obs.shape, 2.0)  # large radiance noise
-    r = pc.invert_grey_cloud(obs, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, big, big,
+    r = pc.invert_cloud(obs, sky.radiance, sky.opaque_radiance, prof.pressure, prof.temperature, mu, big, big,
                              np.ones(TAUS.size, bool), method="fixed", fixed_pressure=400.0, reference=1)
     ok = r.status == pc.STATUS_INVERTED
     assert ok.any() and np.all(r.uncertain[ok])
@@ -235,7 +288,7 @@ def test_sample_scene_optical_depth_with_true_top(name):
     sig = np.full(obs.shape, 0.02)
 
     def invert(sel, **kw):
-        return pc.invert_grey_cloud(obs[sel], clr[sel], sim.opaque_radiance[sel][:, :, ci].astype(float),
+        return pc.invert_cloud(obs[sel], clr[sel], sim.opaque_radiance[sel][:, :, ci].astype(float),
                                     sim.level_pressure[sel].astype(float), sim.level_temperature[sel].astype(float),
                                     mu[sel], sig[sel], sig[sel], np.ones(int(sel.sum()), bool),
                                     reference=inv.index("11um"), **kw)

@@ -58,7 +58,7 @@ def test_netcdf_round_trip(tmp_path, result):
     assert "cold_departure" in back["test_bits"].attrs["flag_meanings"]
     assert back["inversion_status"].attrs["flag_meanings"].split()[0] == "inverted"
     cfg = json.loads(back.attrs["cloudsieve_config"])
-    assert cfg["cloud"]["top"] == "grey"
+    assert cfg["cloud"]["top"] == "consistent"
     assert back.attrs["source"].startswith("cloudsieve")
 
 

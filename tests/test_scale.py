@@ -34,7 +34,7 @@ def _compare(a, b, tol=1e-6):
 
 
 @pytest.mark.parametrize("name, override", [("night_front", {}), ("day_coast", {"bias": {"remove": True}}),
-                                            ("polar_ice", {"cloud": {"top": "grey"},
+                                            ("polar_ice", {"cloud": {"top": "consistent", "phase": "grey"},
                                                            "surface": {"sea_view_angle": {"model": "fixed"}}})])
 @pytest.mark.parametrize("chunk_rows", [None, 37])
 def test_batch_equals_the_session(tmp_path, name, override, chunk_rows):

@@ -17,8 +17,11 @@ from panel.viewable import Viewer
 from scipy import ndimage
 
 from cloudsieve import codes as pl
+from cloudsieve.invert import PHASE_NAMES
 from cloudsieve.screen import edits_grid
-from .style import CLASS_COLOURS, EDIT_OUTLINE, SELECTION_LINE, channel_label
+from physics.cloud import (STATUS_BEYOND_OPAQUE, STATUS_ILL_CONDITIONED, STATUS_INVERTED, STATUS_NAMES,
+                           STATUS_NOT_CLOUDY, STATUS_OPAQUE, STATUS_TOP_ASSUMED, STATUS_WARMER_THAN_CLEAR)
+from .style import CLASS_COLOURS, CLOUD_CATEGORY_COLOURS, EDIT_OUTLINE, SELECTION_LINE, channel_label, cloud_legend_html
 
 XDIM = hv.Dimension("x", label="column")
 YDIM = hv.Dimension("y", label="row")
@@ -29,7 +32,9 @@ RASTERIZE_ABOVE = 1_000_000  # pixels
 # only where matplotlib is installed, which the dashboard does not need
 BT_CMAP = list(colorcet.palette["CET_L12"])          # light = cold, the way infrared imagery shows cloud
 DEPARTURE_CMAP = list(colorcet.palette["CET_D1A"])   # blue (colder than clear) – white – red (warmer)
-TAU_CMAP = list(colorcet.palette["CET_L17"])
+# optical depth: from light orange (τ ≈ 0.05, visible against the pale "no cloud" grey) to dark blue;
+# opaque pixels (τ a lower bound) are drawn in near-black over it
+TAU_CMAP = list(colorcet.palette["CET_L17"])[64:]
 PTOP_CMAP = list(colorcet.palette["CET_L8"])[::-1]  # high (low-pressure) tops in the brightest colour
 SIGMA_CMAP = list(colorcet.palette["CET_L20"])
 #: colour range of the departure in units of σ (the tests fire at about −3)
@@ -40,6 +45,15 @@ _OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=Fal
 _READOUT_HINT = ("<span class='cs-muted'>Large scene: the maps are rasterized; move the pointer over a map to "
                  "read the values of the pixel under it here.</span>")
 _CLASS_JS = "return %s[Math.round(value)] || '';" % list(pl.CLASS_NAMES)
+#: hover text of a cloud code (status × 4 + phase), in words
+_CLOUD_JS = ("if (!isFinite(value)) return 'no cloud'; const s = Math.floor(value / 4), p = Math.round(value - 4 * s); "
+             "const st = %s[s] || ''; const ph = %s[p] || ''; return ph && ph !== 'none' ? st + ' · ' + ph : st;"
+             % ([n.replace("_", " ") for n in STATUS_NAMES], list(PHASE_NAMES)))
+#: categories drawn over the optical-depth and top maps: (map, category) -> statuses
+_TAU_CATEGORIES = (("opaque", (STATUS_OPAQUE,)), ("beyond_opaque", (STATUS_BEYOND_OPAQUE,)),
+                   ("not_retrieved", (STATUS_WARMER_THAN_CLEAR, STATUS_ILL_CONDITIONED)))
+_TOP_CATEGORIES = (("top_assumed", (STATUS_TOP_ASSUMED,)), ("beyond_opaque", (STATUS_BEYOND_OPAQUE,)),
+                   ("not_retrieved", (STATUS_WARMER_THAN_CLEAR, STATUS_ILL_CONDITIONED)))
 
 
 #: colour ranges of larger grids come from an even sample of this many pixels per array
@@ -134,7 +148,10 @@ class MapGrid(Viewer):
         return "Screening class"
 
     def title_tau(self, version=None):
-        return "Cloud optical depth (infrared absorption)"
+        cl = self.model.result.cloud
+        ref = self.model.config["cloud"]["reference_channel"]
+        ref = ref if cl is None or ref in cl.channels else cl.channels[0]
+        return f"Cloud optical depth (absorption, {channel_label(ref)}; single layer)"
 
     def title_ptop(self, version=None):
         cl = self.model.result.cloud
@@ -164,16 +181,52 @@ class MapGrid(Viewer):
     def mask(self, version=None):
         return self._image(self.model.result.mask.astype(np.float32), hv.Dimension("class", label="class"), "class")
 
+    def _cloud_code(self):
+        """status × 4 + phase per pixel (NaN where no cloud was inverted): the hover's words."""
+        cl = self.model.result.cloud
+        code = cl.status.astype(np.float32) * 4 + cl.phase
+        return np.where(cl.status == STATUS_NOT_CLOUDY, np.nan, code).astype(np.float32)
+
+    def _cloud_image(self, arr, vdim):
+        """The value map with the cloud code as a second value (hover), single-valued when rasterized."""
+        arr = np.asarray(arr, dtype=np.float32)
+        if self.rasterized or self.model.result.cloud is None:
+            return self._image(arr, vdim)
+        return hv.Image((self._xs, self._ys, arr, self._cloud_code()), kdims=[XDIM, YDIM],
+                        vdims=[vdim, hv.Dimension("code", label="cloud")])
+
     def optical_depth(self, version=None):
         cl = self.model.result.cloud
         arr = cl.optical_depth if cl is not None else np.full(self.model.result.mask.shape, np.nan)
         arr = np.where(np.isfinite(arr), np.clip(arr, 0.01, None), np.nan)
-        return self._image(arr, hv.Dimension("tau", label="optical depth", unit="1"), "optical depth")
+        return self._cloud_image(arr, hv.Dimension("tau", label="optical depth", unit="1"))
 
     def top_pressure(self, version=None):
         cl = self.model.result.cloud
-        arr = cl.top_pressure if cl is not None else np.full(self.model.result.mask.shape, np.nan)
-        return self._image(arr, hv.Dimension("p_top", label="cloud-top pressure", unit="hPa"), "cloud-top pressure")
+        if cl is None:
+            arr = np.full(self.model.result.mask.shape, np.nan)
+        else:  # a top the channels did not fix is drawn as its category, not as a pressure
+            arr = np.where(np.isin(cl.status, (STATUS_INVERTED, STATUS_OPAQUE)), cl.top_pressure, np.nan)
+        return self._cloud_image(arr, hv.Dimension("p_top", label="cloud-top pressure", unit="hPa"))
+
+    def _categories(self, table):
+        cl = self.model.result.cloud
+        out = np.full(self.model.result.mask.shape, np.nan, np.float32)
+        if cl is not None:
+            for k, (_, statuses) in enumerate(table):
+                out[np.isin(cl.status, statuses)] = k
+        return hv.Image((self._xs, self._ys, out), kdims=[XDIM, YDIM], vdims=["category"])
+
+    def tau_categories(self, version=None):
+        return self._categories(_TAU_CATEGORIES)
+
+    def top_categories(self, version=None):
+        return self._categories(_TOP_CATEGORIES)
+
+    @staticmethod
+    def _category_opts(table):
+        return dict(cmap=[CLOUD_CATEGORY_COLOURS[name] for name, _ in table], clim=(-0.5, len(table) - 0.5),
+                    color_levels=len(table), colorbar=False, tools=[], clipping_colors={"NaN": "#00000000"})
 
     def edit_outline(self, version=None):
         edits = self.model.journal.active() if self.model.journal is not None else []
@@ -207,13 +260,21 @@ class MapGrid(Viewer):
         opts.update(extra)
         return opts
 
+    def _cloud_opts(self, vdim_label, fmt, clabel, **extra):
+        """Options of a cloud-layer map: its hover also names the status and phase in words."""
+        opts = self._opts(vdim_label, fmt, clabel, **extra)
+        if not self.rasterized:
+            opts["hover_tooltips"] = opts["hover_tooltips"] + [("cloud", "@code{custom}")]
+            opts["hover_formatters"] = {"@code": CustomJSHover(code=_CLOUD_JS)}
+        return opts
+
     def _share_ranges(self, plot, element):
         fig = plot.state
         fig.output_backend = "canvas"  # images gain nothing from WebGL, which is slow in software rendering
         fig.x_range, fig.y_range = self._x_range, self._y_range
         plot.handles["x_range"], plot.handles["y_range"] = self._x_range, self._y_range
 
-    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False):
+    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False, overlay=None):
         if self.rasterized:  # datashader (and numba) load only when a scene needs them
             from holoviews.operation.datashader import rasterize
         dmap = hv.DynamicMap(pn.bind(fn, **refs))
@@ -222,6 +283,12 @@ class MapGrid(Viewer):
         dmap = dmap.opts(**opts)
         self._attach_streams(dmap)
         layers = dmap
+        if overlay is not None:  # categories drawn over the values (cloud maps)
+            fn2, opts2 = overlay
+            over = hv.DynamicMap(pn.bind(fn2, **refs))
+            if self.rasterized:
+                over = rasterize(over, aggregator="max")
+            layers = layers * over.opts(**opts2)
         if outline:
             rim = hv.DynamicMap(pn.bind(self.edit_outline, version=self.model.param.version))
             if self.rasterized:
@@ -248,12 +315,12 @@ class MapGrid(Viewer):
                 colorbar_opts={"ticker": FixedTicker(ticks=[0, 1, 2, 3]), "major_label_overrides": class_ticks,
                                "major_label_text_font_size": "11px"}),
              {"aggregator": "first", "outline": True}),
-            (self.optical_depth, self.title_tau, {"version": ver}, self._opts(
+            (self.optical_depth, self.title_tau, {"version": ver}, self._cloud_opts(
                 "optical depth", "@image{0.00}", "optical depth [1]", cmap=TAU_CMAP, logz=True,
-                clim=(0.05, 20.0)), {}),
-            (self.top_pressure, self.title_ptop, {"version": ver}, self._opts(
+                clim=(0.05, 20.0)), {"overlay": (self.tau_categories, self._category_opts(_TAU_CATEGORIES))}),
+            (self.top_pressure, self.title_ptop, {"version": ver}, self._cloud_opts(
                 "cloud-top pressure", "@image{0} hPa", "cloud-top pressure [hPa]", cmap=PTOP_CMAP,
-                clim=self._ptop_clim), {}),
+                clim=self._ptop_clim), {"overlay": (self.top_categories, self._category_opts(_TOP_CATEGORIES))}),
             (self.sigma, self.title_sigma, {"channel": ch}, self._opts(
                 "σ", "@image{0.00} K", "σ of the departure [K]", cmap=SIGMA_CMAP, clim=self._sigma_clim), {}),
             (self.normalised, self.title_z, {"channel": ch, "version": ver}, self._opts(
@@ -269,7 +336,12 @@ class MapGrid(Viewer):
             title = pn.pane.HTML(pn.bind(lambda text: f"<b style='font-size:13px'>{text}</b>",
                                          pn.bind(title_fn, **refs)), margin=(8, 10, 0, 10),
                                  css_classes=["cs-map-title"])
-            cells.append(pn.Column(title, pane, margin=0, css_classes=[f"cs-map-{k}"]))
+            parts = [title, pane]
+            if fn in (self.optical_depth, self.top_pressure):
+                table = _TAU_CATEGORIES if fn == self.optical_depth else _TOP_CATEGORIES
+                parts.append(pn.pane.HTML(cloud_legend_html([name for name, _ in table], NAN_COLOUR),
+                                          margin=(0, 10), width=self._fw + 150))
+            cells.append(pn.Column(*parts, margin=0, css_classes=[f"cs-map-{k}"]))
         return pn.GridBox(*cells, ncols=2, css_classes=["cs-maps"])
 
     # ------------------------------------------------------------------ interaction
@@ -305,6 +377,11 @@ class MapGrid(Viewer):
         res = m.result
         tau = res.cloud.optical_depth[i, j] if res.cloud is not None else np.nan
         ptop = res.cloud.top_pressure[i, j] if res.cloud is not None else np.nan
+        cloud = ""
+        if res.cloud is not None and res.cloud.status[i, j] != STATUS_NOT_CLOUDY:
+            phase = PHASE_NAMES[int(res.cloud.phase[i, j])]
+            cloud = f" ({STATUS_NAMES[int(res.cloud.status[i, j])].replace('_', ' ')}" + (
+                f", {phase})" if phase != "none" else ")")
 
         def f(v, fmt):
             return format(v, fmt) if np.isfinite(v) else "–"
@@ -314,4 +391,4 @@ class MapGrid(Viewer):
             f'{channel_label(ch)} observed {f(m.scene.data[f"bt_{ch}"].values[i, j], ".2f")} K, '
             f'clear {f(m.sim.bt_clear[k, i, j], ".2f")} K, departure {f(res.departure[ch][i, j], "+.2f")} K · '
             f'class {pl.CLASS_NAMES[int(res.mask[i, j])]} · τ {f(tau, ".2f")} · '
-            f'top {f(ptop, ".0f")} hPa</span>')
+            f'top {f(ptop, ".0f")} hPa{cloud}</span>')

@@ -91,3 +91,32 @@ def legend_html():
               f'<span style="display:inline-block;width:12px;height:12px;border:2px solid {EDIT_OUTLINE};'
               f'margin-right:5px"></span>analyst edit</span>')
     return f'<div style="font-size:13px;line-height:1.8">{items}</div>'
+
+
+#: Colours of the cloud-layer categories drawn over the optical-depth and top maps (ours). Pixels
+#: with no cloud to invert (screened clear) stay in the maps' pale NaN grey.
+CLOUD_CATEGORY_COLOURS = {
+    "opaque": "#141414",            # τ map: opaque, τ only a lower bound (beyond the palette's dark end)
+    "top_assumed": "#1f9e89",       # top map: the channels could not fix the top
+    "beyond_opaque": "#7a4a1d",     # colder than an opaque cloud at the highest allowed top
+    "not_retrieved": "#a3abb5",     # warmer than clear, or opaque and clear radiances too close
+}
+
+_CATEGORY_WORDS = {
+    "opaque": "opaque: τ ≥ the lower bound shown on hover",
+    "top_assumed": "top not fixed by the channels: τ at the assumed top",
+    "beyond_opaque": "colder than an opaque cloud at the highest allowed top",
+    "not_retrieved": "flagged, but no cloud signal to invert",
+}
+
+
+def cloud_legend_html(categories, no_cloud_colour):
+    """An HTML legend of the categories drawn over a cloud-layer map, plus "no cloud"."""
+    def swatch(colour, text):
+        return (f'<span style="display:inline-flex;align-items:center;margin-right:12px">'
+                f'<span style="display:inline-block;width:12px;height:12px;background:{colour};border:1px solid #777;'
+                f'border-radius:2px;margin-right:4px"></span>{text}</span>')
+
+    items = "".join(swatch(CLOUD_CATEGORY_COLOURS[c], _CATEGORY_WORDS[c]) for c in categories)
+    items += swatch(no_cloud_colour, "no cloud (screened clear)")
+    return f'<div class="cs-cloud-legend" style="font-size:12px;line-height:1.6">{items}</div>'
