@@ -2,7 +2,7 @@
 
 A scene is cut into blocks of grid rows. :func:`process_block` does one block start to
 finish — the clear sky of its columns (:func:`simulate.simulate_columns`), the screening with
-the rows the texture test needs on either side (:func:`screen.screen_arrays`), the grey-cloud
+the rows the texture test needs on either side (:func:`screen.screen_arrays`), the cloud
 layer of its non-clear pixels, whose columns are simulated again with their level data a chunk
 at a time (:func:`invert.invert_pixels`), and the sums of the bias fit — and the same task
 turns its block into the output variables, deflated as the NetCDF file stores them

@@ -27,7 +27,7 @@ For every pixel of a scene table it simulates the clear-sky brightness temperatu
 the background state (skin and air temperature, water vapour, view angle, emissivity) by
 solving the infrared radiative transfer equation, maps observed − clear departures, runs
 physically based screening tests, classes each pixel clear / marginal / cloud / no_data,
-and inverts the optical depth of a single grey cloud layer where the pixel is not clear.
+and inverts the top and optical depth of a single cloud layer (ice, water or grey optics) where the pixel is not clear.
 
 Typical use:
   cloudsieve check  scene.csv                      validate a scene, list every problem
@@ -70,7 +70,7 @@ def build_parser():
 
     s = sub.add_parser("screen", parents=[debug], help="screen scenes: mask, test margins, departures, cloud layer",
                        description="Screen scene(s) and write the mask, test bits and margins, departures, "
-                                   "clear-sky brightness temperatures and the grey-cloud layer.",
+                                   "clear-sky brightness temperatures and the cloud layer.",
                        formatter_class=argparse.RawDescriptionHelpFormatter,
                        epilog="With several scenes (or a quoted pattern such as 'DIR/*.nc') --out is a folder; "
                               "each scene gives <name>_mask.<ext> there.\nQA edits recorded in the dashboard "

@@ -45,7 +45,9 @@ class PixelInspector(Viewer):
                     hv.DynamicMap(pn.bind(self.curve, pixel=self.focus.param.pixel, version=self.model.param.version)),
                     linked_axes=False, css_classes=["cs-curve"]),
                 pn.pane.HTML("<div class='cs-muted'>Solid: modelled top-of-atmosphere brightness temperature of a "
-                             "single grey cloud layer; dashed: observed, in the same colour per channel.</div>",
+                             "single cloud layer at the retrieved top with the absorption ratios β of the retrieved phase (grey "
+                             "where none), against its optical depth in the reference channel; dashed: observed, in "
+                             "the same colour per channel.</div>",
                              margin=(0, 10))])
 
     def _pixel_info(self, pixel):
@@ -97,18 +99,31 @@ class PixelInspector(Viewer):
             tau_text = f"≥ {tau:.2f} (lower bound)"
         else:
             tau_text = f"{tau:.2f} ± {stau:.2f}"
-        out += ["", f"**Cloud retrieval** · status **{cl['status'].replace('_', ' ')}**", "",
+        sp = cl["top_pressure_sigma"]
+        if cl["top_pressure"] is None:
+            top_text = "–"
+        elif cl["status"] == "top_assumed":
+            top_text = f"{cl['top_pressure']:.0f} hPa (assumed: the channels could not fix it)"
+        elif sp is None or not np.isfinite(sp):
+            top_text = f"{cl['top_pressure']:.0f} hPa"
+        else:
+            top_text = f"{cl['top_pressure']:.0f} ± {sp:.0f} hPa"
+        beta = cl.get("beta")
+        beta_text = ", ".join(f"{channel_label(c)} {b:.2f}" for c, b in beta.items()) if beta else "–"
+        out += ["", f"**Cloud retrieval** · status **{cl['status'].replace('_', ' ')}**: {cl['status_words']}", "",
                 "| quantity | value |", "|---|---|",
                 f"| optical depth (absorption) | {tau_text} |",
                 f"| extinction optical depth | {_f(cl['extinction_optical_depth'], '.2f')} |",
-                f"| top pressure | {_f(cl['top_pressure'], '.0f')} hPa |",
-                f"| top temperature | {_f(cl['top_temperature'], '.1f')} K |"]
+                f"| top pressure | {top_text} |",
+                f"| top temperature | {_f(cl['top_temperature'], '.1f')} K |",
+                f"| phase | {cl['phase_words']} |",
+                f"| absorption ratio β = τ/τ(reference) | {beta_text} |"]
         for ch, e in cl["emissivity"].items():
             value = _f(e, '.3f')
             if e is not None and np.isfinite(e) and not -5e-4 <= e <= 1.0 + 5e-4:  # beyond the shown digits
-                # the raw radiance ratio; outside [0, 1] the grey single-layer model does not hold
-                # for this channel (noise, a second layer, or non-grey ice at 3.9 µm) — as exported
-                value = f"{min(max(e, 0.0), 1.0):.3f} (ratio {e:.3f}: outside the grey-cloud model)"
+                # the raw radiance ratio; outside [0, 1] the single-layer model does not hold for
+                # this channel (noise, a second layer, or other optics at 3.9 µm) — as exported
+                value = f"{min(max(e, 0.0), 1.0):.3f} (ratio {e:.3f}: outside the single-layer model)"
             elif e is not None and np.isfinite(e):
                 value = _f(min(max(e, 0.0), 1.0), '.3f')
             out.append(f"| emissivity {channel_label(ch)} | {value} |")
