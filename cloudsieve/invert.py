@@ -205,8 +205,10 @@ def _where(cond, a, b):
 def choose_phase(ice, water, night_contrast, config):
     """Per pixel, True where the ice retrieval is taken over the water one (``[cloud] phase = "auto"``).
 
-    Rules, in order: a top colder than ``ice_below`` in the ice retrieval → ice; a top warmer than
-    ``water_above`` in the water retrieval → water (both or neither: go on); at night, a 3.9 µm
+    Rules, in order: a top colder than ``ice_below`` in the ice retrieval → ice (no water cloud is
+    that cold: droplets freeze homogeneously near 235 K, common practice; :func:`invert_columns`
+    then skips the water retrieval); a top warmer than ``water_above`` in the water retrieval →
+    water (both or neither: go on); at night, a 3.9 µm
     departure below the 11 µm one by more than ``night_water_contrast`` → water (droplets absorb
     less at 3.9 µm than at 11 µm, so a water cloud looks colder there at night: common practice
     of night fog and low-cloud detection); else the phase whose channels fit better (lower χ²);
@@ -277,10 +279,20 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
         chi_g = np.where(np.isfinite(grey.chi2), grey.chi2, np.inf)
         large = chi_g < chi_i
         ice = _where(large, grey, ice)
-        water = _retrieve("water", *args)
-        nc = np.full(n_blk, np.nan) if night_contrast is None else night_contrast
-        take_ice = choose_phase(ice, water, nc, config)
-        res = _where(take_ice, ice, water)
+        # no water cloud is colder than ice_below: the water retrieval runs only where the ice top is warmer
+        take_ice = ice.top_temperature <= cc["ice_below"]
+        rest = np.flatnonzero(~take_ice)
+        res = ice
+        if rest.size:
+            part = lambda a: a[rest] if isinstance(a, np.ndarray) and a.shape[:1] == (n_blk,) else a  # noqa: E731
+            water = _retrieve("water", *(part(a) for a in args))
+            ice_rest = type(ice)(*(f[rest] for f in ice))
+            nc = np.full(rest.size, np.nan) if night_contrast is None else np.asarray(night_contrast)[rest]
+            take_ice[rest] = choose_phase(ice_rest, water, nc, config)
+            chosen = _where(take_ice[rest], ice_rest, water)
+            res = type(ice)(*(f.copy() for f in ice))
+            for f, c in zip(res, chosen):
+                f[rest] = c
         phase = np.where(take_ice, np.where(large, PHASE_GREY, PHASE_ICE), PHASE_WATER).astype(np.int8)
     else:
         res = _retrieve(cc["phase"], *args)
