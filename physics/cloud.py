@@ -210,7 +210,7 @@ def _take(a, i):
 
 
 def consistent_top(signal, clear_to_opaque, level_pressure, sigma_observed, clear_covariance, beta, allowed,
-                   reference=0, noise_sigmas=2.0):
+                   reference=0, noise_sigmas=2.0, compiled=None):
     r"""Cloud-top pressure at which every channel's cloud signal fits one cloud layer (χ² search).
 
     Parameters
@@ -234,6 +234,9 @@ def consistent_top(signal, clear_to_opaque, level_pressure, sigma_observed, clea
         Index of the reference channel (11 µm in practice).
     noise_sigmas : float
         How many σ count as "within the uncertainty" in the rejections below. [1]
+    compiled : bool, optional
+        Use the compiled loop (physics.cloud_kernel, the same computation pixel by pixel); None:
+        where ``physics.fused.enabled()``. False: this numpy reference.
 
     Returns
     -------
@@ -277,6 +280,24 @@ def consistent_top(signal, clear_to_opaque, level_pressure, sigma_observed, clea
     s_obs = np.asarray(sigma_observed, dtype=float)
     cov = np.asarray(clear_covariance, dtype=float)
     beta = np.broadcast_to(np.asarray(beta, dtype=float), s.shape)
+    if compiled is None:
+        from . import fused
+
+        compiled = fused.enabled()
+    if compiled:
+        from . import cloud_kernel, fused
+
+        lead = s.shape[:-1]
+        n_lev, n_ch = d.shape[-2:]
+        flat = lambda a, tail: np.broadcast_to(a, lead + tail).reshape((-1,) + tail)  # noqa: E731
+        try:
+            out = cloud_kernel.consistent_top(
+                flat(s, (n_ch,)), flat(d, (n_lev, n_ch)), flat(lp, (n_lev,)), flat(s_obs, (n_ch,)),
+                flat(cov, (n_ch, n_ch)), flat(beta, (n_ch,)), flat(np.asarray(allowed, bool), (n_lev,)),
+                reference, noise_sigmas, REFINE_STEPS)
+            return tuple(o.reshape(lead + o.shape[1:]) for o in out)
+        except fused.Unavailable:
+            pass  # warned once; the numpy reference below
     r = reference
     var_clr_r = cov[..., r, r]
     s_sig_r = np.sqrt(s_obs[..., r] ** 2 + var_clr_r)[..., None]
@@ -390,6 +411,7 @@ def _misfit(s, d, s_obs, cov, beta, r):
             c_r = np.where(ok[..., None, None], c_r, np.eye(m))
             res_v = np.where(ok[..., None], res_v, 0.0)
             chi2 = np.einsum("...i,...i->...", res_v, np.linalg.solve(c_r, res_v[..., None])[..., 0])
+            chi2 = np.where(ok, chi2, np.inf)
     ok = np.isfinite(chi2) & (chi2 >= 0)
     return np.where(ok, chi2, np.inf), eps_r, s_eps_r
 

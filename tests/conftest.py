@@ -28,6 +28,9 @@ def pytest_sessionstart(session):
     from physics import fused
 
     fused.warm_up()
+    from physics import cloud_kernel
+
+    cloud_kernel.warm_up()
 
 
 def pytest_collection_modifyitems(config, items):
