@@ -329,8 +329,9 @@ def inversion_bias(bias):
     if not bias:
         return None
 
-    def line(f):
-        return {"a": float(f["a"]), "b": float(f["b"])}
+    def line(f):  # rounded to 0.1 mK (and 1 µK per kg m⁻²): a fit summed in another order (Dask
+        # workers) gives the same lines, so no pixel's status can flip on rounding noise
+        return {"a": round(float(f["a"]), 4), "b": round(float(f["b"]), 6)}
 
     return {c: dict(line(f), surfaces={k: line(v) for k, v in f.get("surfaces", {}).items()}) for c, f in bias.items()}
 

@@ -303,7 +303,7 @@ def test_pixel_info_outside_the_grid_is_a_clear_error(model):
         model.pixel_info(10_000, 0)
 
 
-def test_inspector_text_explains_an_emissivity_outside_the_grey_model(model):
+def test_inspector_text_explains_an_emissivity_outside_the_single_layer_model(model):
     # the raw radiance ratio can leave [0, 1] (noise, a second layer, non-grey ice); the
     # inspector shows the clipped value, as exported, and says why
     from dashboard.views import Notices, PixelInspector
@@ -316,7 +316,7 @@ def test_inspector_text_explains_an_emissivity_outside_the_grey_model(model):
     y, x = (int(v) for v in outside[0])
     inspector = PixelInspector(model, Focus(model.result.mask.shape), Notices())
     text = inspector.text((y, x))
-    assert "outside the grey-cloud model" in text
+    assert "outside the single-layer model" in text
 
 
 def test_changing_one_setting_leaves_a_configured_top_alone(scene_path, tmp_path):
