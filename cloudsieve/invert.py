@@ -9,6 +9,7 @@ rows), inverts them and writes the results into a :class:`CloudLayer`. The dashb
 """
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
+from typing import NamedTuple
 
 import numpy as np
 
@@ -188,18 +189,43 @@ def inversion_notes(inv, config):
     return notes
 
 
-def _retrieve(phase, obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, corr):
+class _Candidate(NamedTuple):
+    """A cloud top of one phase's optics, with what the phase choice reads."""
+
+    top: pcloud.CloudTop
+    top_temperature: np.ndarray  # [K]
+    chi2: np.ndarray  # [1]
+
+
+def _top(phase, obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, corr):
     cc = config["cloud"]
-    return pcloud.invert_cloud(
-        obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(obs.shape[0], bool), beta=phase_beta(phase, inv, config),
-        method=cc["top"], fixed_pressure=fixed, reference=reference_index(inv, config), top_limit=top_limit,
-        assumed_pressure=cc["assumed_top_pressure"], eps_max=cc["eps_max"],
+    top = pcloud.cloud_top(
+        obs, clr, opq, lp, s_obs, s_clr, beta=phase_beta(phase, inv, config), method=cc["top"], fixed_pressure=fixed,
+        reference=reference_index(inv, config), top_limit=top_limit, assumed_pressure=cc["assumed_top_pressure"],
         max_sigma_pressure=cc["max_sigma_pressure"], clear_correlation=corr)
+    return _Candidate(top, pcloud.interpolate_levels(lp, lt, top.pressure), top.chi2)
 
 
 def _where(cond, a, b):
-    """Field-wise choice between two CloudRetrievals of the same pixels."""
+    """Field-wise choice between two candidates (or CloudRetrievals) of the same pixels."""
+    if isinstance(a, _Candidate):
+        return _Candidate(_where(cond, a.top, b.top), np.where(cond, a.top_temperature, b.top_temperature),
+                          np.where(cond, a.chi2, b.chi2))
     return type(a)(*(np.where(cond.reshape(cond.shape + (1,) * (x.ndim - 1)), x, y) for x, y in zip(a, b)))
+
+
+def _take_rows(c, rows):
+    return _Candidate(pcloud.CloudTop(*(f[rows] for f in c.top)), c.top_temperature[rows], c.chi2[rows])
+
+
+def _put_rows(c, rows, part):
+    """A copy of candidate ``c`` with ``rows`` replaced by ``part``."""
+    top = pcloud.CloudTop(*(f.copy() for f in c.top))
+    for f, g in zip(top, part.top):
+        f[rows] = g
+    tt, chi = c.top_temperature.copy(), c.chi2.copy()
+    tt[rows], chi[rows] = part.top_temperature, part.chi2
+    return _Candidate(top, tt, chi)
 
 
 def choose_phase(ice, water, night_contrast, config):
@@ -272,31 +298,40 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     top_limit = np.take_along_axis(lp, k_trop[:, None], axis=-1)[:, 0]
     fixed = _fixed_top(cc, lp, lt, n_blk) if cc["top"] == "fixed" else None
     args = (obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, clear_correlation)
+    n_inv = len(inv)
     if cc["phase"] == "auto":
+        # the tops of each phase's optics first (cheap), then the optics at the chosen top once
         # ice of the configured optics, or large crystals (β → 1, geometric-optics limit): the better fit
-        ice, grey = _retrieve("ice", *args), _retrieve("grey", *args)
+        ice, grey = _top("ice", *args), _top("grey", *args)
         chi_i = np.where(np.isfinite(ice.chi2), ice.chi2, np.inf)
         chi_g = np.where(np.isfinite(grey.chi2), grey.chi2, np.inf)
         large = chi_g < chi_i
         ice = _where(large, grey, ice)
-        # no water cloud is colder than ice_below: the water retrieval runs only where the ice top is warmer
+        phase = np.where(large, PHASE_GREY, PHASE_ICE).astype(np.int8)
+        # no water cloud is colder than ice_below: the water top is sought only where the ice top is warmer
         take_ice = ice.top_temperature <= cc["ice_below"]
         rest = np.flatnonzero(~take_ice)
-        res = ice
+        chosen = ice
         if rest.size:
             part = lambda a: a[rest] if isinstance(a, np.ndarray) and a.shape[:1] == (n_blk,) else a  # noqa: E731
-            water = _retrieve("water", *(part(a) for a in args))
-            ice_rest = type(ice)(*(f[rest] for f in ice))
+            water = _top("water", *(part(a) for a in args))
+            ice_rest = _take_rows(ice, rest)
             nc = np.full(rest.size, np.nan) if night_contrast is None else np.asarray(night_contrast)[rest]
             take_ice[rest] = choose_phase(ice_rest, water, nc, config)
-            chosen = _where(take_ice[rest], ice_rest, water)
-            res = type(ice)(*(f.copy() for f in ice))
-            for f, c in zip(res, chosen):
-                f[rest] = c
-        phase = np.where(take_ice, np.where(large, PHASE_GREY, PHASE_ICE), PHASE_WATER).astype(np.int8)
+            chosen = _put_rows(ice, rest, _where(take_ice[rest], ice_rest, water))
+            phase[rest] = np.where(take_ice[rest], phase[rest], PHASE_WATER)
+        table = {code: phase_beta(name, inv, config) for code, name in
+                 ((PHASE_ICE, "ice"), (PHASE_GREY, "grey"), (PHASE_WATER, "water"))}
+        beta = np.empty((n_blk, n_inv))
+        for code, b in table.items():
+            beta[phase == code] = b
+        top = chosen.top
     else:
-        res = _retrieve(cc["phase"], *args)
+        beta = phase_beta(cc["phase"], inv, config)
+        top = _top(cc["phase"], *args).top
         phase = np.full(n_blk, PHASE_NAMES.index(cc["phase"]), np.int8)
+    res = pcloud.cloud_at_top(obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(n_blk, bool), top, beta=beta,
+                              reference=reference_index(inv, config), eps_max=cc["eps_max"])
     phase = np.where(np.isfinite(res.optical_depth) | (res.status == pcloud.STATUS_BEYOND_OPAQUE), phase,
                      PHASE_NONE).astype(np.int8)
     # similarity-relation extinction with the phase's optics (grey: interpolated by top temperature)

@@ -550,15 +550,38 @@ def invert_cloud(
     τ is not given), ε_ref ≥ eps_max → ``opaque`` (τ is a lower bound, its σ infinite),
     below −noise → ``warmer_than_clear``.
     """
+    top = cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, sigma_clear, beta, method,
+                    fixed_pressure, reference, top_limit, assumed_pressure, noise_sigmas, max_sigma_pressure,
+                    clear_correlation)
+    return cloud_at_top(observed, clear, opaque_levels, level_pressure, level_temperature, mu, sigma_observed,
+                        sigma_clear, cloudy, top, beta, reference, eps_max, noise_sigmas)
+
+
+class CloudTop(NamedTuple):
+    """A cloud-top choice per pixel (:func:`cloud_top`).
+
+    pressure : (...) [hPa], within the level range
+    sigma : (...) its 1-σ [hPa] (0 for a fixed top, inf for an assumed one)
+    chi2 : (...) misfit of the channels at a consistent top (NaN otherwise) [1]
+    assumed : (...) bool, the channels could not fix the top (status ``top_assumed``)
+    """
+
+    pressure: np.ndarray
+    sigma: np.ndarray
+    chi2: np.ndarray
+    assumed: np.ndarray
+
+
+def cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, sigma_clear, beta=None,
+              method="consistent", fixed_pressure=None, reference=0, top_limit=None, assumed_pressure=350.0,
+              noise_sigmas=2.0, max_sigma_pressure=100.0, clear_correlation=None):
+    """The cloud-top choice of :func:`invert_cloud` (same parameters), as a :class:`CloudTop`."""
     obs = np.asarray(observed, dtype=float)
     clr = np.asarray(clear, dtype=float)
     lo = np.asarray(opaque_levels, dtype=float)
     lp = np.asarray(level_pressure, dtype=float)
-    lt = np.asarray(level_temperature, dtype=float)
-    mu = np.asarray(mu, dtype=float)
     s_obs = np.asarray(sigma_observed, dtype=float)
     s_clr = np.asarray(sigma_clear, dtype=float)
-    cloudy = np.asarray(cloudy, dtype=bool)
     shape = obs.shape[:-1]
     n_ch = obs.shape[-1]
     beta = np.broadcast_to(np.ones(n_ch) if beta is None else np.asarray(beta, dtype=float), obs.shape)
@@ -593,6 +616,27 @@ def invert_cloud(
     else:
         raise ValueError(f"unknown cloud-top method {method!r}; use 'fixed', 'opaque' or 'consistent'")
     p_top = np.clip(p_top, lp[..., -1], lp[..., 0])
+    return CloudTop(p_top, sigma_p, chi2, assumed)
+
+
+def cloud_at_top(observed, clear, opaque_levels, level_pressure, level_temperature, mu, sigma_observed, sigma_clear,
+                 cloudy, top, beta=None, reference=0, eps_max=0.99, noise_sigmas=2.0):
+    """Emissivities, optical depth and status at a chosen :class:`CloudTop` (:func:`invert_cloud`'s
+    second half; parameters as there, ``beta`` may differ per pixel)."""
+    obs = np.asarray(observed, dtype=float)
+    clr = np.asarray(clear, dtype=float)
+    lo = np.asarray(opaque_levels, dtype=float)
+    lp = np.asarray(level_pressure, dtype=float)
+    lt = np.asarray(level_temperature, dtype=float)
+    mu = np.asarray(mu, dtype=float)
+    s_obs = np.asarray(sigma_observed, dtype=float)
+    s_clr = np.asarray(sigma_clear, dtype=float)
+    cloudy = np.asarray(cloudy, dtype=bool)
+    shape = obs.shape[:-1]
+    n_ch = obs.shape[-1]
+    beta = np.broadcast_to(np.ones(n_ch) if beta is None else np.asarray(beta, dtype=float), obs.shape)
+    ref = reference
+    p_top, sigma_p, chi2, assumed = (np.asarray(a) for a in top)
 
     def channel_optics(p):
         l_opq = interpolate_levels(lp, lo, p)
