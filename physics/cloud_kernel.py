@@ -21,9 +21,7 @@ _INF = math.inf
 
 
 if fused.numba is not None:
-    prange = fused.numba.prange
-
-    @fused._njit(fastmath=False)
+    @fused._njit(fastmath=False, error_model="numpy", nogil=True)
     def _misfit(s, dvec, s_obs, cov, beta, r, others, out, res, tc, g, h, cr):
         """χ² of the other channels at D = dvec (n_ch,); out[0] = χ², out[1] = ε_ref, out[2] = σ(ε_ref)."""
         var_clr_r = cov[r, r]
@@ -41,12 +39,20 @@ if fused.numba is not None:
         if m == 0:
             out[0] = 0.0
             return
+        # x**b as exp(b ln x) with the logarithms shared by the channels (x = 0 gives 0, as x**b)
+        l_t = math.log(trans) if trans > 0 else -_INF
+        l_hi = math.log(t_hi) if t_hi > 0 else -_INF
+        l_lo = math.log(t_lo) if t_lo > 0 else -_INF
         for i in range(m):
             c = others[i]
             b = beta[c]
-            t_c = trans ** b
             d_c = dvec[c]
-            secant = (t_hi ** b - t_lo ** b) / span if span > 0 else b
+            if b == 1.0:  # grey channel
+                t_c = trans
+                secant = 1.0
+            else:
+                t_c = math.exp(b * l_t)
+                secant = (math.exp(b * l_hi) - math.exp(b * l_lo)) / span if span > 0 else b
             res[i] = s[c] - (1.0 - t_c) * d_c
             tc[i] = t_c
             g[i] = secant * d_c * trans / d_r
@@ -85,11 +91,11 @@ if fused.numba is not None:
             chi2 = _INF
         out[0] = chi2
 
-    @fused._njit(parallel=True, fastmath=False)
+    @fused._njit(parallel=True, fastmath=False, error_model="numpy", nogil=True)
     def _consistent_top(s, d, lp, s_obs, cov, beta, allowed, r, others, noise_sigmas, steps,
                         p_out, sp_out, chi_out, usable_out):
         n, n_lev, n_ch = d.shape
-        for i in prange(n):
+        for i in fused.numba.prange(n):
             x = np.empty(n_lev)
             chi = np.empty(n_lev)
             tmp = np.empty(3)
