@@ -339,3 +339,25 @@ def test_lasso_selection_marks_the_pixels_inside(served_app, page):
     entry = read_journal(journal)[0]
     rows, cols = np.divmod(np.asarray(entry["index"]), 300)
     assert entry["count"] == n and np.all(rows <= cols + 1)  # inside the triangle above the diagonal
+
+
+_COLOUR_RANGE = """(title) => { const bars = [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure')
+    .map(v => v.model.right.find(r => r.type === 'ColorBar')).filter(c => c && c.title === title);
+    return bars.length ? [bars[0].color_mapper.low, bars[0].color_mapper.high] : null; }"""
+
+
+@pytest.mark.ui
+def test_departure_map_is_centred_on_zero_with_a_range_control(served_app, page, artifacts):
+    """The departure map opens at ±5 K (a few-K cirrus or fog departure shows), a range control
+    widens it; observed and clear-sky maps share one colour range (one colour, one temperature)."""
+    open_dashboard(page, served_app.url)
+    assert page.evaluate(_COLOUR_RANGE, "observed − clear [K]") == [-5, 5]
+    obs = page.evaluate(_COLOUR_RANGE, "observed BT [K]")
+    assert obs is not None and obs == page.evaluate(_COLOUR_RANGE, "clear-sky BT [K]")
+    page.locator(".cs-departure-range").first.scroll_into_view_if_needed()
+    screenshot(page, artifacts, "ui_departure_5K.png")
+    box = page.locator(".cs-departure-range input").first
+    box.fill("12")
+    box.press("Enter")
+    page.wait_for_function(f"() => {{ const r = ({_COLOUR_RANGE})('observed − clear [K]'); "
+                           "return r && r[1] === 12 && r[0] === -12; }", timeout=TIMEOUT, polling=200)

@@ -39,6 +39,8 @@ PTOP_CMAP = list(colorcet.palette["CET_L8"])[::-1]  # high (low-pressure) tops i
 SIGMA_CMAP = list(colorcet.palette["CET_L20"])
 #: colour range of the departure in units of σ (the tests fire at about −3)
 Z_CLIM = (-6.0, 6.0)
+#: default colour range of the departure maps, ± [K] (a range control changes it)
+DEPARTURE_RANGE = 5.0
 
 _OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=False, tools=[],
                      clipping_colors={"NaN": "#00000000"})
@@ -92,14 +94,16 @@ class MapGrid(Viewer):
         self._fw = frame_width
         self._fh = max(120, int(round(frame_width * ny / nx)))
         sim = model.sim
-        # colour ranges are fixed per scene (so retuning never rescales a map), over all channels
-        self._obs_clim = _robust_range([ds[f"bt_{c}"].values for c in sim.channels], 0.5, 99.5)
-        self._clear_clim = _robust_range([sim.bt_clear[i] for i in range(len(sim.channels))], 0.5, 99.5)
-        step = max(1, (ny * nx) // RANGE_SAMPLE)
-        raw = [np.abs(ds[f"bt_{c}"].values.reshape(-1)[::step] - sim.bt_clear[i].reshape(-1)[::step])
-               for i, c in enumerate(sim.channels)]
-        lim = max(2.0, _robust_range(raw, 0, 99.0)[1])
-        self._dep_clim = (-lim, lim)
+        # colour ranges are fixed per scene (so retuning never rescales a map), over all channels;
+        # observed and clear sky share one range, so one colour is one temperature on both
+        obs = _robust_range([ds[f"bt_{c}"].values for c in sim.channels], 0.5, 99.5)
+        clr = _robust_range([sim.bt_clear[i] for i in range(len(sim.channels))], 0.5, 99.5)
+        self._bt_clim = (min(obs[0], clr[0]), max(obs[1], clr[1]))
+        # departures centred on 0, ±DEPARTURE_RANGE K by default (thin cirrus, fog and marginal pixels
+        # are a few K): the analyst widens it for the thick cloud's tens of K
+        self.departure_range = pn.widgets.FloatInput(
+            label="departure colour range ± [K]", value=DEPARTURE_RANGE, start=0.5, end=150.0, step=0.5, width=190,
+            css_classes=["cs-departure-range"], margin=(0, 10))
         self._sigma_clim = (0.0, max(0.5, _robust_range([sim.sigma[c] for c in sim.channels], 0, 99.5)[1]))
         p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
         self._ptop_clim = (100.0, max(1000.0, float(np.nanmax(p_surf)) if np.isfinite(p_surf).any() else 1013.25))
@@ -117,7 +121,7 @@ class MapGrid(Viewer):
             'narrow window) shows its numbers. For QA edits pick the box or lasso tool in a map\'s toolbar '
             'and drag over the map; the selection is outlined (dashed) on the class map.</span>',
             margin=(0, 10))
-        return pn.Column(hint, self._readout, self._layout, width=2 * (self._fw + 190))
+        return pn.Column(hint, pn.Row(self.departure_range, self._readout), self._layout, width=2 * (self._fw + 190))
 
     # ------------------------------------------------------------------ elements
     def _image(self, arr, vdim, _what=None):
@@ -274,13 +278,15 @@ class MapGrid(Viewer):
         fig.x_range, fig.y_range = self._x_range, self._y_range
         plot.handles["x_range"], plot.handles["y_range"] = self._x_range, self._y_range
 
-    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False, overlay=None):
+    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False, overlay=None, dynamic=None):
         if self.rasterized:  # datashader (and numba) load only when a scene needs them
             from holoviews.operation.datashader import rasterize
         dmap = hv.DynamicMap(pn.bind(fn, **refs))
         if self.rasterized:
             dmap = rasterize(dmap, aggregator=aggregator, precompute=True)
         dmap = dmap.opts(**opts)
+        if dynamic:  # options that follow a widget (the departure colour range)
+            dmap = dmap.apply.opts(**dynamic)
         self._attach_streams(dmap)
         layers = dmap
         if overlay is not None:  # categories drawn over the values (cloud maps)
@@ -303,12 +309,14 @@ class MapGrid(Viewer):
         class_ticks = {k: name.replace("_", " ") for k, name in enumerate(pl.CLASS_NAMES)}
         specs = [
             (self.observed, self.title_observed, {"channel": ch}, self._opts(
-                "observed BT", "@image{0.00} K", "observed BT [K]", cmap=BT_CMAP, clim=self._obs_clim), {}),
+                "observed BT", "@image{0.00} K", "observed BT [K]", cmap=BT_CMAP, clim=self._bt_clim), {}),
             (self.clear_sky, self.title_clear, {"channel": ch}, self._opts(
-                "clear-sky BT", "@image{0.00} K", "clear-sky BT [K]", cmap=BT_CMAP, clim=self._clear_clim), {}),
+                "clear-sky BT", "@image{0.00} K", "clear-sky BT [K]", cmap=BT_CMAP, clim=self._bt_clim), {}),
             (self.departure, self.title_departure, {"channel": ch, "version": ver}, self._opts(
                 "observed − clear", "@image{+0.00} K", "observed − clear [K]", cmap=DEPARTURE_CMAP,
-                clim=self._dep_clim, symmetric=True), {}),
+                symmetric=True),
+             {"dynamic": {"clim": pn.bind(lambda v: (-abs(v or DEPARTURE_RANGE), abs(v or DEPARTURE_RANGE)),
+                                          self.departure_range)}}),
             (self.mask, self.title_mask, {"version": ver}, self._opts(
                 "class", "@image{custom}", "class", cmap=list(CLASS_COLOURS.values()), clim=(-0.5, 3.5),
                 color_levels=4, hover_formatters={"@image": CustomJSHover(code=_CLASS_JS)},
