@@ -27,7 +27,7 @@ from physics.cloud import STATUS_NAMES, STATUS_WORDS
 
 from . import CAUTION, __version__
 from .codes import CLASS_NAMES
-from .config import config_json
+from .config import config_json, to_toml
 from .errors import OutputError
 from .invert import PHASE_NAMES, layer_beta
 from .registry import REGISTRY, bit_table
@@ -262,6 +262,7 @@ def result_attrs(h):
         "cloudsieve_channels": " ".join(h.channels),
         "cloudsieve_physics": _physics_path(),
         "cloudsieve_config": config_json(h.config),
+        "cloudsieve_config_toml": to_toml(h.config),
         "cloudsieve_bias_fit": json.dumps(h.bias, sort_keys=True),
         "cloudsieve_notes": json.dumps(list(h.notes)),
         "cloudsieve_qa_edits": str(h.n_edits),

@@ -337,3 +337,32 @@ def test_changing_one_setting_leaves_a_configured_top_alone(scene_path, tmp_path
     np.testing.assert_array_equal(tops[same], model.result.cloud.top_pressure[same])
     model.top_pressure = 300.0  # the analyst's own choice replaces the height
     assert "top_height" not in model.config["cloud"]
+
+
+def test_saved_settings_and_journal_reproduce_the_netcdf_download(model, scene_path, tmp_path):
+    """The dashboard's "Save settings (TOML)" file, given to `cloudsieve screen --config` with the
+    scene's QA journal, writes the same variables as the NetCDF download; the NetCDF carries the
+    same TOML text, which `--config` reads back to the same configuration."""
+    import tomllib
+
+    import xarray as xr
+
+    from cloudsieve.config import merge_config
+    from dashboard.views.exports import settings_toml
+
+    model.set_threshold("split_window_excess", 2.5, "sea")
+    model.set_enabled("texture", False)
+    model.cloud_top = "opaque"
+    model.mark("cloud", _pixels_of(model, CLEAR, 20, seed=8))
+    ours = tmp_path / "download.nc"
+    ours.write_bytes(model.export_bytes("netcdf"))
+    cfg = tmp_path / "night_front_settings.toml"
+    cfg.write_text(settings_toml(model))
+    theirs = tmp_path / "cli.nc"
+    assert cli.main(["screen", str(scene_path), "--out", str(theirs), "--config", str(cfg), "--quiet"]) == 0
+    with xr.open_dataset(ours) as a, xr.open_dataset(theirs) as b:
+        assert set(a.data_vars) == set(b.data_vars)
+        for name in a.data_vars:
+            np.testing.assert_array_equal(a[name].values, b[name].values, err_msg=name)
+        assert merge_config(tomllib.loads(a.attrs["cloudsieve_config_toml"])) == model.config
+        assert a.attrs["cloudsieve_config_toml"] == b.attrs["cloudsieve_config_toml"]

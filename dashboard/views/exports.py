@@ -8,7 +8,18 @@ import io
 import panel as pn
 from panel.viewable import Viewer
 
+from cloudsieve.config import to_toml
+
 from .style import OUTLINE_BUTTON_CSS
+
+
+def settings_toml(model):
+    """The current settings as TOML text (the schema of ``--config``), with a header saying how to use it."""
+    name = model.scene.name
+    head = (f"# cloudsieve settings saved from the dashboard (scene {name}).\n"
+            f"# The same result from the command line, with the scene's QA journal beside it:\n"
+            f"#   cloudsieve screen {name}.nc --config {name}_settings.toml --out {name}_mask.nc\n")
+    return head + to_toml(model.config)
 
 
 class ExportPanel(Viewer):
@@ -26,6 +37,10 @@ class ExportPanel(Viewer):
                                               label="Download NetCDF", color="primary",
                                               variant="outline", sizing_mode="stretch_width",
                                               css_classes=["cs-download-nc"], stylesheets=[OUTLINE_BUTTON_CSS])
+        self.settings = pn.widgets.FileDownload(callback=self._settings, filename=f"{name}_settings.toml",
+                                                label="Save settings (TOML)", color="primary", variant="outline",
+                                                sizing_mode="stretch_width", css_classes=["cs-download-settings"],
+                                                stylesheets=[OUTLINE_BUTTON_CSS])
         n = model.result.mask.size
         hint = ("" if n <= 1_000_000 else
                 "<div class='cs-muted'>Large scene: NetCDF is much smaller and faster than CSV.</div>")
@@ -33,10 +48,21 @@ class ExportPanel(Viewer):
             pn.Row(self.csv, self.netcdf, sizing_mode="stretch_width"),
             pn.pane.HTML("<div class='cs-muted'>Mask, test bits and margins, departures, clear-sky BT and the "
                          "cloud layer, with the current settings and QA edits.</div>" + hint, margin=(0, 10)),
+            self.settings,
+            pn.pane.HTML("<div class='cs-muted'>The thresholds and switches as a configuration file for "
+                         "<code>cloudsieve screen --config</code>: with the scene's QA journal it writes the same "
+                         "files as these downloads.</div>", margin=(0, 10)),
             sizing_mode="stretch_width")
 
     def __panel__(self):
         return self._layout
+
+    def _settings(self):
+        try:
+            return io.BytesIO(settings_toml(self.model).encode("utf-8"))
+        except Exception as exc:  # noqa: BLE001 — reported in the page
+            self.notices.report(exc, "saving the settings")
+            return io.BytesIO(b"")
 
     def _callback(self, fmt):
         def build():
