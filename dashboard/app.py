@@ -385,8 +385,8 @@ colours differ in lightness as well as hue, so they stay apart for common colour
 Cloud layer: one cloud layer per flagged pixel, its top fitted to every inversion channel at once with
 the absorption ratios of ice, large ice crystals (grey) or water; the phase follows the top temperature
 (and, at night, the 3.9 µm channel). On the optical-depth map near-black marks opaque pixels (τ only a
-lower bound), brown pixels colder than an opaque cloud at the highest allowed top, blue-grey pixels with
-no signal to invert; on the top map teal marks tops the channels could not fix (τ is then given at the
+lower bound), green pixels colder than an opaque cloud at the highest allowed top, blue-grey pixels with
+no signal to invert; on the top map cyan marks tops the channels could not fix (τ is then given at the
 assumed top). Hover names the status and phase.
 
 **Caution.** {CAUTION}

@@ -54,13 +54,13 @@ STATUS_NAMES = ("inverted", "opaque", "beyond_opaque", "warmer_than_clear", "ill
                 "top_assumed")
 #: What each status means, in words (dashboard, CSV key, NetCDF comment)
 STATUS_WORDS = {
-    "inverted": "semi-transparent cloud: top and optical depth retrieved",
-    "opaque": "opaque cloud: top retrieved, optical depth only a lower bound",
-    "beyond_opaque": "colder than an opaque cloud at the highest allowed top: no optical depth",
-    "warmer_than_clear": "warmer than the clear sky: no cloud signal to invert",
-    "ill_conditioned": "opaque-cloud and clear radiances too close: nothing to invert",
+    "inverted": "semi-transparent cloud; top and optical depth retrieved",
+    "opaque": "top retrieved; the optical depth is only a lower bound",
+    "beyond_opaque": "colder than an opaque cloud at the highest allowed top; no optical depth",
+    "warmer_than_clear": "warmer than the clear sky; no cloud signal to invert",
+    "ill_conditioned": "opaque-cloud and clear radiances too close; nothing to invert",
     "not_cloudy": "not screened as cloud; no inversion",
-    "top_assumed": "the channels could not fix the top: optical depth at the assumed top",
+    "top_assumed": "the channels could not fix the top; optical depth at the assumed top",
 }
 
 

@@ -70,7 +70,8 @@ class PixelInspector(Viewer):
         inp = info["inputs"]
         where = f"row {info['row']}, column {info['col']}"
         if inp.get("lat") is not None:
-            where += f" · {inp['lat']:.3f}° N, {inp['lon']:.3f}° E"
+            lat, lon = inp["lat"], (inp["lon"] + 180.0) % 360.0 - 180.0
+            where += f" · {abs(lat):.3f}° {'N' if lat >= 0 else 'S'}, {abs(lon):.3f}° {'E' if lon >= 0 else 'W'}"
         out = [f"#### Pixel {where}",
                f"Class {swatch}**{info['class']}** · surface {inp.get('surface', '–')}"
                + (f" · tests fired: {', '.join(test_label(t) for t in info['tests_fired'])}"
@@ -110,17 +111,20 @@ class PixelInspector(Viewer):
             top_text = f"{cl['top_pressure']:.0f} ± {sp:.0f} hPa"
         beta = cl.get("beta")
         beta_text = ", ".join(f"{channel_label(c)} {b:.2f}" for c, b in beta.items()) if beta else "–"
-        out += ["", f"**Cloud retrieval** · status **{cl['status'].replace('_', ' ')}**: {cl['status_words']}", "",
+        ext = _f(cl['extinction_optical_depth'], '.2f')
+        if cl["status"] == "opaque" and ext != "–":
+            ext = f"≥ {ext} (lower bound)"
+        out += ["", f"**Cloud retrieval** · status **{cl['status'].replace('_', ' ')}** — {cl['status_words']}", "",
                 "| quantity | value |", "|---|---|",
                 f"| optical depth (absorption) | {tau_text} |",
-                f"| extinction optical depth | {_f(cl['extinction_optical_depth'], '.2f')} |",
+                f"| extinction optical depth | {ext} |",
                 f"| top pressure | {top_text} |",
                 f"| top temperature | {_f(cl['top_temperature'], '.1f')} K |",
                 f"| phase | {cl['phase_words']} |",
-                f"| absorption ratio β = τ/τ(reference) | {beta_text} |"]
+                f"| absorption ratio β = τ/τ(reference), from the phase's optics | {beta_text} |"]
         for ch, e in cl["emissivity"].items():
             value = _f(e, '.3f')
-            if e is not None and np.isfinite(e) and not -5e-4 <= e <= 1.0 + 5e-4:  # beyond the shown digits
+            if e is not None and np.isfinite(e) and not -0.02 <= e <= 1.02:  # beyond a plausible noise
                 # the raw radiance ratio; outside [0, 1] the single-layer model does not hold for
                 # this channel (noise, a second layer, or other optics at 3.9 µm) — as exported
                 value = f"{min(max(e, 0.0), 1.0):.3f} (ratio {e:.3f}: outside the single-layer model)"

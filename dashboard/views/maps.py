@@ -48,9 +48,16 @@ _READOUT_HINT = ("<span class='cs-muted'>Large scene: the maps are rasterized; m
                  "read the values of the pixel under it here.</span>")
 _CLASS_JS = "return %s[Math.round(value)] || '';" % list(pl.CLASS_NAMES)
 #: hover text of a cloud code (status × 4 + phase), in words
-_CLOUD_JS = ("if (!isFinite(value)) return 'no cloud'; const s = Math.floor(value / 4), p = Math.round(value - 4 * s); "
-             "const st = %s[s] || ''; const ph = %s[p] || ''; return ph && ph !== 'none' ? st + ' · ' + ph : st;"
-             % ([n.replace("_", " ") for n in STATUS_NAMES], list(PHASE_NAMES)))
+#: hover words of each inversion status (short; the legends and the inspector say more)
+_HOVER_STATUS = {"inverted": "retrieved", "opaque": "opaque (τ ≥ the value shown)",
+                 "beyond_opaque": "beyond opaque (no τ)", "warmer_than_clear": "warmer than clear (nothing to invert)",
+                 "ill_conditioned": "no cloud signal to invert", "not_cloudy": "no cloud",
+                 "top_assumed": "top assumed (τ at that top)"}
+#: hover text of a cloud code (status × 4 + phase; −1: no cloud), in words
+_CLOUD_JS = ("if (!(value >= 0)) return 'no cloud (screened clear)'; const s = Math.floor(value / 4), "
+             "p = Math.round(value - 4 * s); const st = %s[s] || ''; const ph = %s[p] || ''; "
+             "return ph && ph !== 'none' ? st + ' · ' + ph : st;"
+             % ([_HOVER_STATUS[n] for n in STATUS_NAMES], list(PHASE_NAMES)))
 #: categories drawn over the optical-depth and top maps: (map, category) -> statuses
 _TAU_CATEGORIES = (("opaque", (STATUS_OPAQUE,)), ("beyond_opaque", (STATUS_BEYOND_OPAQUE,)),
                    ("not_retrieved", (STATUS_WARMER_THAN_CLEAR, STATUS_ILL_CONDITIONED)))
@@ -117,8 +124,8 @@ class MapGrid(Viewer):
     def __panel__(self):
         hint = pn.pane.HTML(
             '<span class="cs-muted">Drag to pan, scroll to zoom (all maps follow). Click a pixel to inspect '
-            'it: it is ringed on every map, and the Pixel inspector (at the right, or below the maps in a '
-            'narrow window) shows its numbers. For QA edits pick the box or lasso tool in a map\'s toolbar '
+            'it: it is ringed on every map, and the Pixel inspector (right of the maps in a wide window, '
+            'further down in a narrower one) shows its numbers. For QA edits pick the box or lasso tool in a map\'s toolbar '
             'and drag over the map; the selection is outlined (dashed) on the class map.</span>',
             margin=(0, 10))
         return pn.Column(hint, pn.Row(self.departure_range, self._readout), self._layout, width=2 * (self._fw + 190))
@@ -186,10 +193,10 @@ class MapGrid(Viewer):
         return self._image(self.model.result.mask.astype(np.float32), hv.Dimension("class", label="class"), "class")
 
     def _cloud_code(self):
-        """status × 4 + phase per pixel (NaN where no cloud was inverted): the hover's words."""
+        """status × 4 + phase per pixel (−1 where no cloud was inverted): the hover's words."""
         cl = self.model.result.cloud
         code = cl.status.astype(np.float32) * 4 + cl.phase
-        return np.where(cl.status == STATUS_NOT_CLOUDY, np.nan, code).astype(np.float32)
+        return np.where(cl.status == STATUS_NOT_CLOUDY, -1.0, code).astype(np.float32)  # finite: hover words
 
     def _cloud_image(self, arr, vdim):
         """The value map with the cloud code as a second value (hover), single-valued when rasterized."""
@@ -209,8 +216,9 @@ class MapGrid(Viewer):
         cl = self.model.result.cloud
         if cl is None:
             arr = np.full(self.model.result.mask.shape, np.nan)
-        else:  # a top the channels did not fix is drawn as its category, not as a pressure
-            arr = np.where(np.isin(cl.status, (STATUS_INVERTED, STATUS_OPAQUE)), cl.top_pressure, np.nan)
+        else:  # tops the channels did not fix are drawn as their category over it (the hover keeps the value)
+            arr = np.where(np.isin(cl.status, (STATUS_INVERTED, STATUS_OPAQUE, STATUS_TOP_ASSUMED,
+                                               STATUS_BEYOND_OPAQUE)), cl.top_pressure, np.nan)
         return self._cloud_image(arr, hv.Dimension("p_top", label="cloud-top pressure", unit="hPa"))
 
     def _categories(self, table):
@@ -325,7 +333,7 @@ class MapGrid(Viewer):
              {"aggregator": "first", "outline": True}),
             (self.optical_depth, self.title_tau, {"version": ver}, self._cloud_opts(
                 "optical depth", "@image{0.00}", "optical depth [1]", cmap=TAU_CMAP, logz=True,
-                clim=(0.05, 20.0)), {"overlay": (self.tau_categories, self._category_opts(_TAU_CATEGORIES))}),
+                clim=(0.01, 20.0)), {"overlay": (self.tau_categories, self._category_opts(_TAU_CATEGORIES))}),
             (self.top_pressure, self.title_ptop, {"version": ver}, self._cloud_opts(
                 "cloud-top pressure", "@image{0} hPa", "cloud-top pressure [hPa]", cmap=PTOP_CMAP,
                 clim=self._ptop_clim), {"overlay": (self.top_categories, self._category_opts(_TOP_CATEGORIES))}),

@@ -97,8 +97,8 @@ def legend_html():
 #: with no cloud to invert (screened clear) stay in the maps' pale NaN grey.
 CLOUD_CATEGORY_COLOURS = {
     "opaque": "#141414",            # τ map: opaque, τ only a lower bound (beyond the palette's dark end)
-    "top_assumed": "#1f9e89",       # top map: the channels could not fix the top
-    "beyond_opaque": "#7a4a1d",     # colder than an opaque cloud at the highest allowed top
+    "top_assumed": "#00a2c7",       # top map: the channels could not fix the top (cyan, outside both palettes)
+    "beyond_opaque": "#7fbc41",     # colder than an opaque cloud at the highest allowed top (green, ditto)
     "not_retrieved": "#a3abb5",     # warmer than clear, or opaque and clear radiances too close
 }
 
