@@ -37,6 +37,10 @@ from . import simulate as simulation
 INVERT_SCOPES = ("all", "flagged")
 
 
+class RepeatedEdit(ValueError):
+    """A QA edit that would change nothing: the edits in force already give its outcome."""
+
+
 class Session:
     """A screened scene with tunable settings, QA edits and exports.
 
@@ -206,8 +210,22 @@ class Session:
         return self.journal
 
     def mark(self, action, index):
-        """Record a QA edit (clear / cloud / reset) of flat pixel indices, then rescreen."""
-        entry = self._journal_or_fail().add(action, index)
+        """Record a QA edit (clear / cloud / reset) of flat pixel indices, then rescreen.
+
+        Raises :class:`RepeatedEdit` (nothing recorded) when the edits in force already give every
+        one of the pixels this outcome: a second identical edit would only lengthen the journal.
+        """
+        journal = self._journal_or_fail()
+        idx = np.unique(np.asarray(index, dtype=np.int64).ravel())
+        if action in EDIT_CODES and idx.size:
+            shape = self.result.mask.shape
+            current = edits_grid(shape, self.edits()).ravel()
+            ok = (idx >= 0) & (idx < current.size)
+            if ok.all() and np.all(current[idx] == EDIT_CODES[action]):
+                word = {"clear": "marked clear", "cloud": "marked cloud", "reset": "without an edit"}[action]
+                raise RepeatedEdit(f"all {idx.size:,} selected pixel(s) are already {word} by the edits in force; "
+                                   "nothing added")
+        entry = journal.add(action, index)
         self.update()
         return entry
 

@@ -315,7 +315,7 @@ def test_picking_another_scene_opens_it_with_its_own_settings(served_app, page):
     # sea and land in this scene: the thresholds are edited per surface
     expect(page.get_by_role("button", name="Land").first).to_be_visible(timeout=TIMEOUT)
     # no 3.9 µm channel: the fog test cannot run, and the page says so
-    page.get_by_text("not applied: needs 3p9um and 11um").first.wait_for(timeout=TIMEOUT)
+    page.get_by_text("not applied: needs 3.9 µm and 11 µm").first.wait_for(timeout=TIMEOUT)
 
 
 @pytest.mark.ui

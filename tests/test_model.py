@@ -366,3 +366,27 @@ def test_saved_settings_and_journal_reproduce_the_netcdf_download(model, scene_p
             np.testing.assert_array_equal(a[name].values, b[name].values, err_msg=name)
         assert merge_config(tomllib.loads(a.attrs["cloudsieve_config_toml"])) == model.config
         assert a.attrs["cloudsieve_config_toml"] == b.attrs["cloudsieve_config_toml"]
+
+
+def test_core_messages_reach_the_app_in_its_own_words():
+    """Channel codes and test names in core notes become the app's labels."""
+    from dashboard.views.style import plain_words
+
+    assert plain_words("test night_fog_contrast skipped: needs 3p9um and 11um") == \
+        "test Night fog contrast skipped: needs 3.9 µm and 11 µm"
+    assert plain_words("channels 8p6um, 12um") == "channels 8.6 µm, 12 µm"
+
+
+def test_an_edit_that_repeats_one_in_force_is_refused_with_a_warning(model):
+    """Marking the same pixels cloud twice adds nothing to the journal (and says so); marking
+    them clear afterwards is a real change and is recorded."""
+    from cloudsieve.session import RepeatedEdit
+
+    idx = _pixels_of(model, CLEAR, 12, seed=11)
+    model.mark("cloud", idx)
+    n = len(model.edit_listing())
+    with pytest.raises(RepeatedEdit, match="already marked cloud"):
+        model.mark("cloud", idx[:5])
+    assert len(model.edit_listing()) == n
+    model.mark("clear", idx[:5])
+    assert len(model.edit_listing()) == n + 1

@@ -5,7 +5,7 @@ import panel as pn
 from panel.viewable import Viewer
 
 from cloudsieve.codes import CLASS_NAMES
-from .style import CLASS_COLOURS, COUNTS_CSS
+from .style import CLASS_COLOURS, COUNTS_CSS, channel_label
 
 
 class ClassCounts(Viewer):
@@ -26,7 +26,7 @@ class ClassCounts(Viewer):
         ny, nx = m.result.mask.shape
         chips = [f'<div class="cs-scene"><div class="cs-scene-name">{html.escape(m.scene.name)}</div>'
                  f'<div class="cs-pixels">{ny} × {nx} pixels · channels '
-                 f'{html.escape(", ".join(m.scene.channels))}</div></div>']
+                 f'{html.escape(", ".join(channel_label(c) for c in m.scene.channels))}</div></div>']
         for name in CLASS_NAMES:
             frac = m.counts[name]
             chips.append(

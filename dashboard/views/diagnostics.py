@@ -9,7 +9,7 @@ from panel.viewable import Viewer
 
 from cloudsieve import codes as pl
 from cloudsieve.registry import bit_table
-from .style import CLASS_COLOURS, INK, test_label, channel_colour, channel_label
+from .style import CLASS_COLOURS, INK, channel_colour, channel_label, plain_words, test_label
 
 MAX_POINTS = 20_000
 _DARK = "#454c5a"
@@ -208,11 +208,11 @@ class SceneSummary(Viewer):
         lines.append("")
         lines.append("**Tests not applied**" if s["skipped_tests"] else "**All tests applied.**")
         for t, why in s["skipped_tests"].items():
-            lines.append(f"- {test_label(t)}: {why}")
+            lines.append(f"- {test_label(t)}: {plain_words(why)}")
         lines.append("")
         if s["notes"]:
             lines.append("**Notes**")
-            lines += [f"- {n}" for n in s["notes"]]
+            lines += [f"- {plain_words(n)}" for n in s["notes"]]
             lines.append("")
         edits = m.edit_listing()
         lines.append(f"**Analyst edits in force:** {len(edits)}")

@@ -4,7 +4,7 @@ import holoviews as hv
 import panel as pn
 from panel.viewable import Viewer
 
-from .style import CLASS_COLOURS, test_label, channel_colour, channel_label
+from .style import CLASS_COLOURS, channel_colour, channel_label, plain_words, test_label
 
 _INPUT_LABELS = {
     "t_skin": ("skin temperature", "K", ".2f"), "t_air": ("air temperature", "K", ".2f"),
@@ -91,7 +91,7 @@ class PixelInspector(Viewer):
             out.append(f"| {test_label(t)} | {_f(mg, '+.2f')} | {'● fired' if fired else ''} |")
         skipped = self.model.result.skipped
         for t, why in skipped.items():
-            out.append(f"| {test_label(t)} | – | not applied ({why}) |")
+            out.append(f"| {test_label(t)} | – | not applied ({plain_words(why)}) |")
         cl = info["cloud"]
         tau, stau = cl["optical_depth"], cl["optical_depth_sigma"]
         if tau is None:

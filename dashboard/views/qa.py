@@ -8,6 +8,7 @@ import panel as pn
 from panel.viewable import Viewer
 
 from cloudsieve.journal import StaleEditsError
+from cloudsieve.session import RepeatedEdit
 from .style import test_label
 
 
@@ -61,7 +62,11 @@ class QAPanel(Viewer):
         @self.notices.guard(f"marking pixels {action}")
         def cb(_event):
             idx = np.asarray(self.focus.selection, dtype=np.int64)
-            entry = self.model.mark(action, idx)
+            try:
+                entry = self.model.mark(action, idx)
+            except RepeatedEdit as exc:
+                self.notices.show(f"{str(exc)[0].upper()}{str(exc)[1:]}.", "warning")
+                return
             verb = {"clear": "marked clear", "cloud": "marked cloud", "reset": "reset"}[action]
             self.notices.show(f"{entry['count']:,} pixel(s) {verb} (edit {entry['id']}).", "success")
             self.focus.clear_selection()

@@ -14,6 +14,8 @@ no_data    mid-grey   neutral, no hue
 
 Pixels edited by the analyst are outlined in magenta on the class map.
 """
+import re
+
 CLASS_COLOURS = {
     "clear": "#176d6d",
     "marginal": "#eaa221",
@@ -47,6 +49,20 @@ def channel_label(ch):
     if ch.endswith("um"):
         return ch[:-2].replace("p", ".") + " µm"
     return ch
+
+
+_CHANNEL_CODE = re.compile(r"\b(\d+(?:p\d+)?um)\b")
+
+
+def plain_words(text):
+    """A core message in the app's words: channel codes as labels ('3p9um' → '3.9 µm') and test
+    names as the tests' labels ('night_fog_contrast' → its label)."""
+    from cloudsieve.registry import REGISTRY
+
+    text = _CHANNEL_CODE.sub(lambda m: channel_label(m.group(1)), str(text))
+    for name, test in REGISTRY.items():
+        text = re.sub(rf"\b{re.escape(name)}\b", test.label, text)
+    return text
 
 
 def test_label(name):

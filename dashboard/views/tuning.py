@@ -10,7 +10,7 @@ from panel.viewable import Viewer
 from cloudsieve.codes import SURFACES
 from cloudsieve.registry import REGISTRY
 
-from .style import BUTTON_GROUP_CSS, SURFACE_LABELS
+from .style import BUTTON_GROUP_CSS, SURFACE_LABELS, plain_words
 
 
 class TuningPanel(Viewer):
@@ -122,5 +122,5 @@ class TuningPanel(Viewer):
     def _skip_note(self, test, _version=None):
         why = self.model.result.skipped.get(test)
         if why and "switched off" not in why:
-            return f"not applied: {why}"
+            return f"not applied: {plain_words(why)}"
         return ""
