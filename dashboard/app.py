@@ -154,6 +154,7 @@ class Session:
         self.model = None
         self.notices = Notices()
         self._uploaded = {}
+        self._uploading = []  # the path of an upload being opened (its QA card says where edits go)
         # sidebar
         self.picker = ScenePicker(self.catalog, self.open_name, self.notices)
         self.upload = UploadBox(self.open_scene, self.notices, max_upload_mb=max_upload_mb, config=self.config)
@@ -244,8 +245,13 @@ class Session:
                 continue
         return None
 
+    def _uploaded_paths(self):
+        return {scene.path for scene in self._uploaded.values()} | set(self._uploading)
+
     async def open_name(self, name):
         """Open a scene chosen in the picker (a data-folder name or an uploaded one)."""
+        if name not in self._uploaded:
+            self.upload.clear_report()  # the report of an earlier upload is about another scene
         if name in self._uploaded:
             scene = self._uploaded[name]
             await self._open(lambda: (scene, None), name)
@@ -260,6 +266,7 @@ class Session:
     async def open_scene(self, scene):
         """Open a validated, uploaded scene."""
         label = f"⬆ {scene.path.name} (uploaded)"
+        self._uploading = [scene.path]
         if await self._open(lambda: (scene, None), label):
             self._uploaded[label] = scene
             self.picker.update_options(current=label, extra=list(self._uploaded))
@@ -331,7 +338,8 @@ class Session:
         channel.link(model, value="channel")
         maps = MapGrid(model, focus, self.notices)
         side = pn.Column(
-            pn.Card(QAPanel(model, focus, self.notices), title="Analyst QA", collapsible=False,
+            pn.Card(QAPanel(model, focus, self.notices, uploaded=model.scene.path in self._uploaded_paths()),
+                    title="Analyst QA", collapsible=False,
                     sizing_mode="stretch_width", css_classes=["cs-qa-card"]),
             pn.Card(PixelInspector(model, focus, self.notices), title="Pixel inspector", collapsible=False,
                     sizing_mode="stretch_width", css_classes=["cs-inspector-card"]),

@@ -290,6 +290,14 @@ def test_a_good_upload_opens_the_scene(served_app, page):
     expect(page.locator(".cs-scene-name").first).to_have_text("night_front_small", timeout=TIMEOUT)
     page.wait_for_function(RENDERED, arg=8, timeout=TIMEOUT, polling=100)
     assert "40 × 40" in shadow_text(page, ".cs-counts")
+    # one statement of where edits go, in the upload report and on the QA card
+    expect(page.locator(".cs-upload-report").first).to_contain_text("temporary copy", timeout=TIMEOUT)
+    expect(page.locator(".cs-edits-where").first).to_contain_text("temporary copy", timeout=TIMEOUT)
+    # back to a scene of the data folder: the upload's report goes, the QA card says where edits go now
+    page.locator(".cs-scene-select select").first.select_option("night_front.nc")
+    expect(page.locator(".cs-scene-name").first).to_have_text("night_front", timeout=TIMEOUT)
+    expect(page.locator(".cs-upload-report").first).to_be_hidden(timeout=TIMEOUT)
+    expect(page.locator(".cs-edits-where").first).to_contain_text("beside the scene", timeout=TIMEOUT)
 
 
 @pytest.mark.ui

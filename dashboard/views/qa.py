@@ -12,10 +12,19 @@ from cloudsieve.session import RepeatedEdit
 from .style import test_label
 
 
+def edits_statement(journal, uploaded):
+    """Where QA edits go, in one wording for the QA card and the upload report."""
+    if uploaded:
+        return (f"Edits are saved at once to <code>{journal}</code> beside this server's temporary copy of the "
+                "uploaded scene and go into the downloads; the copy is removed when the page closes, so download "
+                "the result (and the settings) to keep them.")
+    return f"Edits are saved at once to <code>{journal}</code> beside the scene and go into the downloads."
+
+
 class QAPanel(Viewer):
     """Selection summary, edit buttons, the list of edits and per-test label scores."""
 
-    def __init__(self, model, focus, notices, **params):
+    def __init__(self, model, focus, notices, uploaded=False, **params):
         super().__init__(**params)
         self.model, self.focus, self.notices = model, focus, notices
         self._selection = pn.pane.Markdown(pn.bind(self._selection_text, focus.param.selection),
@@ -48,8 +57,8 @@ class QAPanel(Viewer):
             self._selection,
             pn.Row(*self.buttons.values(), self.undo_button, sizing_mode="stretch_width"),
             self.deselect,
-            pn.pane.HTML(f"<div class='cs-muted'>Edits are saved at once to <code>{journal}</code> beside the "
-                         "scene and go into the downloads.</div>", margin=(4, 10)),
+            pn.pane.HTML(f"<div class='cs-muted'>{edits_statement(journal, uploaded)}</div>", margin=(4, 10),
+                         css_classes=["cs-edits-where"]),
             self.edits,
             self._scores,
             sizing_mode="stretch_width")

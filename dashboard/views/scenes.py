@@ -17,6 +17,8 @@ from panel.viewable import Viewer
 from cloudsieve.errors import SceneError
 from cloudsieve.scene import check_scene
 
+from .qa import edits_statement
+
 UPLOAD_SUFFIXES = (".csv", ".parquet", ".nc")
 #: marker the browser-side size check puts in mime_type instead of sending an oversized file
 _TOO_LARGE = "x-cloudsieve/too-large"
@@ -110,6 +112,10 @@ class UploadBox(Viewer):
     def cleanup(self):
         self._tmp.cleanup()
 
+    def clear_report(self):
+        """Hide the report of an earlier upload (another scene is now open)."""
+        self._show("", "light")
+
     def _show(self, text, kind):
         self.report.param.update(object=text, alert_type=kind, visible=bool(text))
 
@@ -161,6 +167,6 @@ class UploadBox(Viewer):
             self._show(f"**{name} cannot be used.**\n\n```\n{report}\n```", "danger")
             return
         kind = "warning" if scene.report.warnings else "success"
-        self._show(f"```\n{report}\n```\nEdits to an uploaded scene are kept for this session only: download the "
-                   "result to keep them.", kind)
+        self._show(f"```\n{report}\n```\n" + edits_statement(f"{path.name}.qa.jsonl", True).replace("<code>", "`")
+                   .replace("</code>", "`"), kind)
         await self.on_scene(scene)
