@@ -244,6 +244,25 @@ class Session:
     def edit_listing(self):
         return self.journal.listing() if self.journal is not None else []
 
+    def edit_places(self):
+        """The edits in force, newest first, with where they are: dicts of id, time, action, count and
+        the scene's row and column ranges of their pixels (its ``row``/``col`` labels)."""
+        if self.journal is None:
+            return []
+        ds = self.scene.data
+        rows, cols = ds["row"].values, ds["col"].values
+        nx = ds.sizes["x"]
+        out = []
+        for e in reversed(self.journal.active()):
+            idx = np.asarray(e.get("index", []), dtype=np.int64)
+            place = {"id": e["id"], "time": e["time"], "action": e["action"], "count": e["count"],
+                     "rows": None, "cols": None}
+            if idx.size:
+                r, c = rows[idx // nx], cols[idx % nx]
+                place["rows"], place["cols"] = (int(r.min()), int(r.max())), (int(c.min()), int(c.max()))
+            out.append(place)
+        return out
+
     def label_scores(self):
         """Each test's hit rate and false-alarm rate against the analyst's labels.
 

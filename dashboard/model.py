@@ -63,6 +63,9 @@ class ScreeningModel(param.Parameterized):
     def edit_listing(self):
         return self.session.edit_listing()
 
+    def edit_places(self):
+        return self.session.edit_places()
+
     def label_scores(self):
         return self.session.label_scores()
 

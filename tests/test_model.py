@@ -390,3 +390,19 @@ def test_an_edit_that_repeats_one_in_force_is_refused_with_a_warning(model):
     assert len(model.edit_listing()) == n
     model.mark("clear", idx[:5])
     assert len(model.edit_listing()) == n + 1
+
+
+def test_each_edit_is_listed_with_its_place(model):
+    """The QA card lists each edit with the row and column range of its pixels."""
+    nx = model.result.mask.shape[1]
+    idx = np.array([5 * nx + 7, 9 * nx + 12, 6 * nx + 30])  # rows 5–9, columns 7–30
+    model.mark("cloud", idx)
+    place = model.edit_places()[0]
+    assert place["action"] == "cloud" and place["count"] == 3
+    assert place["rows"] == (5, 9) and place["cols"] == (7, 30)
+    from dashboard.views import Notices
+    from dashboard.views.focus import Focus
+    from dashboard.views.qa import QAPanel
+
+    text = QAPanel(model, Focus(model.result.mask.shape), Notices())._edits_text()
+    assert "rows 5–9, columns 7–30" in text

@@ -94,16 +94,19 @@ class QAPanel(Viewer):
 
     # ------------------------------------------------------------------ rendering
     def _edits_text(self, _version=None, limit=12):
-        rows = self.model.edit_listing()
+        rows = self.model.edit_places()
         if not rows:
             return "**Edits in force:** none yet."
         label = {"clear": "marked clear", "cloud": "marked cloud", "reset": "reset"}
-        out = [f"**Edits in force:** {len(rows)} (newest first)", "", "| time (UTC) | pixels | action |",
-               "|---|---:|---|"]
-        for time_, count, action in rows[:limit]:
-            out.append(f"| {time_.replace('T', ' ').rstrip('Z')} | {count:,} | {label.get(action, action)} |")
+        out = [f"**Edits in force:** {len(rows)} (newest first)", "", "| edit | time (UTC) | pixels | action | where |",
+               "|---:|---|---:|---|---|"]
+        span = lambda a: f"{a[0]}" if a[0] == a[1] else f"{a[0]}–{a[1]}"  # noqa: E731
+        for e in rows[:limit]:
+            where = f"rows {span(e['rows'])}, columns {span(e['cols'])}" if e["rows"] else "–"
+            out.append(f"| {e['id']} | {e['time'].replace('T', ' ').rstrip('Z')} | {e['count']:,} | "
+                       f"{label.get(e['action'], e['action'])} | {where} |")
         if len(rows) > limit:
-            out.append(f"| … {len(rows) - limit} older | | |")
+            out.append(f"| | … {len(rows) - limit} older | | | |")
         return "\n".join(out)
 
     def _selection_text(self, selection):
