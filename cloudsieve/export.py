@@ -486,7 +486,44 @@ def write_blocks(layout, blocks, path, fmt=None, chunk_rows=CHUNK_ROWS, on_block
                         nxt = b.stop
                 if nxt != ny or pending:
                     raise ValueError(f"the blocks covered rows 0–{nxt} of {ny} (and {len(pending)} out of order)")
+    if fmt == "csv":  # a CSV has no attributes: its key and settings go beside it
+        attrs = dict(layout.attrs, **(final_attrs() if final_attrs else {}))
+        with atomic_write(key_path(path)) as tmp:
+            Path(tmp).write_text(result_key(attrs), encoding="utf-8")
     return path, counts
+
+
+def key_path(csv_path):
+    """The key written beside a CSV result: ``<name>.key.md``."""
+    p = Path(csv_path)
+    return p.with_name(p.name + ".key.md")
+
+
+_FLAG_WORDS = {"daylight_3p9um_unused": "3.9 µm channel not used: daylight (reflected sunlight)",
+               "analyst_clear": "marked clear by the analyst (QA edit)",
+               "analyst_cloud": "marked cloud by the analyst (QA edit)"}
+
+
+def result_key(attrs=None):
+    """What the codes of a result mean (classes, test bits, inversion statuses, phases) and, given a
+    result's global attributes, the settings it was made with (TOML): the About tab's key and the
+    file beside a CSV."""
+    attrs = attrs or {}
+    lines = ["# cloudsieve result key", "", CAUTION, "", "## mask", ""]
+    lines += [f"- {code}: {name}" for code, name in enumerate(CLASS_NAMES)]
+    lines += ["", "## test_bits (sum of the values of the tests that fired)", ""]
+    for name, value in bit_table().items():
+        test = REGISTRY.get(name)
+        what = f"{test.label} ({test.kind} test)" if test else _FLAG_WORDS.get(name, name.replace("_", " "))
+        lines.append(f"- {value}: {name} — {what}")
+    lines += ["", "## inversion_status", ""]
+    lines += [f"- {code}: {name} — {STATUS_WORDS[name]}" for code, name in enumerate(STATUS_NAMES)]
+    lines += ["", "## cloud_phase", ""]
+    lines += [f"- {code}: {name}" for code, name in enumerate(PHASE_NAMES)]
+    if attrs.get("cloudsieve_config_toml"):
+        lines += ["", f"## settings (scene {attrs.get('cloudsieve_scene', '?')}; use with `cloudsieve screen "
+                  "--config`)", "", "```toml", attrs["cloudsieve_config_toml"].rstrip(), "```"]
+    return "\n".join(lines) + "\n"
 
 
 def write_result(result, path, fmt=None):

@@ -22,6 +22,7 @@ from bokeh.core.validation.warnings import FIXED_SIZING_MODE
 from cloudsieve import CAUTION, __version__
 from cloudsieve.config import config_json, load_config
 from cloudsieve.errors import CloudsieveError, PathError, SceneError
+from cloudsieve.export import result_key
 from cloudsieve.scene import load_scene
 from cloudsieve.session import compact_scene
 from cloudsieve.simulate import simulate
@@ -183,7 +184,10 @@ class Session:
             pn.pane.HTML(legend_html(), margin=(4, 12)),
             caution,
         ]
-        about = pn.pane.Markdown(_about_text(), sizing_mode="stretch_width", max_width=900, css_classes=["cs-about"])
+        # the key to the codes of the maps and the downloads (the same text goes beside a CSV result)
+        key = result_key().replace("# cloudsieve result key", "## Key to the codes in maps and downloads", 1)
+        about = pn.pane.Markdown(_about_text() + "\n\n" + key, sizing_mode="stretch_width", max_width=900,
+                                 css_classes=["cs-about"])
         self.tabs = pn.Tabs(("Maps & QA", self.maps), ("Diagnostics", self.diagnostics), ("About", about),
                             dynamic=True, sizing_mode="stretch_width", css_classes=["cs-tabs"])
         self.tabs.param.watch(self._on_tab, "active")

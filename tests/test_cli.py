@@ -66,7 +66,8 @@ def test_screen_glob_pattern(tmp_path):
     for name in ("a.csv", "b.csv"):
         (tmp_path / name).write_bytes(SMALL.read_bytes())
     assert main(["screen", str(tmp_path / "*.csv"), "--out", str(tmp_path / "res"), "--quiet", "--format", "csv"]) == 0
-    assert sorted(p.name for p in (tmp_path / "res").iterdir()) == ["a_mask.csv", "b_mask.csv"]
+    assert sorted(p.name for p in (tmp_path / "res").iterdir()) == ["a_mask.csv", "a_mask.csv.key.md", "b_mask.csv",
+                                                                "b_mask.csv.key.md"]
 
 
 def test_simulate(tmp_path):

@@ -125,3 +125,25 @@ def test_the_writer_refuses_misaligned_or_missing_blocks(tmp_path, result):
         with pytest.raises(ValueError, match="rows"):
             export.write_blocks(layout, [first], tmp_path / name, fmt, 8)
         assert not (tmp_path / name).exists()
+
+
+def test_a_csv_result_has_its_key_and_settings_beside_it(tmp_path, result):
+    """A CSV has no attributes: `<name>.key.md` beside it says what the codes mean (every class,
+    bit, status and phase of the file) and holds the settings as TOML that --config reads back."""
+    import tomllib
+
+    from cloudsieve.codes import CLASS_NAMES
+    from cloudsieve.config import merge_config
+    from cloudsieve.registry import bit_table
+    from physics.cloud import STATUS_NAMES
+
+    path = export.write_result(result, tmp_path / "mask.csv", "csv")
+    key = export.key_path(path).read_text()
+    for code, name in enumerate(CLASS_NAMES):
+        assert f"- {code}: {name}" in key
+    for name, value in bit_table().items():
+        assert f"- {value}: {name}" in key
+    for code, name in enumerate(STATUS_NAMES):
+        assert f"- {code}: {name}" in key
+    toml_text = key.split("```toml\n", 1)[1].split("```", 1)[0]
+    assert merge_config(tomllib.loads(toml_text)) == json.loads(result.attrs["cloudsieve_config"])
