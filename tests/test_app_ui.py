@@ -369,3 +369,24 @@ def test_departure_map_is_centred_on_zero_with_a_range_control(served_app, page,
     box.press("Enter")
     page.wait_for_function(f"() => {{ const r = ({_COLOUR_RANGE})('observed − clear [K]'); "
                            "return r && r[1] === 12 && r[0] === -12; }", timeout=TIMEOUT, polling=200)
+
+
+@pytest.mark.ui
+def test_class_map_hover_says_which_test_decided_and_lists_every_margin(served_app, page, artifacts):
+    """Why a pixel is flagged: the class map's hover names the deciding test (the fired cloud test
+    with the largest margin relative to its threshold) and every test's margin in K, the warm-
+    departure flag included."""
+    open_dashboard(page, served_app.url)
+    x, y = map_point(page, 150, 120)  # inside the front's cloud band
+    page.mouse.move(x, y)
+    # Bokeh draws tooltips inside shadow roots: collect the text of every visible one
+    tooltip_text = """() => { const out = []; const walk = (root) => { root.querySelectorAll('*').forEach(el => {
+        if (el.classList && el.classList.contains('bk-tooltip-content')) out.push(el.innerText);
+        if (el.shadowRoot) walk(el.shadowRoot); }); }; walk(document); return out.join('\\n'); }"""
+    page.wait_for_function(f"() => ({tooltip_text})().includes('decided by')", timeout=TIMEOUT, polling=200)
+    text = page.evaluate(tooltip_text)
+    for label in ("Cold departure margin", "Split-window excess margin", "Warm departure margin"):
+        assert label in text
+    assert re.search(r"decided by:\s*(Cold departure|Split-window excess|Texture|Night fog contrast)", text), text
+    assert re.search(r"Cold departure margin:\s*[+-]\d+\.\d\d K", text), text
+    screenshot(page, artifacts, "ui_class_hover_why.png")

@@ -18,6 +18,7 @@ from scipy import ndimage
 
 from cloudsieve import codes as pl
 from cloudsieve.invert import PHASE_NAMES
+from cloudsieve.registry import REGISTRY, bit_table
 from cloudsieve.screen import edits_grid
 from physics.cloud import (STATUS_BEYOND_OPAQUE, STATUS_ILL_CONDITIONED, STATUS_INVERTED, STATUS_NAMES,
                            STATUS_NOT_CLOUDY, STATUS_OPAQUE, STATUS_TOP_ASSUMED, STATUS_WARMER_THAN_CLEAR)
@@ -117,6 +118,8 @@ class MapGrid(Viewer):
         # one pair of ranges shared by all the figures: pan or zoom one and all follow
         self._x_range = Range1d(float(self._xs[0]) - 0.5, float(self._xs[-1]) + 0.5)
         self._y_range = Range1d(float(self._ys[-1]) + 0.5, float(self._ys[0]) - 0.5)  # row 0 at the top
+        #: the tests whose margins the class map's hover lists (every registered test, in order)
+        self._why_tests = tuple(REGISTRY)
         self._readout = pn.pane.HTML(_READOUT_HINT, css_classes=["cs-readout"], margin=(0, 10), height=20,
                                      visible=self.rasterized, sizing_mode="stretch_width")
         self._layout = self._build()
@@ -189,8 +192,38 @@ class MapGrid(Viewer):
             z = self.model.result.departure[channel] / self.model.sim.sigma[channel]
         return self._image(z, hv.Dimension("z", label="departure / σ", unit="1"), "departure / σ")
 
+    def deciding_test(self):
+        """Per pixel, which test decided the class (float codes for the hover): the index in
+        ``self._why_tests`` of the fired cloud test with the largest margin relative to its threshold,
+        len(_why_tests) where an analyst edit decided, −1 where no cloud test fired."""
+        res = self.model.result
+        shape = res.mask.shape
+        best = np.full(shape, -np.inf, np.float32)
+        code = np.full(shape, -1.0, np.float32)
+        for k, t in enumerate(self._why_tests):
+            if REGISTRY[t].kind != "cloud" or t not in res.margins:
+                continue
+            m = np.asarray(res.margins[t], np.float32)
+            thr = np.abs(np.asarray(res.thresholds.get(t, 1.0), np.float32))
+            with np.errstate(invalid="ignore", divide="ignore"):
+                rel = np.where(np.nan_to_num(m, nan=-1.0) > 0, m / np.maximum(thr, 1e-6), -np.inf)
+            take = rel > best
+            best = np.where(take, rel, best)
+            code = np.where(take, np.float32(k), code)
+        bits = np.asarray(res.bits)
+        edited = (bits & (bit_table()["analyst_clear"] | bit_table()["analyst_cloud"])) != 0
+        return np.where(edited, np.float32(len(self._why_tests)), code).astype(np.float32)
+
     def mask(self, version=None):
-        return self._image(self.model.result.mask.astype(np.float32), hv.Dimension("class", label="class"), "class")
+        res = self.model.result
+        cls = res.mask.astype(np.float32)
+        if self.rasterized:
+            return self._image(cls, hv.Dimension("class", label="class"), "class")
+        nan = np.full(cls.shape, np.nan, np.float32)
+        margins = [np.asarray(res.margins[t], np.float32) if t in res.margins else nan for t in self._why_tests]
+        return hv.Image((self._xs, self._ys, cls, self.deciding_test(), *margins), kdims=[XDIM, YDIM],
+                        vdims=[hv.Dimension("class", label="class"), "decided"]
+                        + [f"margin_{t}" for t in self._why_tests])
 
     def _cloud_code(self):
         """status × 4 + phase per pixel (−1 where no cloud was inverted): the hover's words."""
@@ -272,6 +305,18 @@ class MapGrid(Viewer):
         opts.update(extra)
         return opts
 
+    def _decided_js(self):
+        names = [REGISTRY[t].label for t in self._why_tests] + ["analyst edit"]
+        return "const k = Math.round(value); return k < 0 ? 'no cloud test fired' : (%s[k] || '');" % names
+
+    def _mask_opts(self, vdim_label, fmt, clabel, **extra):
+        """Options of the class map: its hover says which test decided and lists every test's margin."""
+        opts = self._opts(vdim_label, fmt, clabel, **extra)
+        if not self.rasterized:
+            opts["hover_tooltips"] = opts["hover_tooltips"] + [("decided by", "@decided{custom}")] + [
+                (f"{REGISTRY[t].label} margin", f"@margin_{t}{{+0.00}} K") for t in self._why_tests]
+        return opts
+
     def _cloud_opts(self, vdim_label, fmt, clabel, **extra):
         """Options of a cloud-layer map: its hover also names the status and phase in words."""
         opts = self._opts(vdim_label, fmt, clabel, **extra)
@@ -325,9 +370,10 @@ class MapGrid(Viewer):
                 symmetric=True),
              {"dynamic": {"clim": pn.bind(lambda v: (-abs(v or DEPARTURE_RANGE), abs(v or DEPARTURE_RANGE)),
                                           self.departure_range)}}),
-            (self.mask, self.title_mask, {"version": ver}, self._opts(
+            (self.mask, self.title_mask, {"version": ver}, self._mask_opts(
                 "class", "@image{custom}", "class", cmap=list(CLASS_COLOURS.values()), clim=(-0.5, 3.5),
-                color_levels=4, hover_formatters={"@image": CustomJSHover(code=_CLASS_JS)},
+                color_levels=4, hover_formatters={"@image": CustomJSHover(code=_CLASS_JS),
+                                                  "@{decided}": CustomJSHover(code=self._decided_js())},
                 colorbar_opts={"ticker": FixedTicker(ticks=[0, 1, 2, 3]), "major_label_overrides": class_ticks,
                                "major_label_text_font_size": "11px"}),
              {"aggregator": "first", "outline": True}),
