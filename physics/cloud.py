@@ -572,19 +572,23 @@ class CloudTop(NamedTuple):
     assumed: np.ndarray
 
 
+def _as_arrays(observed, clear, opaque_levels, level_pressure, sigma_observed, sigma_clear, beta):
+    """The common inputs of :func:`cloud_top` and :func:`cloud_at_top` as float arrays (β broadcast to
+    the observations' shape, ones when None)."""
+    obs = np.asarray(observed, dtype=float)
+    beta = np.ones(obs.shape[-1]) if beta is None else np.asarray(beta, dtype=float)
+    return (obs, np.asarray(clear, dtype=float), np.asarray(opaque_levels, dtype=float),
+            np.asarray(level_pressure, dtype=float), np.asarray(sigma_observed, dtype=float),
+            np.asarray(sigma_clear, dtype=float), np.broadcast_to(beta, obs.shape))
+
+
 def cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, sigma_clear, beta=None,
               method="consistent", fixed_pressure=None, reference=0, top_limit=None, assumed_pressure=350.0,
               noise_sigmas=2.0, max_sigma_pressure=100.0, clear_correlation=None):
     """The cloud-top choice of :func:`invert_cloud` (same parameters), as a :class:`CloudTop`."""
-    obs = np.asarray(observed, dtype=float)
-    clr = np.asarray(clear, dtype=float)
-    lo = np.asarray(opaque_levels, dtype=float)
-    lp = np.asarray(level_pressure, dtype=float)
-    s_obs = np.asarray(sigma_observed, dtype=float)
-    s_clr = np.asarray(sigma_clear, dtype=float)
-    shape = obs.shape[:-1]
-    n_ch = obs.shape[-1]
-    beta = np.broadcast_to(np.ones(n_ch) if beta is None else np.asarray(beta, dtype=float), obs.shape)
+    obs, clr, lo, lp, s_obs, s_clr, beta = _as_arrays(observed, clear, opaque_levels, level_pressure, sigma_observed,
+                                                      sigma_clear, beta)
+    shape, n_ch = obs.shape[:-1], obs.shape[-1]
     ref = reference
     chi2 = np.full(shape, np.nan)
     sigma_p = np.zeros(shape)
@@ -623,18 +627,12 @@ def cloud_at_top(observed, clear, opaque_levels, level_pressure, level_temperatu
                  cloudy, top, beta=None, reference=0, eps_max=0.99, noise_sigmas=2.0):
     """Emissivities, optical depth and status at a chosen :class:`CloudTop` (:func:`invert_cloud`'s
     second half; parameters as there, ``beta`` may differ per pixel)."""
-    obs = np.asarray(observed, dtype=float)
-    clr = np.asarray(clear, dtype=float)
-    lo = np.asarray(opaque_levels, dtype=float)
-    lp = np.asarray(level_pressure, dtype=float)
+    obs, clr, lo, lp, s_obs, s_clr, beta = _as_arrays(observed, clear, opaque_levels, level_pressure, sigma_observed,
+                                                      sigma_clear, beta)
     lt = np.asarray(level_temperature, dtype=float)
     mu = np.asarray(mu, dtype=float)
-    s_obs = np.asarray(sigma_observed, dtype=float)
-    s_clr = np.asarray(sigma_clear, dtype=float)
     cloudy = np.asarray(cloudy, dtype=bool)
     shape = obs.shape[:-1]
-    n_ch = obs.shape[-1]
-    beta = np.broadcast_to(np.ones(n_ch) if beta is None else np.asarray(beta, dtype=float), obs.shape)
     ref = reference
     p_top, sigma_p, chi2, assumed = (np.asarray(a) for a in top)
 
