@@ -406,3 +406,30 @@ def test_each_edit_is_listed_with_its_place(model):
 
     text = QAPanel(model, Focus(model.result.mask.shape), Notices())._edits_text()
     assert "rows 5–9, columns 7–30" in text
+
+
+def test_departure_histogram_draws_the_thresholds_of_the_surface_shown(tmp_path):
+    """On a scene of sea and land, each surface's histogram draws that surface's cold threshold:
+    moving the land threshold moves the land line and leaves the sea line where it was."""
+    import shutil
+
+    import holoviews as hv
+
+    from dashboard.views.diagnostics import DepartureHistogram
+
+    path = tmp_path / "day_coast.nc"
+    shutil.copy(Path(__file__).resolve().parents[1] / "sample_scenes" / "day_coast.nc", path)
+    model = ScreeningModel.open(path)
+    hist = DepartureHistogram(model)
+    assert set(hist.surface.options.values()) >= {"sea", "land"}
+
+    def cold_line(surface):
+        plot = hist.plot(surface=surface)
+        return [el.data for el in plot if isinstance(el, hv.VLine)][0]
+
+    sea, land = cold_line("sea"), cold_line("land")
+    model.set_threshold("cold_departure", 5.0, "land")
+    assert cold_line("sea") == pytest.approx(sea)
+    assert cold_line("land") < land  # a larger k·σ puts the cold line further out
+    log_plot = hist.plot(surface="land", log=True)
+    assert log_plot.opts.get().kwargs.get("logy") is True

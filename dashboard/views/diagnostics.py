@@ -2,14 +2,16 @@
 and a short scene summary. Each redraws when the model's result changes."""
 import html
 
-import numpy as np
+from bokeh.models import NumeralTickFormatter
 import holoviews as hv
+import numpy as np
 import panel as pn
 from panel.viewable import Viewer
 
 from cloudsieve import codes as pl
 from cloudsieve.registry import bit_table
-from .style import CLASS_COLOURS, INK, channel_colour, channel_label, plain_words, test_label
+
+from .style import CLASS_COLOURS, INK, SURFACE_LABELS, channel_colour, channel_label, plain_words, test_label
 
 MAX_POINTS = 20_000
 _DARK = "#454c5a"
@@ -45,21 +47,41 @@ class _ModelPlot(Viewer):
 
 
 class DepartureHistogram(_ModelPlot):
-    """Window-channel departures stacked by class, with the test thresholds as lines."""
+    """Window-channel departures of one surface type stacked by class, with that surface's test
+    thresholds as lines (a scene's surfaces have their own thresholds); counts linear or log."""
 
-    def plot(self, version=None):
+    def __init__(self, model, **params):
+        Viewer.__init__(self, **params)
+        self.model = model
+        ds = model.scene.data
+        valid = ds["valid"].values
+        codes, counts = np.unique(ds["surface"].values[valid], return_counts=True)
+        present = [pl.SURFACES[int(c)] for c in codes[np.argsort(-counts)]] or [pl.SURFACES[0]]
+        self.surface = pn.widgets.RadioButtonGroup(options={SURFACE_LABELS[s]: s for s in present}, value=present[0],
+                                                   button_type="primary", button_style="outline",
+                                                   css_classes=["cs-hist-surface"], margin=(4, 10))
+        self.log = pn.widgets.Checkbox(name="log count", value=False, css_classes=["cs-hist-log"], margin=(10, 10))
+        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version,
+                                                             surface=self.surface, log=self.log)))
+
+    def __panel__(self):
+        return pn.Column(pn.Row(self.surface, self.log), self._pane)
+
+    def plot(self, version=None, surface=None, log=False):
         m = self.model
         res = m.result
         ch = window_channel(m)
-        valid = m.scene.data["valid"].values
+        ds = m.scene.data
+        surface = surface or self.surface.value
+        on = ds["valid"].values & (ds["surface"].values == pl.SURFACES.index(surface))
         d = res.departure[ch]
-        ok = valid & np.isfinite(d)
+        ok = on & np.isfinite(d)
         vals, cls = d[ok], res.mask[ok]
         lines = []
-        if "cold_departure" in res.thresholds:
-            lines.append((_median_threshold(res.thresholds["cold_departure"], valid), "cold (−k·σ, median)", "dashed"))
-        if "warm_departure" in res.thresholds:
-            lines.append((_median_threshold(res.thresholds["warm_departure"], valid), "warm", "dotted"))
+        if on.any() and "cold_departure" in res.thresholds:
+            lines.append((_median_threshold(res.thresholds["cold_departure"], on), "cold (−k·σ, median)", "dashed"))
+        if on.any() and "warm_departure" in res.thresholds:
+            lines.append((_median_threshold(res.thresholds["warm_departure"], on), "warm", "dotted"))
         # the range around the thresholds, where tuning matters; the tails pile up in the end bins
         cuts = [v for v, _, _ in lines] or [0.0]
         lo = min(min(cuts) - 6.0, -8.0)
@@ -73,20 +95,27 @@ class DepartureHistogram(_ModelPlot):
             parts.append((name, stack.copy()))
         kdim = hv.Dimension("dep", label=f"departure observed − clear, {channel_label(ch)}", unit="K")
         vdim = hv.Dimension("n", label="pixels")
-        layers = [hv.Histogram((edges, top), kdims=[kdim], vdims=[vdim], label=name)
+        floor = 0.8 if log else 0.0  # a log axis needs a bottom above 0
+        layers = [hv.Histogram((edges, np.maximum(top, floor)), kdims=[kdim], vdims=[vdim], label=name)
                   .opts(color=CLASS_COLOURS[name], line_color="#4a5560", line_width=0.5)
                   for name, top in reversed(parts)]  # tallest first, so each class shows as its band
         inner = stack[1:-1]  # the end bins gather the tails and may tower over the rest
         ymax = float(inner.max()) if inner.size and inner.max() > 0 else max(float(stack.max()), 1.0)
+        if log:
+            ymax = max(float(stack.max()), 1.0)
         for k, (v, text, dash) in enumerate(lines):
+            y_text = ymax * (10 ** (0.3 - 0.25 * k) if log else 1.08 - 0.09 * k)
             layers.append(hv.VLine(v).opts(color=INK, line_dash=dash, line_width=1.6))
-            layers.append(hv.Text(v, ymax * (1.08 - 0.09 * k), f" {text}: {v:+.2f} K", fontsize=9, halign="left",
+            layers.append(hv.Text(v, y_text, f" {text}: {v:+.2f} K", fontsize=9, halign="left",
                                   valign="center").opts(text_color=INK))
         outside = int(((vals < lo) | (vals > hi)).sum())
         return hv.Overlay(layers).opts(
-            title=f"Window-channel departures by class · {outside:,} beyond the range are in the end bins",
-            frame_width=520, frame_height=260, legend_position="right", ylim=(0, ymax * 1.15), xlim=(lo, hi),
-            show_grid=True, toolbar="above", active_tools=["pan"], fontscale=0.9)
+            title=(f"Window-channel departures by class · {SURFACE_LABELS[surface].lower()}, "
+                   f"{int(on.sum()):,} pixels · {outside:,} beyond the range in the end bins"),
+            frame_width=520, frame_height=260, legend_position="right",
+            ylim=(floor, ymax * (4.0 if log else 1.15)), xlim=(lo, hi), logy=bool(log),
+            yformatter=NumeralTickFormatter(format="0,0"), show_grid=True, toolbar="above", active_tools=["pan"],
+            fontscale=0.9)
 
 
 class SplitWindowScatter(_ModelPlot):
