@@ -433,3 +433,19 @@ def test_departure_histogram_draws_the_thresholds_of_the_surface_shown(tmp_path)
     assert cold_line("land") < land  # a larger k·σ puts the cold line further out
     log_plot = hist.plot(surface="land", log=True)
     assert log_plot.opts.get().kwargs.get("logy") is True
+
+
+def test_cloud_class_outline_for_the_temperature_maps(model):
+    """The outline drawn over the temperature maps is the rim of the cloud class (cloud pixels with
+    a non-cloud neighbour), and nothing when switched off."""
+    from dashboard.views import MapGrid, Notices
+    from dashboard.views.focus import Focus
+
+    grid = MapGrid(model, Focus(model.result.mask.shape), Notices())
+    rim = np.isfinite(grid.mask_outline().data["cloud rim"])
+    cloud = model.result.mask == CLOUD
+    assert rim.any() and np.all(cloud[rim])
+    interior = cloud.copy()
+    interior[1:-1, 1:-1] &= cloud[:-2, 1:-1] & cloud[2:, 1:-1] & cloud[1:-1, :-2] & cloud[1:-1, 2:]
+    assert not np.any(rim[1:-1, 1:-1] & interior[1:-1, 1:-1])
+    assert not np.isfinite(grid.mask_outline(show=False).data["cloud rim"]).any()

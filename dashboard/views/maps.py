@@ -40,6 +40,8 @@ PTOP_CMAP = list(colorcet.palette["CET_L8"])[::-1]  # high (low-pressure) tops i
 SIGMA_CMAP = list(colorcet.palette["CET_L20"])
 #: colour range of the departure in units of σ (the tests fire at about −3)
 Z_CLIM = (-6.0, 6.0)
+#: colour of the cloud class's outline on the temperature maps (ours: the palettes' complement)
+MASK_OUTLINE = "#ff9f1c"
 #: default colour range of the departure maps, ± [K] (a range control changes it)
 DEPARTURE_RANGE = 5.0
 
@@ -112,6 +114,8 @@ class MapGrid(Viewer):
         self.departure_range = pn.widgets.FloatInput(
             label="departure colour range ± [K]", value=DEPARTURE_RANGE, start=0.5, end=150.0, step=0.5, width=190,
             css_classes=["cs-departure-range"], margin=(0, 10))
+        self.show_mask_outline = pn.widgets.Checkbox(name="outline the cloud class on the temperature maps",
+                                                     value=True, css_classes=["cs-mask-outline"], margin=(22, 10))
         self._sigma_clim = (0.0, max(0.5, _robust_range([sim.sigma[c] for c in sim.channels], 0, 99.5)[1]))
         p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
         self._ptop_clim = (100.0, max(1000.0, float(np.nanmax(p_surf)) if np.isfinite(p_surf).any() else 1013.25))
@@ -131,7 +135,8 @@ class MapGrid(Viewer):
             'further down in a narrower one) shows its numbers. For QA edits pick the box or lasso tool in a map\'s toolbar '
             'and drag over the map; the selection is outlined (dashed) on the class map.</span>',
             margin=(0, 10))
-        return pn.Column(hint, pn.Row(self.departure_range, self._readout), self._layout, width=2 * (self._fw + 190))
+        return pn.Column(hint, pn.Row(self.departure_range, self.show_mask_outline, self._readout), self._layout,
+                         width=2 * (self._fw + 190))
 
     # ------------------------------------------------------------------ elements
     def _image(self, arr, vdim, _what=None):
@@ -288,6 +293,14 @@ class MapGrid(Viewer):
                 * hv.Points(pts, kdims=[XDIM, YDIM]).opts(size=15, line_color=SELECTION_LINE, line_width=1.5,
                                                            **ring))
 
+    def mask_outline(self, version=None, show=True):
+        """The rim of the pixels classed cloud (drawn over the temperature maps when switched on)."""
+        cloud = (self.model.result.mask == pl.CLOUD) if show else np.zeros(self.model.result.mask.shape, bool)
+        rim = cloud & ~ndimage.binary_erosion(cloud, border_value=0)
+        return hv.Image((self._xs, self._ys, np.where(rim, 1.0, np.nan).astype(np.float32)), kdims=[XDIM, YDIM],
+                        vdims=["cloud rim"]).opts(cmap=[MASK_OUTLINE], clim=(0, 1), colorbar=False, tools=[],
+                                                  clipping_colors={"NaN": "#00000000"})
+
     def selection_outline(self, outline=None):
         path = hv.Path([outline] if outline else [], kdims=[XDIM, YDIM])
         return path.opts(color=SELECTION_LINE, line_width=1.5, line_dash="dashed", tools=[])
@@ -331,7 +344,8 @@ class MapGrid(Viewer):
         fig.x_range, fig.y_range = self._x_range, self._y_range
         plot.handles["x_range"], plot.handles["y_range"] = self._x_range, self._y_range
 
-    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False, overlay=None, dynamic=None):
+    def _panel_map(self, fn, refs, opts, aggregator="mean", outline=False, overlay=None, dynamic=None,
+                   mask_rim=False):
         if self.rasterized:  # datashader (and numba) load only when a scene needs them
             from holoviews.operation.datashader import rasterize
         dmap = hv.DynamicMap(pn.bind(fn, **refs))
@@ -342,6 +356,13 @@ class MapGrid(Viewer):
             dmap = dmap.apply.opts(**dynamic)
         self._attach_streams(dmap)
         layers = dmap
+        if mask_rim:  # the cloud mask's outline over a temperature map
+            rim = hv.DynamicMap(pn.bind(self.mask_outline, version=self.model.param.version,
+                                        show=self.show_mask_outline))
+            if self.rasterized:
+                rim = rasterize(rim, aggregator="max").opts(cmap=[MASK_OUTLINE], clim=(0, 1), colorbar=False,
+                                                            clipping_colors={"NaN": "#00000000"})
+            layers = layers * rim
         if overlay is not None:  # categories drawn over the values (cloud maps)
             fn2, opts2 = overlay
             over = hv.DynamicMap(pn.bind(fn2, **refs))
@@ -362,9 +383,11 @@ class MapGrid(Viewer):
         class_ticks = {k: name.replace("_", " ") for k, name in enumerate(pl.CLASS_NAMES)}
         specs = [
             (self.observed, self.title_observed, {"channel": ch}, self._opts(
-                "observed BT", "@image{0.00} K", "observed BT [K]", cmap=BT_CMAP, clim=self._bt_clim), {}),
+                "observed BT", "@image{0.00} K", "observed BT [K]", cmap=BT_CMAP, clim=self._bt_clim),
+             {"mask_rim": True}),
             (self.clear_sky, self.title_clear, {"channel": ch}, self._opts(
-                "clear-sky BT", "@image{0.00} K", "clear-sky BT [K]", cmap=BT_CMAP, clim=self._bt_clim), {}),
+                "clear-sky BT", "@image{0.00} K", "clear-sky BT [K]", cmap=BT_CMAP, clim=self._bt_clim),
+             {"mask_rim": True}),
             (self.departure, self.title_departure, {"channel": ch, "version": ver}, self._opts(
                 "observed − clear", "@image{+0.00} K", "observed − clear [K]", cmap=DEPARTURE_CMAP,
                 symmetric=True),
