@@ -29,6 +29,7 @@ from .invert import PHASE_NAMES, PHASE_WORDS, bias_close, invert_all, inversion_
 from .journal import Journal, StaleEditsError, journal_path
 from .registry import REGISTRY, bit_table
 from .scene import load_scene
+from .truth import read_truth, skill
 from .screen import edits_grid, screen_scene, summary_row
 from . import simulate as simulation
 
@@ -71,6 +72,8 @@ class Session:
         self.journal = journal or None
         self.problems = list(self.journal.problems) if self.journal is not None else []
         self.sim = sim if sim is not None else simulation.simulate(scene, self.config)
+        #: the scene's truth file where one lies beside it (truth.read_truth), else None
+        self.truth = read_truth(scene.path, (scene.data.sizes["y"], scene.data.sizes["x"]))
         #: large scene: no level data kept (simulate.LEVELS_PIXEL_LIMIT); results held in float32
         self.lean = self.sim.level_pressure is None
         self._cloud = None
@@ -243,6 +246,10 @@ class Session:
 
     def edit_listing(self):
         return self.journal.listing() if self.journal is not None else []
+
+    def truth_skill(self):
+        """The current mask's :class:`truth.Skill` against the scene's truth file, or None without one."""
+        return skill(self.result.mask, self.truth) if self.truth is not None else None
 
     def edit_places(self):
         """The edits in force, newest first, with where they are: dicts of id, time, action, count and

@@ -66,6 +66,9 @@ class ScreeningModel(param.Parameterized):
     def edit_places(self):
         return self.session.edit_places()
 
+    def truth_skill(self):
+        return self.session.truth_skill()
+
     def label_scores(self):
         return self.session.label_scores()
 

@@ -12,7 +12,6 @@ from typing import NamedTuple
 
 import numpy as np
 
-from cloudsieve.codes import CLOUD, MARGINAL
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_scenes"
 #: Targets of issue 13: truth-clear classed cloud at most this share, POD at least this.
@@ -38,14 +37,14 @@ class Figures(NamedTuple):
 
 def skill_figures(result, truth):
     """:class:`Figures` of a screening ``result`` (Session.result) against a truth Dataset."""
+    from cloudsieve.truth import Truth, skill
+
     fraction = truth["cloud_fraction"].values
     clear = fraction == 0
-    target = (fraction >= 0.5) & (truth["cloud_optical_depth"].values >= 1.0)
-    mask = result.mask
+    sk = skill(result.mask, Truth(None, fraction, np.nan_to_num(truth["cloud_optical_depth"].values, nan=0.0)))
     fires = {name: float(np.mean(np.nan_to_num(np.asarray(m), nan=-1.0)[clear] > 0))
              for name, m in result.margins.items()}
-    return Figures(float(np.mean(mask[clear] == CLOUD)), float(np.mean(mask[clear] == MARGINAL)),
-                   float(np.mean(mask[target] == CLOUD)), int(clear.sum()), int(target.sum()), fires)
+    return Figures(sk.clear_classed_cloud, sk.clear_classed_marginal, sk.pod, sk.n_clear, sk.n_target, fires)
 
 
 def scene_generator():

@@ -449,3 +449,29 @@ def test_cloud_class_outline_for_the_temperature_maps(model):
     interior[1:-1, 1:-1] &= cloud[:-2, 1:-1] & cloud[2:, 1:-1] & cloud[1:-1, :-2] & cloud[1:-1, 2:]
     assert not np.any(rim[1:-1, 1:-1] & interior[1:-1, 1:-1])
     assert not np.isfinite(grid.mask_outline(show=False).data["cloud rim"]).any()
+
+
+def test_live_skill_against_a_truth_file_beside_the_scene(tmp_path):
+    """With `<scene>_truth.nc` beside the scene the session scores its current mask against it
+    (definitions of tests/skill_figures.py) and the score follows a retune; without one, None."""
+    import shutil
+
+    from skill_figures import skill_figures
+
+    samples = Path(__file__).resolve().parents[1] / "sample_scenes"
+    shutil.copy(samples / "night_front.nc", tmp_path / "night_front.nc")
+    alone = ScreeningModel.open(tmp_path / "night_front.nc")
+    assert alone.truth_skill() is None
+    shutil.copy(samples / "night_front_truth.nc", tmp_path / "night_front_truth.nc")
+    model = ScreeningModel.open(tmp_path / "night_front.nc")
+    sk = model.truth_skill()
+    import xarray as xr
+
+    ref = skill_figures(model.result, xr.open_dataset(tmp_path / "night_front_truth.nc"))
+    assert sk.pod == pytest.approx(ref.pod) and sk.clear_classed_cloud == pytest.approx(ref.clear_classed_cloud)
+    model.set_threshold("cold_departure", 1.0)  # much more cloud: POD up, false alarms up
+    after = model.truth_skill()
+    assert after.clear_classed_cloud > sk.clear_classed_cloud and after.pod >= sk.pod
+    from dashboard.views import ClassCounts
+
+    assert "vs truth" in ClassCounts(model)._html()

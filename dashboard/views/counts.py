@@ -34,4 +34,14 @@ class ClassCounts(Viewer):
                 f'<div class="cs-swatch" style="background:{CLASS_COLOURS[name]}"></div>'
                 f'<div><div class="cs-label">{name}</div><div class="cs-value">{100 * frac:.1f}%</div>'
                 f'<div class="cs-pixels">{round(frac * n):,} px</div></div></div>')
+        sk = m.truth_skill()
+        if sk is not None:  # a truth file lies beside the scene: the skill follows every change
+            pod = "–" if sk.pod != sk.pod else f"{sk.pod:.3f}"
+            chips.append(
+                f'<div class="cs-count cs-truth" title="against {html.escape(m.session.truth.path.name)}: POD = share '
+                f'of truth cloud (fraction ≥ 0.5, τ ≥ 1) classed cloud; false alarms = share of truth-clear '
+                f'pixels classed cloud"><div><div class="cs-label">vs truth</div>'
+                f'<div class="cs-value">POD {pod}</div><div class="cs-pixels">false alarms '
+                f'{100 * sk.clear_classed_cloud:.2f} % · marginal {100 * sk.clear_classed_marginal:.2f} %</div></div>'
+                f'</div>')
         return f'<div class="cs-counts">{"".join(chips)}</div>'
