@@ -15,11 +15,13 @@ import sys
 import threading
 from pathlib import Path
 
+import numpy as np
 import panel as pn
 from bokeh.core.validation import silence
 from bokeh.core.validation.warnings import FIXED_SIZING_MODE
 
 from cloudsieve import CAUTION, __version__
+from cloudsieve.codes import MARGINAL
 from cloudsieve.config import config_json, load_config
 from cloudsieve.errors import CloudsieveError, PathError, SceneError
 from cloudsieve.export import result_key
@@ -30,6 +32,7 @@ from cloudsieve.simulate import simulate
 from .model import ScreeningModel
 from .views import (ClassCounts, Diagnostics, ExportPanel, Focus, MapGrid, Notices, PixelInspector, QAPanel,
                     TuningPanel)
+from .views.keys import KeyShortcuts
 from .views.scenes import ScenePicker, UploadBox
 from .views.style import ACCENT, BUTTON_GROUP_CSS, PAGE_CSS, channel_label, legend_html
 
@@ -155,6 +158,10 @@ class Session:
         self.model = None
         self.notices = Notices()
         self._uploaded = {}
+        self.qa = None
+        # keyboard shortcuts of the QA work (one listener per page, acting on the scene on screen)
+        self.keys = KeyShortcuts(width=0, height=0, margin=0)
+        self.keys.param.watch(self._on_key, "pressed")
         self._uploading = []  # the path of an upload being opened (its QA card says where edits go)
         # sidebar
         self.picker = ScenePicker(self.catalog, self.open_name, self.notices)
@@ -202,7 +209,7 @@ class Session:
                               stylesheets=[".cs-caution { font-size: 0.9em; color: #5b4a1f; background: #fbf4e4; "
                                            "border-left: 3px solid #eaa221; padding: 5px 10px; border-radius: 3px; }"])
         return pn.template.FastListTemplate(
-            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.counts, self.tabs, footer],
+            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.counts, self.tabs, footer, self.keys],
             accent=ACCENT, header_background=ACCENT, sidebar_width=360, theme_toggle=False, main_layout=None,
             raw_css=[PAGE_CSS], main_max_width="", collapsed_sidebar=False)
 
@@ -248,6 +255,32 @@ class Session:
             except PathError:
                 continue
         return None
+
+    def _on_key(self, event):
+        key = (event.new or "").split(":")[0]
+        if self.model is None or self.qa is None:
+            return
+        try:
+            if key in ("c", "l"):
+                self.qa.mark_selection("cloud" if key == "c" else "clear")
+            elif key == "u":
+                self.qa._undo()
+            elif key == "n":
+                self._next_marginal()
+        except Exception as exc:  # noqa: BLE001 — shown in the page
+            self.notices.report(exc, "a keyboard shortcut")
+
+    def _next_marginal(self):
+        """Inspect the next marginal pixel after the current one (row by row, wrapping round)."""
+        mask = self.model.result.mask
+        flat = np.flatnonzero(mask.ravel() == MARGINAL)
+        if not flat.size:
+            self.notices.show("No marginal pixels in this scene at the current settings.", "info")
+            return
+        cur = self.focus.pixel
+        start = -1 if cur is None else cur[0] * mask.shape[1] + cur[1]
+        nxt = flat[np.searchsorted(flat, start, side="right") % flat.size]
+        self.focus.pixel = (int(nxt // mask.shape[1]), int(nxt % mask.shape[1]))
 
     def _uploaded_paths(self):
         return {scene.path for scene in self._uploaded.values()} | set(self._uploading)
@@ -341,8 +374,9 @@ class Session:
                                               stylesheets=[BUTTON_GROUP_CSS])
         channel.link(model, value="channel")
         maps = MapGrid(model, focus, self.notices)
+        self.qa = QAPanel(model, focus, self.notices, uploaded=model.scene.path in self._uploaded_paths())
         side = pn.Column(
-            pn.Card(QAPanel(model, focus, self.notices, uploaded=model.scene.path in self._uploaded_paths()),
+            pn.Card(self.qa,
                     title="Analyst QA", collapsible=False,
                     sizing_mode="stretch_width", css_classes=["cs-qa-card"]),
             pn.Card(PixelInspector(model, focus, self.notices), title="Pixel inspector", collapsible=False,

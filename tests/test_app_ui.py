@@ -390,3 +390,26 @@ def test_class_map_hover_says_which_test_decided_and_lists_every_margin(served_a
     assert re.search(r"decided by:\s*(Cold departure|Split-window excess|Texture|Night fog contrast)", text), text
     assert re.search(r"Cold departure margin:\s*[+-]\d+\.\d\d K", text), text
     screenshot(page, artifacts, "ui_class_hover_why.png")
+
+
+@pytest.mark.ui
+def test_keyboard_shortcuts_mark_undo_and_step_through_marginal_pixels(served_app, page, artifacts):
+    """C marks the selection cloud, U undoes it, N inspects the next marginal pixel; the QA card
+    lists the keys."""
+    journal = journal_path(served_app.data_dir / "night_front.nc")
+    open_dashboard(page, served_app.url)
+    expect(page.locator(".cs-shortcuts").first).to_contain_text("mark the selection cloud", timeout=TIMEOUT)
+    page.locator(".cs-counts-pane").first.click()  # focus on the page, not a field
+    page.keyboard.press("n")
+    heading = page.get_by_text(re.compile(r"Pixel row \d+, column \d+")).first
+    heading.wait_for(timeout=TIMEOUT)
+    assert "Class marginal" in markdown_text(page, ".cs-inspector")
+    n = _box_select(page, 60.2, 40.2, 89.8, 59.8)
+    assert n > 0
+    page.locator(".cs-counts-pane").first.click()
+    page.keyboard.press("c")
+    expect(page.locator(".cs-edits div").first).to_contain_text("marked cloud", timeout=TIMEOUT)
+    assert [e["action"] for e in read_journal(journal)] == ["cloud"]
+    page.keyboard.press("u")
+    expect(page.locator(".cs-edits div").first).to_contain_text("none yet", timeout=TIMEOUT)
+    screenshot(page, artifacts, "ui_keyboard.png")

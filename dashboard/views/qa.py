@@ -9,6 +9,7 @@ from panel.viewable import Viewer
 
 from cloudsieve.journal import StaleEditsError
 from cloudsieve.session import RepeatedEdit
+from .keys import shortcuts_html
 from .style import test_label
 
 
@@ -59,6 +60,7 @@ class QAPanel(Viewer):
             self.deselect,
             pn.pane.HTML(f"<div class='cs-muted'>{edits_statement(journal, uploaded)}</div>", margin=(4, 10),
                          css_classes=["cs-edits-where"]),
+            pn.pane.HTML(shortcuts_html(), margin=(0, 10)),
             self.edits,
             self._scores,
             sizing_mode="stretch_width")
@@ -80,6 +82,13 @@ class QAPanel(Viewer):
             self.notices.show(f"{entry['count']:,} pixel(s) {verb} (edit {entry['id']}).", "success")
             self.focus.clear_selection()
         return cb
+
+    def mark_selection(self, action):
+        """Mark the current selection (a keyboard shortcut); says so when nothing is selected."""
+        if not len(self.focus.selection):
+            self.notices.show("Select pixels first: the box or lasso tool in a map's toolbar, then drag.", "info")
+            return
+        self._mark_cb(action)(None)
 
     def _undo(self, _event=None):
         try:
