@@ -140,6 +140,23 @@ class Session:
             self.config["screening"]["marginal_fraction"] = float(marginal_fraction)
         self.update()
 
+    #: the parts of a configuration the session can take without a new clear-sky simulation
+    TUNABLE = ("tests", "bias", "cloud", "screening.marginal_fraction")
+
+    def apply_settings(self, config):
+        """Take the tunable parts of a full configuration (``TUNABLE``: tests, bias removal, cloud
+        layer, marginal band) and rescreen; returns the other top-level sections that differ from this
+        session's and were not applied (they change the clear-sky simulation: give the file to
+        ``cloudsieve screen --config`` or to ``cloudsieve serve --config``)."""
+        new = copy.deepcopy(self.config)
+        for key in ("tests", "bias", "cloud"):
+            new[key] = copy.deepcopy(config[key])
+        new["screening"]["marginal_fraction"] = float(config["screening"]["marginal_fraction"])
+        ignored = sorted(k for k in config if k not in ("tests", "bias", "cloud") and config[k] != new.get(k))
+        self.config = new
+        self.update()
+        return ignored
+
     def threshold(self, test, surface="sea"):
         """The tunable threshold of ``test`` for a surface type [its unit in the registry]."""
         return float(self.config["tests"][test][REGISTRY[test].tunable.key][surface])

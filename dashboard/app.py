@@ -395,7 +395,9 @@ class Session:
         if self.tabs.active == DIAGNOSTICS_TAB:
             self._on_tab()
         self.tuning[:] = [TuningPanel(model, self.notices)]
-        self.exports[:] = [ExportPanel(model, self.notices)]
+        self.exports[:] = [ExportPanel(model, self.notices, defaults=self.config,
+                                       on_settings=lambda: self.tuning.__setitem__(slice(None),
+                                                                                   [TuningPanel(model, self.notices)]))]
         if model.message:
             self.notices.show(model.message, "warning")
 

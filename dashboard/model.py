@@ -108,6 +108,16 @@ class ScreeningModel(param.Parameterized):
         """Switch a test on or off and rescreen."""
         self._run(self.session.set_enabled, test, on)
 
+    def apply_settings(self, config):
+        """Take a configuration's tunable settings (Session.apply_settings), align the widgets'
+        parameters with them and rescreen; returns the sections not applied."""
+        ignored = self._run(self.session.apply_settings, config)
+        s = self.session
+        with param.parameterized.discard_events(self):
+            self.param.update(cloud_top=s.cloud_top, top_pressure=s.top_pressure, remove_bias=s.remove_bias,
+                              marginal_fraction=s.marginal_fraction)
+        return ignored
+
     def mark(self, action, index):
         """Record a QA edit (clear / cloud / reset) of flat pixel indices, then rescreen."""
         return self._run(self.session.mark, action, index)

@@ -413,3 +413,21 @@ def test_keyboard_shortcuts_mark_undo_and_step_through_marginal_pixels(served_ap
     page.keyboard.press("u")
     expect(page.locator(".cs-edits div").first).to_contain_text("none yet", timeout=TIMEOUT)
     screenshot(page, artifacts, "ui_keyboard.png")
+
+
+@pytest.mark.ui
+def test_settings_are_loaded_from_a_file_and_reset(served_app, page, tmp_path):
+    """A TOML settings file loaded in the app sets the sliders; "Reset to defaults" brings them back."""
+    settings = tmp_path / "tuned.toml"
+    settings.write_text("[tests.cold_departure]\nk_sigma = { sea = 4.5, land = 4.5, ice = 4.5 }\n")
+    open_dashboard(page, served_app.url)
+    before = cloud_percent(page)
+    page.locator(".cs-load-settings input[type=file]").first.set_input_files(str(settings))
+    page.get_by_text("Settings loaded from tuned.toml").first.wait_for(timeout=TIMEOUT)
+    slider = page.locator(".cs-slider-cold_departure").first
+    expect(slider).to_contain_text("4.50", timeout=TIMEOUT)
+    expect(page.locator(".cs-count-cloud .cs-value").first).not_to_have_text(before, timeout=TIMEOUT)
+    page.get_by_role("button", name="Reset to defaults").click()
+    page.get_by_text("Settings reset to the defaults").first.wait_for(timeout=TIMEOUT)
+    expect(page.locator(".cs-slider-cold_departure").first).to_contain_text("3.00", timeout=TIMEOUT)
+    expect(page.locator(".cs-count-cloud .cs-value").first).to_have_text(before, timeout=TIMEOUT)

@@ -475,3 +475,30 @@ def test_live_skill_against_a_truth_file_beside_the_scene(tmp_path):
     from dashboard.views import ClassCounts
 
     assert "vs truth" in ClassCounts(model)._html()
+
+
+def test_settings_load_and_reset(model, tmp_path):
+    """Saved settings loaded into another session give its thresholds, switches and cloud settings;
+    reset brings the defaults back; sections that would change the clear-sky simulation are not
+    applied and are named."""
+    import copy
+
+    from cloudsieve.config import load_config
+
+    model.set_threshold("cold_departure", 4.5, "sea")
+    model.set_enabled("texture", False)
+    model.cloud_top = "opaque"
+    saved = copy.deepcopy(model.config)
+    mask_tuned = model.result.mask.copy()
+    other = ScreeningModel.open(model.scene.path, journal=False)
+    assert other.apply_settings(saved) == []
+    assert other.threshold("cold_departure", "sea") == 4.5 and not other.enabled("texture")
+    assert other.cloud_top == "opaque"
+    np.testing.assert_array_equal(other.result.mask, mask_tuned)
+    defaults = load_config()
+    assert other.apply_settings(defaults) == []
+    assert other.threshold("cold_departure", "sea") == defaults["tests"]["cold_departure"]["k_sigma"]["sea"]
+    assert other.enabled("texture") and other.cloud_top == defaults["cloud"]["top"]
+    changed = copy.deepcopy(defaults)
+    changed["background_errors"]["skin_temperature"]["sea"] = 2.0
+    assert other.apply_settings(changed) == ["background_errors"]
