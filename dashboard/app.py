@@ -160,7 +160,7 @@ class Session:
         self._uploaded = {}
         self.qa = None
         # keyboard shortcuts of the QA work (one listener per page, acting on the scene on screen)
-        self.keys = KeyShortcuts(width=0, height=0, margin=0)
+        self.keys = KeyShortcuts(margin=0)
         self.keys.param.watch(self._on_key, "pressed")
         self._uploading = []  # the path of an upload being opened (its QA card says where edits go)
         # sidebar
@@ -190,6 +190,7 @@ class Session:
             pn.Card(self.exports, title="Download result", collapsible=True, sizing_mode="stretch_width"),
             pn.pane.HTML(legend_html(), margin=(4, 12)),
             caution,
+            self.keys,
         ]
         # the key to the codes of the maps and the downloads (the same text goes beside a CSV result)
         key = result_key().replace("# cloudsieve result key", "## Key to the codes in maps and downloads", 1)
@@ -209,7 +210,7 @@ class Session:
                               stylesheets=[".cs-caution { font-size: 0.9em; color: #5b4a1f; background: #fbf4e4; "
                                            "border-left: 3px solid #eaa221; padding: 5px 10px; border-radius: 3px; }"])
         return pn.template.FastListTemplate(
-            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.counts, self.tabs, footer, self.keys],
+            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.counts, self.tabs, footer],
             accent=ACCENT, header_background=ACCENT, sidebar_width=360, theme_toggle=False, main_layout=None,
             raw_css=[PAGE_CSS], main_max_width="", collapsed_sidebar=False)
 

@@ -4,35 +4,30 @@ One invisible browser component per page listens for the keys (not while typing 
 and reports the key to the server, which acts on the current scene's QA panel and focus.
 """
 import param
-from panel.custom import JSComponent
+from panel.reactive import ReactiveHTML
 
 #: key -> what it does (listed in the QA card)
 SHORTCUTS = {"c": "mark the selection cloud", "l": "mark the selection clear", "u": "undo the latest edit",
              "n": "inspect the next marginal pixel"}
 
 
-class KeyShortcuts(JSComponent):
+class KeyShortcuts(ReactiveHTML):
     """Reports a pressed shortcut key as ``pressed`` = "<key>:<time>" (every press a new value)."""
 
     pressed = param.String(default="")
 
-    _esm = """
-    export function render({ model }) {
-      const keys = %s;
-      const handler = (e) => {
+    _template = '<span id="keys" class="cs-keys"></span>'
+
+    _scripts = {"render": """
+      const shortcutKeys = %s;
+      document.addEventListener('keydown', (e) => {
         if (e.ctrlKey || e.metaKey || e.altKey) return;
         const target = e.composedPath()[0];
         if (target && (['INPUT', 'TEXTAREA', 'SELECT'].includes(target.tagName) || target.isContentEditable)) return;
         const k = (e.key || '').toLowerCase();
-        if (keys.includes(k)) { model.pressed = k + ':' + Date.now(); }
-      };
-      document.addEventListener('keydown', handler);
-      model.on('remove', () => document.removeEventListener('keydown', handler));
-      const el = document.createElement('span');
-      el.className = 'cs-keys';
-      return el;
-    }
-    """ % list(SHORTCUTS)
+        if (shortcutKeys.includes(k)) { data.pressed = k + ':' + Date.now(); }
+      });
+    """ % list(SHORTCUTS)}
 
 
 def shortcuts_html():
