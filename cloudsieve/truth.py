@@ -15,7 +15,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .codes import CLOUD, MARGINAL
+from .codes import CLOUD, MARGINAL, NO_DATA
 
 #: a target pixel: truth cloud fraction and optical depth at least these [1]
 TARGET_FRACTION = 0.5
@@ -75,3 +75,24 @@ def skill(mask, truth):
     return Skill(float(np.mean(mask[target] == CLOUD)) if n_t else float("nan"),
                  float(np.mean(mask[clear] == CLOUD)) if n_c else float("nan"),
                  float(np.mean(mask[clear] == MARGINAL)) if n_c else float("nan"), n_t, n_c)
+
+
+#: categories of :func:`comparison` (code -> words), in code order
+COMPARISON_NAMES = ("truth cloud, classed cloud", "truth cloud, missed", "truth clear, classed cloud",
+                    "truth clear, classed marginal", "thin or partial truth cloud")
+
+
+def comparison(mask, truth):
+    """Per pixel, how the mask (y, x) meets the truth, as float32 codes for a map: the index in
+    :data:`COMPARISON_NAMES` (with the definitions of :func:`skill`), NaN where both say clear or
+    the pixel has no data. A target pixel classed marginal counts as missed, as in POD."""
+    clear = truth.fraction == 0
+    target = (truth.fraction >= TARGET_FRACTION) & (truth.optical_depth >= TARGET_OPTICAL_DEPTH)
+    out = np.full(mask.shape, np.nan, np.float32)
+    out[~clear & ~target] = 4
+    out[clear & (mask == MARGINAL)] = 3
+    out[clear & (mask == CLOUD)] = 2
+    out[target & (mask != CLOUD)] = 1
+    out[target & (mask == CLOUD)] = 0
+    out[mask == NO_DATA] = np.nan
+    return out

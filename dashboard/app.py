@@ -33,6 +33,8 @@ from .model import ScreeningModel
 from .views import (ClassCounts, Diagnostics, ExportPanel, Focus, MapGrid, Notices, PixelInspector, QAPanel,
                     TuningPanel)
 from .views.keys import KeyShortcuts
+from .views.loading import LoadingPanel
+from .views.maps import DEFAULT_AVAILABLE_WIDTH, FRAME_WIDTH_RANGE, MAP_EXTRA_WIDTH
 from .views.scenes import ScenePicker, UploadBox
 from .views.style import ACCENT, BUTTON_GROUP_CSS, PAGE_CSS, channel_label, legend_html
 
@@ -59,6 +61,17 @@ DEFAULT_SCENE = "night_front.nc"
 SCENE_SUFFIXES = (".nc", ".csv", ".parquet")
 LOCAL_ADDRESSES = ("127.0.0.1", "localhost", "::1")
 DIAGNOSTICS_TAB = 1  # position of the Diagnostics tab
+SIDE_WIDTH = 390  # the QA and inspector column beside the maps [px]
+
+
+def maps_width(main_width):
+    """Width [px] the maps may fill in a main area ``main_width`` px wide: beside the QA and
+    inspector column where at least one map of the smallest size fits there, else the whole
+    width (the column then goes below the maps)."""
+    if not main_width:
+        return DEFAULT_AVAILABLE_WIDTH
+    beside = main_width - SIDE_WIDTH - 40
+    return beside if beside >= FRAME_WIDTH_RANGE[0] + MAP_EXTRA_WIDTH else max(main_width - 30, 200)
 
 
 # ---------------------------------------------------------------------------------------
@@ -121,8 +134,10 @@ _CACHE_SIZE = 4
 _CACHE_LOCK = threading.Lock()
 
 
-def load_cached(path, config):
-    """(Scene, Simulation) of a scene file, shared between sessions (both are never modified)."""
+def load_cached(path, config, progress=None):
+    """(Scene, Simulation) of a scene file, shared between sessions (both are never modified);
+    ``progress(stage)`` is told each stage as it starts."""
+    progress = progress or (lambda stage: None)
     path = Path(path).resolve()
     st = path.stat()
     key = (str(path), st.st_mtime_ns, st.st_size, config_json(config))
@@ -130,7 +145,9 @@ def load_cached(path, config):
         if key in _CACHE:
             _CACHE.move_to_end(key)
             return _CACHE[key]
+        progress("reading and checking the file")
         scene = compact_scene(load_scene(path, config=config))  # large scenes: lat/lon in float32 where lossless
+        progress(f"simulating the clear sky of {scene.data.sizes['y'] * scene.data.sizes['x']:,} pixels")
         sim = simulate(scene, config)
         _CACHE[key] = (scene, sim)
         while len(_CACHE) > _CACHE_SIZE:
@@ -162,6 +179,9 @@ class Session:
         # keyboard shortcuts of the QA work (one listener per page, acting on the scene on screen)
         self.keys = KeyShortcuts(margin=0)
         self.keys.param.watch(self._on_key, "pressed")
+        self.keys.param.watch(self._on_window, ["main_width", "window_height"])
+        self.loading = LoadingPanel()
+        self.map_grid = None
         self._uploading = []  # the path of an upload being opened (its QA card says where edits go)
         # sidebar
         self.picker = ScenePicker(self.catalog, self.open_name, self.notices)
@@ -174,7 +194,14 @@ class Session:
         self.diagnostics = pn.Column(sizing_mode="stretch_width", margin=0)
         self.template = self._assemble()
         first = self._first_scene(paths)
-        if first is not None:
+        if first is not None and _served():
+            # the page answers at once, saying which scene it opens and at which stage it is
+            self.loading.start(Path(first).name)
+            async def open_first():
+                await self._open_first(first)
+
+            pn.state.onload(open_first)
+        elif first is not None:
             self._open_sync(first)
         else:
             self.notices.show("No scene found. Put .nc, .csv or .parquet scenes into the data folder, or upload one.",
@@ -210,7 +237,7 @@ class Session:
                               stylesheets=[".cs-caution { font-size: 0.9em; color: #5b4a1f; background: #fbf4e4; "
                                            "border-left: 3px solid #eaa221; padding: 5px 10px; border-radius: 3px; }"])
         return pn.template.FastListTemplate(
-            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.counts, self.tabs, footer],
+            title="cloudsieve", sidebar=sidebar, main=[banner, self.notices, self.loading, self.counts, self.tabs, footer],
             accent=ACCENT, header_background=ACCENT, sidebar_width=360, theme_toggle=False, main_layout=None,
             raw_css=[PAGE_CSS], main_max_width="", collapsed_sidebar=False)
 
@@ -257,6 +284,11 @@ class Session:
                 continue
         return None
 
+    def _on_window(self, *_):
+        """The browser reported the main area's size: fit the maps to it."""
+        if self.map_grid is not None:
+            self.map_grid.set_window(maps_width(self.keys.main_width), self.keys.window_height or None)
+
     def _on_key(self, event):
         key = (event.new or "").split(":")[0]
         if self.model is None or self.qa is None:
@@ -292,36 +324,58 @@ class Session:
             self.upload.clear_report()  # the report of an earlier upload is about another scene
         if name in self._uploaded:
             scene = self._uploaded[name]
-            await self._open(lambda: (scene, None), name)
+            await self._open(lambda progress: (scene, None), name)
             return
         try:
             path = self.catalog.resolve(name)
         except PathError as exc:
             self.notices.report(exc, f"opening {name}")
             return
-        await self._open(lambda: load_cached(path, self.config), name)
+        await self._open(lambda progress: load_cached(path, self.config, progress), name)
 
     async def open_scene(self, scene):
         """Open a validated, uploaded scene."""
         label = f"⬆ {scene.path.name} (uploaded)"
         self._uploading = [scene.path]
-        if await self._open(lambda: (scene, None), label):
+        if await self._open(lambda progress: (scene, None), label):
             self._uploaded[label] = scene
             self.picker.update_options(current=label, extra=list(self._uploaded))
 
+    async def _open_first(self, path):
+        label = self._label_of(path) or Path(path).name
+        if await self._open(lambda progress: load_cached(path, self.config, progress), label):
+            self.picker.update_options(current=self._label_of(path))
+
     async def _open(self, load, label):
-        """Build a model off the event loop, then its views; True when the scene is on screen."""
-        self.tabs.loading = True
+        """Build a model off the event loop, then its views; True when the scene is on screen.
+        ``load(progress)`` gives (scene, simulation or None); the loading panel shows each stage."""
+        self.loading.start(label)
         self.notices.clear()
         log.info("opening scene %s", label)
+        doc = pn.state.curdoc
+        served = doc is not None and doc.session_context is not None
+
+        def progress(stage):  # called from the worker thread: the page is changed on its own loop
+            if served:
+                doc.add_next_tick_callback(lambda: self.loading.stage(stage))
+            else:
+                self.loading.stage(stage)
+
         try:
             loop = asyncio.get_running_loop()
 
             def build():
-                scene, sim = load()
+                scene, sim = load(progress)
+                n = scene.data.sizes["y"] * scene.data.sizes["x"]
+                if sim is None:
+                    progress(f"simulating the clear sky of {n:,} pixels")
+                    sim = simulate(scene, self.config)
+                progress(f"screening {n:,} pixels and inverting the cloud layer of the flagged ones")
                 return ScreeningModel(scene, self.config, sim=sim)
 
             model = await loop.run_in_executor(None, build)
+            self.loading.stage("drawing the maps")
+            await asyncio.sleep(0)  # let the stage reach the browser before the views are built
             self._show_model(model)
             log.info("opened scene %s", label)
             return True
@@ -330,7 +384,7 @@ class Session:
             self.picker.update_options(current=self._current_label())
             return False
         finally:
-            self.tabs.loading = False
+            self.loading.done()
 
     def _on_tab(self, *_):
         if self.tabs.active != DIAGNOSTICS_TAB or len(self.diagnostics) or self.model is None:
@@ -374,7 +428,9 @@ class Session:
                                               margin=(6, 10), css_classes=["cs-channel"],
                                               stylesheets=[BUTTON_GROUP_CSS])
         channel.link(model, value="channel")
-        maps = MapGrid(model, focus, self.notices)
+        maps = MapGrid(model, focus, self.notices, available_width=maps_width(self.keys.main_width),
+                       window_height=self.keys.window_height or None)
+        self.map_grid = maps
         self.qa = QAPanel(model, focus, self.notices, uploaded=model.scene.path in self._uploaded_paths())
         side = pn.Column(
             pn.Card(self.qa,
@@ -382,14 +438,17 @@ class Session:
                     sizing_mode="stretch_width", css_classes=["cs-qa-card"]),
             pn.Card(PixelInspector(model, focus, self.notices), title="Pixel inspector", collapsible=False,
                     sizing_mode="stretch_width", css_classes=["cs-inspector-card"]),
-            sizing_mode="stretch_width", min_width=380, margin=(0, 0, 0, 10), styles={"flex": "1 1 380px"})
+            width=SIDE_WIDTH - 10, margin=(0, 0, 0, 10), css_classes=["cs-side"],
+            # beside the maps it stays in view while the page scrolls (its own scroll bar if taller)
+            styles={"flex": f"0 0 {SIDE_WIDTH - 10}px", "position": "sticky", "top": "0px",
+                    "max-height": "100vh", "overflow-y": "auto"})
         self.counts[:] = [ClassCounts(model)]
-        # a flex box: on a laptop-width window the QA and inspector column wraps below the maps
-        # instead of being cut off at the right edge
+        # a flex box: the maps fill the width left beside the QA and inspector column (sized from the
+        # window the browser reports); in a very narrow window the column wraps below the maps
         self.maps[:] = [pn.FlexBox(pn.Column(
             pn.Row(pn.pane.HTML("<b>Channel of the temperature maps</b>", margin=(12, 0, 0, 10)), channel),
-            maps, styles={"flex": "0 0 auto"}), side, flex_wrap="wrap", align_items="flex-start",
-            sizing_mode="stretch_width")]
+            maps, styles={"flex": "1 1 0px", "min-width": "0px"}), side, flex_wrap="wrap",
+            align_items="flex-start", sizing_mode="stretch_width")]
         # the diagnostics take a second or two to draw: built when their tab is first shown,
         # behind a spinner, not with every scene
         self.diagnostics[:] = []
@@ -442,6 +501,12 @@ assumed top). Hover names the status and phase.
 
 cloudsieve {__version__}
 """
+
+
+def _served():
+    """True inside a server session (a page in a browser), False when a page is built directly."""
+    doc = pn.state.curdoc
+    return doc is not None and doc.session_context is not None
 
 
 def _query_scene():

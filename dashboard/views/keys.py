@@ -1,7 +1,10 @@
-"""Keyboard shortcuts of the QA work: mark cloud, mark clear, undo, next marginal pixel.
+"""Keyboard shortcuts of the QA work (mark cloud, mark clear, undo, next marginal pixel) and the
+size of the page's main area.
 
 One invisible browser component per page listens for the keys (not while typing in a field)
-and reports the key to the server, which acts on the current scene's QA panel and focus.
+and reports the key to the server, which acts on the current scene's QA panel and focus. It
+also reports the width of the main area and the window's height (at first and after every
+resize, the sidebar folded or unfolded included), so that the server sizes the maps to fit.
 """
 import param
 from panel.reactive import ReactiveHTML
@@ -15,6 +18,8 @@ class KeyShortcuts(ReactiveHTML):
     """Reports a pressed shortcut key as ``pressed`` = "<key>:<time>" (every press a new value)."""
 
     pressed = param.String(default="")
+    main_width = param.Integer(default=0, doc="Width of the page's main area [px] (0 until the browser reports)")
+    window_height = param.Integer(default=0, doc="Height of the browser window [px]")
 
     _template = '<span id="keys" class="cs-keys"></span>'
 
@@ -27,6 +32,20 @@ class KeyShortcuts(ReactiveHTML):
         const k = (e.key || '').toLowerCase();
         if (shortcutKeys.includes(k)) { data.pressed = k + ':' + Date.now(); }
       });
+      let timer = null;
+      const report = () => {
+        const main = document.getElementById('main');
+        const w = Math.round(main ? main.clientWidth : window.innerWidth);
+        const h = Math.round(window.innerHeight);
+        if (Math.abs(w - data.main_width) > 8 || Math.abs(h - data.window_height) > 8) {
+          data.main_width = w; data.window_height = h;
+        }
+      };
+      const later = () => { clearTimeout(timer); timer = setTimeout(report, 250); };
+      const main = document.getElementById('main');
+      if (main && window.ResizeObserver) { new ResizeObserver(later).observe(main); }
+      window.addEventListener('resize', later);
+      report();
     """ % list(SHORTCUTS)}
 
 

@@ -20,9 +20,11 @@ from cloudsieve import codes as pl
 from cloudsieve.invert import PHASE_NAMES
 from cloudsieve.registry import REGISTRY, bit_table
 from cloudsieve.screen import edits_grid
+from cloudsieve.truth import COMPARISON_NAMES, comparison
 from physics.cloud import (STATUS_BEYOND_OPAQUE, STATUS_ILL_CONDITIONED, STATUS_INVERTED, STATUS_NAMES,
                            STATUS_NOT_CLOUDY, STATUS_OPAQUE, STATUS_TOP_ASSUMED, STATUS_WARMER_THAN_CLEAR)
-from .style import CLASS_COLOURS, CLOUD_CATEGORY_COLOURS, EDIT_OUTLINE, SELECTION_LINE, channel_label, cloud_legend_html
+from .style import (CLASS_COLOURS, CLOUD_CATEGORY_COLOURS, EDIT_OUTLINE, SELECTION_LINE, TRUTH_COLOURS,
+                    channel_label, cloud_legend_html, swatch_legend_html, why_colours)
 
 XDIM = hv.Dimension("x", label="column")
 YDIM = hv.Dimension("y", label="row")
@@ -38,6 +40,8 @@ DEPARTURE_CMAP = list(colorcet.palette["CET_D1A"])   # blue (colder than clear) 
 TAU_CMAP = list(colorcet.palette["CET_L17"])[64:]
 PTOP_CMAP = list(colorcet.palette["CET_L8"])[::-1]  # high (low-pressure) tops in the brightest colour
 SIGMA_CMAP = list(colorcet.palette["CET_L20"])
+# a test's margin: blue (short of its threshold) – white (at it) – orange-red (fired)
+MARGIN_CMAP = list(colorcet.palette["CET_D1A"])
 #: colour range of the departure in units of σ (the tests fire at about −3)
 Z_CLIM = (-6.0, 6.0)
 #: colour of the cloud class's outline on the temperature maps (ours: the palettes' complement)
@@ -90,19 +94,48 @@ def _robust_range(arrays, lo=1.0, hi=99.0, pad=0.0):
     return float(a - pad), float(b + pad)
 
 
-class MapGrid(Viewer):
-    """The eight linked maps of the model's current result."""
+#: the maps an analyst can show (key -> name in the chooser), in page order
+MAPS = {"observed": "observed", "clear": "clear sky", "departure": "departure", "class": "class",
+        "why": "why flagged", "margin": "test margin", "tau": "optical depth", "top": "cloud top",
+        "sigma": "σ", "z": "departure / σ", "truth": "vs truth"}
+#: the maps shown when a scene opens (the others are a click away in the chooser)
+DEFAULT_MAPS = ("observed", "clear", "departure", "class", "why", "tau", "top", "z")
+#: width a map needs beyond its frame: axis, colour bar with its labels, padding [px]
+MAP_EXTRA_WIDTH = 190
+#: frame widths a map may take [px] (the window decides within these)
+FRAME_WIDTH_RANGE = (220, 1100)
+#: width assumed for the maps' column before the browser has reported its size [px]
+DEFAULT_AVAILABLE_WIDTH = 2 * (250 + MAP_EXTRA_WIDTH)
 
-    def __init__(self, model, focus, notices, frame_width=250, **params):
+
+def frame_size(available, n_maps, shape, height=None):
+    """(columns, frame width, frame height) [px] of n_maps maps of a (ny, nx) grid in a column of
+    ``available`` px: two columns where each map can still be FRAME_WIDTH_RANGE[0] wide, else one;
+    ``height`` (the window's) bounds a lone map's height so that it fits on one screen."""
+    ny, nx = shape
+    lo, hi = FRAME_WIDTH_RANGE
+    ncols = 2 if n_maps > 1 and available / 2 - MAP_EXTRA_WIDTH >= lo else 1
+    fw = int(min(hi, max(lo, available / ncols - MAP_EXTRA_WIDTH)))
+    if height and n_maps == 1:  # an enlarged map: as wide as the column allows and no taller than the screen
+        fw = int(max(lo, min(fw, (height - 260) * nx / ny)))
+    fh = max(120, int(round(fw * ny / nx)))
+    return ncols, fw, fh
+
+
+class MapGrid(Viewer):
+    """The linked maps of the model's current result (a chosen set, sized to the window)."""
+
+    def __init__(self, model, focus, notices, available_width=DEFAULT_AVAILABLE_WIDTH, window_height=None,
+                 **params):
         super().__init__(**params)
         self.model, self.focus, self.notices = model, focus, notices
         ds = model.scene.data
         self._xs = ds["col"].values.astype(float)
         self._ys = ds["row"].values.astype(float)
         ny, nx = ds.sizes["y"], ds.sizes["x"]
+        self._shape = (ny, nx)
         self.rasterized = ny * nx >= RASTERIZE_ABOVE
-        self._fw = frame_width
-        self._fh = max(120, int(round(frame_width * ny / nx)))
+        self._available, self._window_height = available_width, window_height
         sim = model.sim
         # colour ranges are fixed per scene (so retuning never rescales a map), over all channels;
         # observed and clear sky share one range, so one colour is one temperature on both
@@ -112,31 +145,83 @@ class MapGrid(Viewer):
         # departures centred on 0, ±DEPARTURE_RANGE K by default (thin cirrus, fog and marginal pixels
         # are a few K): the analyst widens it for the thick cloud's tens of K
         self.departure_range = pn.widgets.FloatInput(
-            label="departure colour range ± [K]", value=DEPARTURE_RANGE, start=0.5, end=150.0, step=0.5, width=190,
-            css_classes=["cs-departure-range"], margin=(0, 10))
+            name="departure and margin colour range ± [K]", value=DEPARTURE_RANGE, start=0.5, end=150.0, step=0.5,
+            width=230, css_classes=["cs-departure-range"], margin=(0, 10))
         self.show_mask_outline = pn.widgets.Checkbox(name="outline the cloud class on the temperature maps",
-                                                     value=True, css_classes=["cs-mask-outline"], margin=(22, 10))
+                                                     value=True, css_classes=["cs-mask-outline"], margin=(0, 10, 8, 10))
         self._sigma_clim = (0.0, max(0.5, _robust_range([sim.sigma[c] for c in sim.channels], 0, 99.5)[1]))
         p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
         self._ptop_clim = (100.0, max(1000.0, float(np.nanmax(p_surf)) if np.isfinite(p_surf).any() else 1013.25))
-        # one pair of ranges shared by all the figures: pan or zoom one and all follow
+        # one pair of ranges shared by all the figures: pan or zoom one and all follow (and survive a
+        # change of the maps shown or of their size)
         self._x_range = Range1d(float(self._xs[0]) - 0.5, float(self._xs[-1]) + 0.5)
         self._y_range = Range1d(float(self._ys[-1]) + 0.5, float(self._ys[0]) - 0.5)  # row 0 at the top
         #: the tests whose margins the class map's hover lists (every registered test, in order)
         self._why_tests = tuple(REGISTRY)
+        #: the categories of the "why flagged" map: each cloud test, an analyst edit, the warm flag
+        self._why_names = [REGISTRY[t].label for t in self._why_tests if REGISTRY[t].makes_cloud] + [
+            "analyst edit"] + [f"{REGISTRY[t].label} (flag only)" for t in self._why_tests
+                               if not REGISTRY[t].makes_cloud]
+        n_cloud = sum(REGISTRY[t].makes_cloud for t in self._why_tests)
+        self._why_colours = why_colours(n_cloud, len(self._why_tests) - n_cloud)
+        self._decided = (None, None)  # (version, codes): shared by the class map's hover and the why map
+        tests = {REGISTRY[t].label: t for t in self._why_tests}
+        self.margin_test = pn.widgets.Select(name="test", options=tests, value=self._why_tests[0], width=220,
+                                             css_classes=["cs-margin-test"], margin=(0, 10))
+        has_truth = model.session.truth is not None
+        options = {name: key for key, name in MAPS.items() if key != "truth" or has_truth}
+        self.shown = pn.widgets.CheckBoxGroup(
+            name="maps shown", options=options, value=[k for k in DEFAULT_MAPS if k in options.values()],
+            inline=True, css_classes=["cs-maps-shown"], margin=(0, 10), sizing_mode="stretch_width",
+            stylesheets=[".bk-input-group { flex-wrap: wrap; row-gap: 2px; }"])
+        self.enlarge = pn.widgets.Select(name="enlarge one map", options={"— (none)": "", **options}, value="",
+                                         width=170, css_classes=["cs-enlarge"], margin=(0, 10))
         self._readout = pn.pane.HTML(_READOUT_HINT, css_classes=["cs-readout"], margin=(0, 10), height=20,
                                      visible=self.rasterized, sizing_mode="stretch_width")
-        self._layout = self._build()
+        self._grid = pn.Column(margin=0, css_classes=["cs-map-area"])
+        self._layout_key = None
+        self._rebuild()
+        self.shown.param.watch(lambda *_: self._rebuild(), "value")
+        self.enlarge.param.watch(lambda *_: self._rebuild(), "value")
 
     def __panel__(self):
         hint = pn.pane.HTML(
             '<span class="cs-muted">Drag to pan, scroll to zoom (all maps follow). Click a pixel to inspect '
-            'it: it is ringed on every map, and the Pixel inspector (right of the maps in a wide window, '
-            'further down in a narrower one) shows its numbers. For QA edits pick the box or lasso tool in a map\'s toolbar '
-            'and drag over the map; the selection is outlined (dashed) on the class map.</span>',
+            'it: it is ringed on every map, and the Pixel inspector beside the maps shows its numbers. For QA '
+            'edits pick the box or lasso tool in a map\'s toolbar and drag over the map; the selection is '
+            'outlined (dashed) on the class map. Choose the maps shown below, or enlarge one.</span>',
             margin=(0, 10))
-        return pn.Column(hint, pn.Row(self.departure_range, self.show_mask_outline, self._readout), self._layout,
-                         width=2 * (self._fw + 190))
+        shown = pn.Row(pn.pane.HTML("<b>Maps</b>", margin=(4, 0, 0, 10)), self.shown, sizing_mode="stretch_width")
+        controls = pn.FlexBox(self.enlarge, self.departure_range, self.show_mask_outline, flex_wrap="wrap",
+                              align_items="flex-end", sizing_mode="stretch_width")
+        return pn.Column(hint, shown, controls, self._readout, self._grid, sizing_mode="stretch_width",
+                         css_classes=["cs-map-grid"])
+
+    # ------------------------------------------------------------------ layout
+    @property
+    def keys_shown(self):
+        """The keys of the maps on screen, in page order."""
+        if self.enlarge.value:
+            return [self.enlarge.value]
+        return [k for k in MAPS if k in self.shown.value]
+
+    def set_window(self, available_width, window_height=None):
+        """The width [px] the maps may fill (and the window's height): redraws them only when their
+        size changes."""
+        self._available, self._window_height = available_width, window_height
+        self._rebuild()
+
+    def _rebuild(self):
+        keys = self.keys_shown
+        ncols, fw, fh = frame_size(self._available, len(keys), self._shape, self._window_height)
+        layout_key = (tuple(keys), ncols, fw // 20)
+        if layout_key == self._layout_key:
+            return
+        self._layout_key = layout_key
+        self._fw, self._fh = fw, fh
+        self._streams = []
+        self._grid[:] = [self._build(keys, ncols)] if keys else [pn.pane.HTML(
+            "<span class='cs-muted'>No map chosen: pick one or more above.</span>", margin=10)]
 
     # ------------------------------------------------------------------ elements
     def _image(self, arr, vdim, _what=None):
@@ -200,7 +285,14 @@ class MapGrid(Viewer):
     def deciding_test(self):
         """Per pixel, which test decided the class (float codes for the hover): the index in
         ``self._why_tests`` of the fired cloud test with the largest margin relative to its threshold,
-        len(_why_tests) where an analyst edit decided, −1 where no cloud test fired."""
+        len(_why_tests) where an analyst edit decided, −1 where no cloud test fired (computed once
+        per result version, for the class map's hover and the why map)."""
+        version = self.model.version
+        if self._decided[0] != version:
+            self._decided = (version, self._deciding_test())
+        return self._decided[1]
+
+    def _deciding_test(self):
         res = self.model.result
         shape = res.mask.shape
         best = np.full(shape, -np.inf, np.float32)
@@ -229,6 +321,55 @@ class MapGrid(Viewer):
         return hv.Image((self._xs, self._ys, cls, self.deciding_test(), *margins), kdims=[XDIM, YDIM],
                         vdims=[hv.Dimension("class", label="class"), "decided"]
                         + [f"margin_{t}" for t in self._why_tests])
+
+    def why_codes(self):
+        """Per pixel, the index in ``self._why_names`` of what flagged it: the deciding cloud test,
+        an analyst edit, or (where no cloud test fired) a flag-only test that fired; NaN for none."""
+        decided = self.deciding_test()
+        out = np.full(decided.shape, np.nan, np.float32)
+        cloud_tests = [t for t in self._why_tests if REGISTRY[t].makes_cloud]
+        for k, t in enumerate(cloud_tests):
+            out[decided == self._why_tests.index(t)] = k
+        out[decided == len(self._why_tests)] = len(cloud_tests)
+        margins = self.model.result.margins
+        for k, t in enumerate(t for t in self._why_tests if not REGISTRY[t].makes_cloud):
+            if t in margins:
+                with np.errstate(invalid="ignore"):
+                    flag = (np.asarray(margins[t]) > 0) & np.isnan(out)
+                out[flag] = len(cloud_tests) + 1 + k
+        return out
+
+    def why(self, version=None):
+        codes = self.why_codes()
+        if self.rasterized:
+            return self._image(codes, hv.Dimension("why", label="why flagged"))
+        return hv.Image((self._xs, self._ys, codes, np.nan_to_num(codes, nan=-1.0)), kdims=[XDIM, YDIM],
+                        vdims=[hv.Dimension("why", label="why flagged"), "whycode"])
+
+    def margin(self, test, version=None):
+        res = self.model.result
+        arr = res.margins.get(test, np.full(res.mask.shape, np.nan))
+        return self._image(arr, hv.Dimension("margin", label="margin", unit="K"))
+
+    def truth(self, version=None):
+        truth = self.model.session.truth
+        codes = (comparison(self.model.result.mask, truth) if truth is not None
+                 else np.full(self.model.result.mask.shape, np.nan, np.float32))
+        if self.rasterized:
+            return self._image(codes, hv.Dimension("truth", label="vs truth"))
+        return hv.Image((self._xs, self._ys, codes, np.nan_to_num(codes, nan=-1.0)), kdims=[XDIM, YDIM],
+                        vdims=[hv.Dimension("truth", label="vs truth"), "truthcode"])
+
+    def title_why(self, version=None):
+        return "Why flagged: the test that decided (largest margin against its threshold)"
+
+    def title_margin(self, test, version=None):
+        t = REGISTRY[test]
+        return f"Margin of the {t.label} test (> 0: fired; threshold per surface type)"
+
+    def title_truth(self, version=None):
+        truth = self.model.session.truth
+        return f"Mask against the truth ({truth.path.name if truth is not None else 'none'})"
 
     def _cloud_code(self):
         """status × 4 + phase per pixel (−1 where no cloud was inverted): the hover's words."""
@@ -377,57 +518,98 @@ class MapGrid(Viewer):
             layers = layers * rim * sel
         return layers * hv.DynamicMap(pn.bind(self.inspected_marker, pixel=self.focus.param.pixel))
 
-    def _build(self):
+    def _categorical_opts(self, label, names, colours, words_js, code_field):
+        """Options of a categorical map (why flagged, vs truth): one colour per category, a colour
+        bar naming them, hover words."""
+        n = len(names)  # the colour bar shows the colours; the legend under the map names them
+        opts = self._opts(label, f"@{{{code_field}}}{{custom}}", label, cmap=list(colours), clim=(-0.5, n - 0.5),
+                          color_levels=n, colorbar_opts={"ticker": FixedTicker(ticks=list(range(n))),
+                                                         "major_label_overrides": {k: "" for k in range(n)},
+                                                         "width": 14})
+        if not self.rasterized:
+            opts["hover_tooltips"] = opts["hover_tooltips"][:2] + [(label, f"@{{{code_field}}}{{custom}}")]
+            opts["hover_formatters"] = {f"@{{{code_field}}}": CustomJSHover(code=words_js)}
+        return opts
+
+    @staticmethod
+    def _cloud_legend(table):
+        return cloud_legend_html([name for name, _ in table], NAN_COLOUR)
+
+    def _specs(self):
+        """key -> (element function, title function, references, plot options, extras) of every map."""
         m = self.model
         ch, ver = m.param.channel, m.param.version
         class_ticks = {k: name.replace("_", " ") for k, name in enumerate(pl.CLASS_NAMES)}
-        specs = [
-            (self.observed, self.title_observed, {"channel": ch}, self._opts(
+        symmetric = {"dynamic": {"clim": pn.bind(lambda v: (-abs(v or DEPARTURE_RANGE), abs(v or DEPARTURE_RANGE)),
+                                                 self.departure_range)}}
+        why_js = "const k = Math.round(value); return k < 0 ? 'no test fired' : (%s[k] || '');" % self._why_names
+        truth_js = ("const k = Math.round(value); return k < 0 ? 'clear in both, or no data' : (%s[k] || '');"
+                    % list(COMPARISON_NAMES))
+        return {
+            "observed": (self.observed, self.title_observed, {"channel": ch}, self._opts(
                 "observed BT", "@image{0.00} K", "observed BT [K]", cmap=BT_CMAP, clim=self._bt_clim),
-             {"mask_rim": True}),
-            (self.clear_sky, self.title_clear, {"channel": ch}, self._opts(
+                {"mask_rim": True}),
+            "clear": (self.clear_sky, self.title_clear, {"channel": ch}, self._opts(
                 "clear-sky BT", "@image{0.00} K", "clear-sky BT [K]", cmap=BT_CMAP, clim=self._bt_clim),
-             {"mask_rim": True}),
-            (self.departure, self.title_departure, {"channel": ch, "version": ver}, self._opts(
+                {"mask_rim": True}),
+            "departure": (self.departure, self.title_departure, {"channel": ch, "version": ver}, self._opts(
                 "observed − clear", "@image{+0.00} K", "observed − clear [K]", cmap=DEPARTURE_CMAP,
-                symmetric=True),
-             {"dynamic": {"clim": pn.bind(lambda v: (-abs(v or DEPARTURE_RANGE), abs(v or DEPARTURE_RANGE)),
-                                          self.departure_range)}}),
-            (self.mask, self.title_mask, {"version": ver}, self._mask_opts(
+                symmetric=True), symmetric),
+            "class": (self.mask, self.title_mask, {"version": ver}, self._mask_opts(
                 "class", "@image{custom}", "class", cmap=list(CLASS_COLOURS.values()), clim=(-0.5, 3.5),
                 color_levels=4, hover_formatters={"@image": CustomJSHover(code=_CLASS_JS),
                                                   "@{decided}": CustomJSHover(code=self._decided_js())},
                 colorbar_opts={"ticker": FixedTicker(ticks=[0, 1, 2, 3]), "major_label_overrides": class_ticks,
                                "major_label_text_font_size": "11px"}),
-             {"aggregator": "first", "outline": True}),
-            (self.optical_depth, self.title_tau, {"version": ver}, self._cloud_opts(
+                {"aggregator": "first", "outline": True}),
+            "why": (self.why, self.title_why, {"version": ver}, self._categorical_opts(
+                "why flagged", self._why_names, self._why_colours, why_js, "whycode"),
+                {"aggregator": "first", "outline": True,
+                 "legend": list(zip(self._why_colours, self._why_names)) + [(NAN_COLOUR, "no test fired")]}),
+            "margin": (self.margin, self.title_margin, {"test": self.margin_test, "version": ver}, self._opts(
+                "margin", "@image{+0.00} K", "test margin [K]", cmap=MARGIN_CMAP, symmetric=True),
+                dict(symmetric, widget=self.margin_test)),
+            "tau": (self.optical_depth, self.title_tau, {"version": ver}, self._cloud_opts(
                 "optical depth", "@image{0.00}", "optical depth [1]", cmap=TAU_CMAP, logz=True,
-                clim=(0.01, 20.0)), {"overlay": (self.tau_categories, self._category_opts(_TAU_CATEGORIES))}),
-            (self.top_pressure, self.title_ptop, {"version": ver}, self._cloud_opts(
+                clim=(0.01, 20.0)), {"overlay": (self.tau_categories, self._category_opts(_TAU_CATEGORIES)),
+                                     "legend": self._cloud_legend(_TAU_CATEGORIES)}),
+            "top": (self.top_pressure, self.title_ptop, {"version": ver}, self._cloud_opts(
                 "cloud-top pressure", "@image{0} hPa", "cloud-top pressure [hPa]", cmap=PTOP_CMAP,
-                clim=self._ptop_clim), {"overlay": (self.top_categories, self._category_opts(_TOP_CATEGORIES))}),
-            (self.sigma, self.title_sigma, {"channel": ch}, self._opts(
+                clim=self._ptop_clim), {"overlay": (self.top_categories, self._category_opts(_TOP_CATEGORIES)),
+                                        "legend": self._cloud_legend(_TOP_CATEGORIES)}),
+            "sigma": (self.sigma, self.title_sigma, {"channel": ch}, self._opts(
                 "σ", "@image{0.00} K", "σ of the departure [K]", cmap=SIGMA_CMAP, clim=self._sigma_clim), {}),
-            (self.normalised, self.title_z, {"channel": ch, "version": ver}, self._opts(
+            "z": (self.normalised, self.title_z, {"channel": ch, "version": ver}, self._opts(
                 "departure / σ", "@image{+0.0}", "departure / σ [1]", cmap=DEPARTURE_CMAP, clim=Z_CLIM,
                 symmetric=True), {}),
-        ]
+            "truth": (self.truth, self.title_truth, {"version": ver}, self._categorical_opts(
+                "vs truth", list(COMPARISON_NAMES), TRUTH_COLOURS, truth_js, "truthcode"),
+                {"aggregator": "first", "outline": True,
+                 "legend": list(zip(TRUTH_COLOURS, COMPARISON_NAMES)) + [(NAN_COLOUR, "clear in both, or no data")]}),
+        }
+
+    def _build(self, keys, ncols):
+        specs = self._specs()
         cells = []
-        for k, (fn, title_fn, refs, opts, extra) in enumerate(specs):
+        for key in keys:
+            fn, title_fn, refs, opts, extra = specs[key]
+            extra = dict(extra)
+            widget, legend = extra.pop("widget", None), extra.pop("legend", None)
+            if isinstance(legend, list):
+                legend = swatch_legend_html(legend)
             plot = self._panel_map(fn, refs, opts, **extra)
             # one pane per map, sharing the ranges set in _share_ranges (a single hv.Layout grid does not
             # lay out inside tabs next to other plots with Panel 1.9 / Bokeh 3.9)
             pane = pn.pane.HoloViews(plot, backend="bokeh", linked_axes=False, margin=(0, 4))
             title = pn.pane.HTML(pn.bind(lambda text: f"<b style='font-size:13px'>{text}</b>",
                                          pn.bind(title_fn, **refs)), margin=(8, 10, 0, 10),
-                                 css_classes=["cs-map-title"])
-            parts = [title, pane]
-            if fn in (self.optical_depth, self.top_pressure):
-                table = _TAU_CATEGORIES if fn == self.optical_depth else _TOP_CATEGORIES
-                parts.append(pn.pane.HTML(cloud_legend_html([name for name, _ in table], NAN_COLOUR),
-                                          margin=(0, 10), width=self._fw + 150))
-            cells.append(pn.Column(*parts, margin=0, css_classes=[f"cs-map-{k}"]))
-        return pn.GridBox(*cells, ncols=2, css_classes=["cs-maps"])
+                                 css_classes=["cs-map-title"], width=self._fw + MAP_EXTRA_WIDTH - 20)
+            parts = [title] + ([widget] if widget is not None else []) + [pane]
+            if legend is not None:
+                parts.append(pn.pane.HTML(legend, margin=(0, 10), width=self._fw + 150,
+                                          css_classes=[f"cs-legend-{key}"]))
+            cells.append(pn.Column(*parts, margin=0, css_classes=[f"cs-map-{key}"]))
+        return pn.GridBox(*cells, ncols=ncols, css_classes=["cs-maps"])
 
     # ------------------------------------------------------------------ interaction
     def _attach_streams(self, dmap):

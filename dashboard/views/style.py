@@ -118,6 +118,22 @@ CLOUD_CATEGORY_COLOURS = {
     "not_retrieved": "#a3abb5",     # warmer than clear, or opaque and clear radiances too close
 }
 
+#: Colours of the "why flagged" map (ours): the cloud tests in registry order, then an analyst
+#: edit (the edit outline's magenta), then flag-only tests such as the warm departure
+WHY_TEST_COLOURS = ["#2b59c3", "#e07b00", "#8e44ad", "#00897b", "#6d4c41", "#9e9d24", "#5c6bc0"]
+WHY_EDIT_COLOUR = EDIT_OUTLINE
+WHY_FLAG_COLOURS = ["#c62828", "#ad1457", "#4e342e"]
+
+
+def why_colours(n_cloud, n_flag):
+    """Colours of the why map's categories: n_cloud cloud tests, an analyst edit, n_flag flags."""
+    return WHY_TEST_COLOURS[:n_cloud] + [WHY_EDIT_COLOUR] + WHY_FLAG_COLOURS[:n_flag]
+
+
+#: Colours of the "vs truth" map (ours), in the order of cloudsieve.truth.COMPARISON_NAMES: caught,
+#: missed, false alarm, truth-clear marginal, thin or partial truth cloud
+TRUTH_COLOURS = ["#4a7fb5", "#d1495b", "#f08c00", "#f6e27f", "#c7ccd3"]
+
 _CATEGORY_WORDS = {
     "opaque": "opaque: τ ≥ the lower bound shown on hover",
     "top_assumed": "top not fixed by the channels: τ at the assumed top",
@@ -126,13 +142,16 @@ _CATEGORY_WORDS = {
 }
 
 
+def swatch_legend_html(pairs, css_class="cs-legend"):
+    """An HTML legend: a swatch and its words for each (colour, text) pair."""
+    items = "".join(
+        f'<span style="display:inline-flex;align-items:center;margin-right:12px">'
+        f'<span style="display:inline-block;width:12px;height:12px;background:{colour};border:1px solid #777;'
+        f'border-radius:2px;margin-right:4px"></span>{text}</span>' for colour, text in pairs)
+    return f'<div class="{css_class}" style="font-size:12px;line-height:1.6">{items}</div>'
+
+
 def cloud_legend_html(categories, no_cloud_colour):
     """An HTML legend of the categories drawn over a cloud-layer map, plus "no cloud"."""
-    def swatch(colour, text):
-        return (f'<span style="display:inline-flex;align-items:center;margin-right:12px">'
-                f'<span style="display:inline-block;width:12px;height:12px;background:{colour};border:1px solid #777;'
-                f'border-radius:2px;margin-right:4px"></span>{text}</span>')
-
-    items = "".join(swatch(CLOUD_CATEGORY_COLOURS[c], _CATEGORY_WORDS[c]) for c in categories)
-    items += swatch(no_cloud_colour, "no cloud (screened clear)")
-    return f'<div class="cs-cloud-legend" style="font-size:12px;line-height:1.6">{items}</div>'
+    pairs = [(CLOUD_CATEGORY_COLOURS[c], _CATEGORY_WORDS[c]) for c in categories]
+    return swatch_legend_html(pairs + [(no_cloud_colour, "no cloud (screened clear)")], "cs-cloud-legend")
