@@ -198,7 +198,7 @@ def test_clicking_a_pixel_fills_the_inspector(served_app, page, artifacts):
 
 def _box_select(page, x0, y0, x1, y1):
     """Drag a box over the class map with its box-select tool."""
-    page.locator(".cs-map-3 .bk-tool-icon-box-select").first.click()
+    page.locator(".cs-map-class .bk-tool-icon-box-select").first.click()
     p0, p1 = map_point(page, x0, y0), map_point(page, x1, y1)
     page.mouse.move(*p0)
     page.mouse.down()
@@ -331,7 +331,7 @@ def test_lasso_selection_marks_the_pixels_inside(served_app, page):
     journal = journal_path(served_app.data_dir / "night_front.nc")
     open_dashboard(page, served_app.url)
     title = "observed BT [K]"  # lasso on another map than the class map: all maps select
-    page.locator(".cs-map-0 .bk-tool-icon-lasso-select").first.click()
+    page.locator(".cs-map-observed .bk-tool-icon-lasso-select").first.click()
     corners = [map_point(page, x, y, title) for x, y in ((100, 100), (160, 100), (160, 160), (100, 100))]
     page.mouse.move(*corners[0])
     page.mouse.down()

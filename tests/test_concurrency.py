@@ -63,7 +63,7 @@ def test_eight_sessions_stay_apart(serve_app, tmp_path, browser, artifacts):
             slowest = max(slowest, time.perf_counter() - t0[k])
         # each session marks a different box of its own scene as cloud
         for k, page in enumerate(pages):
-            page.locator(".cs-map-3 .bk-tool-icon-box-select").first.click()
+            page.locator(".cs-map-class .bk-tool-icon-box-select").first.click()
             selection = page.locator(".cs-selection div").first
             for attempt in range(3):  # on a loaded machine a drag can outrun the tool switch: drag again
                 p0, p1 = map_point(page, 10.2 + 10 * k, 10.2), map_point(page, 14.8 + 10 * k, 14.8)

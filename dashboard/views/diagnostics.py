@@ -9,7 +9,7 @@ import panel as pn
 from panel.viewable import Viewer
 
 from cloudsieve import codes as pl
-from cloudsieve.registry import bit_table
+from cloudsieve.registry import REGISTRY, bit_table
 
 from .style import CLASS_COLOURS, INK, SURFACE_LABELS, channel_colour, channel_label, plain_words, test_label
 
@@ -47,8 +47,9 @@ class _ModelPlot(Viewer):
 
 
 class DepartureHistogram(_ModelPlot):
-    """Window-channel departures of one surface type stacked by class, with that surface's test
-    thresholds as lines (a scene's surfaces have their own thresholds); counts linear or log."""
+    """Window-channel departures, or one test's margins, of one surface type stacked by class, with
+    that surface's thresholds as lines (a scene's surfaces have their own thresholds); counts linear
+    or log."""
 
     def __init__(self, model, **params):
         Viewer.__init__(self, **params)
@@ -58,16 +59,23 @@ class DepartureHistogram(_ModelPlot):
         codes, counts = np.unique(ds["surface"].values[valid], return_counts=True)
         present = [pl.SURFACES[int(c)] for c in codes[np.argsort(-counts)]] or [pl.SURFACES[0]]
         self.surface = pn.widgets.RadioButtonGroup(options={SURFACE_LABELS[s]: s for s in present}, value=present[0],
-                                                   button_type="primary", button_style="outline",
+                                                   color="primary", variant="outline",
                                                    css_classes=["cs-hist-surface"], margin=(4, 10))
-        self.log = pn.widgets.Checkbox(name="log count", value=False, css_classes=["cs-hist-log"], margin=(10, 10))
+        self.log = pn.widgets.Checkbox(label="log count", value=False, css_classes=["cs-hist-log"], margin=(10, 10))
+        quantities = {f"departure, {channel_label(window_channel(model))}": "departure"}
+        quantities.update({f"margin of {test_label(t)}": t for t in REGISTRY if t in model.result.margins})
+        self.quantity = pn.widgets.Select(options=quantities, value="departure", width=260,
+                                          css_classes=["cs-hist-quantity"], margin=(4, 10))
         self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version,
-                                                             surface=self.surface, log=self.log)))
+                                                             surface=self.surface, log=self.log,
+                                                             quantity=self.quantity)))
 
     def __panel__(self):
-        return pn.Column(pn.Row(self.surface, self.log), self._pane)
+        return pn.Column(pn.Row(self.quantity, self.surface, self.log), self._pane)
 
-    def plot(self, version=None, surface=None, log=False):
+    def plot(self, version=None, surface=None, log=False, quantity="departure"):
+        if quantity and quantity != "departure":
+            return self.plot_margin(quantity, surface, log)
         m = self.model
         res = m.result
         ch = window_channel(m)
@@ -86,6 +94,43 @@ class DepartureHistogram(_ModelPlot):
         cuts = [v for v, _, _ in lines] or [0.0]
         lo = min(min(cuts) - 6.0, -8.0)
         hi = max(max(cuts) + 3.0, 4.0)
+        kdim = hv.Dimension("dep", label=f"departure observed − clear, {channel_label(ch)}", unit="K")
+        title = (f"Window-channel departures by class · {SURFACE_LABELS[surface].lower()}, "
+                 f"{int(on.sum()):,} pixels")
+        return self._stacked(vals, cls, lines, lo, hi, kdim, title, log)
+
+    def plot_margin(self, test, surface=None, log=False):
+        """One test's margins [K] (> 0: fired, the threshold at 0 for every pixel) on one surface, and
+        where the marginal band begins for that surface (its median threshold × the marginal fraction)."""
+        m = self.model
+        res = m.result
+        ds = m.scene.data
+        surface = surface or self.surface.value
+        on = ds["valid"].values & (ds["surface"].values == pl.SURFACES.index(surface))
+        if test not in res.margins:  # switched off, or cannot run on this scene
+            return hv.Text(0, 0, f"{test_label(test)} does not run at the current settings").opts(
+                frame_width=520, frame_height=260, xaxis=None, yaxis=None, toolbar=None)
+        margin = np.asarray(res.margins[test], float)
+        ok = on & np.isfinite(margin)
+        vals, cls = margin[ok], res.mask[ok]
+        lines = [(0.0, "threshold (each pixel's own)", "dashed")]
+        if REGISTRY[test].makes_cloud and ok.any():
+            band = -m.marginal_fraction * abs(_median_threshold(res.thresholds[test], ok))
+            lines.append((band, "marginal from (median)", "dotted"))
+        lo, hi = -8.0, 4.0
+        if vals.size:  # the bulk of the margins, with the threshold in view
+            a, b = np.percentile(vals, [1, 99])
+            lo, hi = min(float(a), -1.0), max(float(b), 1.0)
+            pad = 0.05 * (hi - lo)
+            lo, hi = lo - pad, hi + pad
+        kdim = hv.Dimension("margin", label=f"margin of {test_label(test)} (> 0: fired)", unit="K")
+        title = (f"{test_label(test)} margins by class · {SURFACE_LABELS[surface].lower()}, "
+                 f"{int(ok.sum()):,} pixels where it runs")
+        return self._stacked(vals, cls, lines, lo, hi, kdim, title, log)
+
+    @staticmethod
+    def _stacked(vals, cls, lines, lo, hi, kdim, title, log):
+        """A histogram of vals stacked by class, with labelled vertical lines (value, text, dash)."""
         edges = np.linspace(lo, hi, 91)
         stack = np.zeros(edges.size - 1)
         parts = []
@@ -93,7 +138,6 @@ class DepartureHistogram(_ModelPlot):
             counts, _ = np.histogram(np.clip(vals[cls == code], lo, hi), edges)
             stack = stack + counts
             parts.append((name, stack.copy()))
-        kdim = hv.Dimension("dep", label=f"departure observed − clear, {channel_label(ch)}", unit="K")
         vdim = hv.Dimension("n", label="pixels")
         floor = 0.8 if log else 0.0  # a log axis needs a bottom above 0
         layers = [hv.Histogram((edges, np.maximum(top, floor)), kdims=[kdim], vdims=[vdim], label=name)
@@ -110,8 +154,7 @@ class DepartureHistogram(_ModelPlot):
                                   valign="center").opts(text_color=INK))
         outside = int(((vals < lo) | (vals > hi)).sum())
         return hv.Overlay(layers).opts(
-            title=(f"Window-channel departures by class · {SURFACE_LABELS[surface].lower()}, "
-                   f"{int(on.sum()):,} pixels · {outside:,} beyond the range in the end bins"),
+            title=f"{title} · {outside:,} beyond the range in the end bins",
             frame_width=520, frame_height=260, legend_position="right",
             ylim=(floor, ymax * (4.0 if log else 1.15)), xlim=(lo, hi), logy=bool(log),
             yformatter=NumeralTickFormatter(format="0,0"), show_grid=True, toolbar="above", active_tools=["pan"],

@@ -49,7 +49,7 @@ class ExportPanel(Viewer):
         self.load = pn.widgets.FileInput(accept=".toml", multiple=False, css_classes=["cs-load-settings"],
                                          sizing_mode="stretch_width")
         self.load.param.watch(self._loaded, "value")
-        self.reset = pn.widgets.Button(name="Reset to defaults", color="primary", variant="outline",
+        self.reset = pn.widgets.Button(label="Reset to defaults", color="primary", variant="outline",
                                        sizing_mode="stretch_width", css_classes=["cs-reset-settings"],
                                        stylesheets=[OUTLINE_BUTTON_CSS])
         self.reset.on_click(self._reset)

@@ -145,9 +145,9 @@ class MapGrid(Viewer):
         # departures centred on 0, ±DEPARTURE_RANGE K by default (thin cirrus, fog and marginal pixels
         # are a few K): the analyst widens it for the thick cloud's tens of K
         self.departure_range = pn.widgets.FloatInput(
-            name="departure and margin colour range ± [K]", value=DEPARTURE_RANGE, start=0.5, end=150.0, step=0.5,
+            label="departure and margin colour range ± [K]", value=DEPARTURE_RANGE, start=0.5, end=150.0, step=0.5,
             width=230, css_classes=["cs-departure-range"], margin=(0, 10))
-        self.show_mask_outline = pn.widgets.Checkbox(name="outline the cloud class on the temperature maps",
+        self.show_mask_outline = pn.widgets.Checkbox(label="outline the cloud class on the temperature maps",
                                                      value=True, css_classes=["cs-mask-outline"], margin=(0, 10, 8, 10))
         self._sigma_clim = (0.0, max(0.5, _robust_range([sim.sigma[c] for c in sim.channels], 0, 99.5)[1]))
         p_surf = ds["p_surf"].values if "p_surf" in ds else np.array([1013.25])
@@ -166,15 +166,15 @@ class MapGrid(Viewer):
         self._why_colours = why_colours(n_cloud, len(self._why_tests) - n_cloud)
         self._decided = (None, None)  # (version, codes): shared by the class map's hover and the why map
         tests = {REGISTRY[t].label: t for t in self._why_tests}
-        self.margin_test = pn.widgets.Select(name="test", options=tests, value=self._why_tests[0], width=220,
+        self.margin_test = pn.widgets.Select(label="test", options=tests, value=self._why_tests[0], width=220,
                                              css_classes=["cs-margin-test"], margin=(0, 10))
         has_truth = model.session.truth is not None
         options = {name: key for key, name in MAPS.items() if key != "truth" or has_truth}
         self.shown = pn.widgets.CheckBoxGroup(
-            name="maps shown", options=options, value=[k for k in DEFAULT_MAPS if k in options.values()],
+            label="maps shown", options=options, value=[k for k in DEFAULT_MAPS if k in options.values()],
             inline=True, css_classes=["cs-maps-shown"], margin=(0, 10), sizing_mode="stretch_width",
             stylesheets=[".bk-input-group { flex-wrap: wrap; row-gap: 2px; }"])
-        self.enlarge = pn.widgets.Select(name="enlarge one map", options={"— (none)": "", **options}, value="",
+        self.enlarge = pn.widgets.Select(label="enlarge one map", options={"— (none)": "", **options}, value="",
                                          width=170, css_classes=["cs-enlarge"], margin=(0, 10))
         self._readout = pn.pane.HTML(_READOUT_HINT, css_classes=["cs-readout"], margin=(0, 10), height=20,
                                      visible=self.rasterized, sizing_mode="stretch_width")
