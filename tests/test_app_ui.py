@@ -142,8 +142,8 @@ def test_page_renders_every_map_and_the_caution(served_app, page, artifacts):
     assert re.fullmatch(r"\d+\.\d%", cloud_percent(page))
     titles = page.evaluate("""() => [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure')
         .map(v => (v.model.right.find(r => r.type === 'ColorBar') || {}).title)""")
-    assert {"observed BT [K]", "clear-sky BT [K]", "observed − clear [K]", "class", "optical depth [1]",
-            "cloud-top pressure [hPa]", "σ of the departure [K]", "departure / σ [1]"} <= set(titles)
+    assert {"observed BT [K]", "clear-sky BT [K]", "observed − clear [K]", "class", "why flagged",
+            "optical depth [1]", "cloud-top pressure [hPa]", "departure / σ [1]"} <= set(titles)
     page.get_by_text("is not a certified operational product").first.wait_for()
     screenshot(page, artifacts, "ui_main.png")
     page.locator(".bk-tab").filter(has_text="Diagnostics").first.click()
@@ -431,3 +431,121 @@ def test_settings_are_loaded_from_a_file_and_reset(served_app, page, tmp_path):
     page.get_by_text("Settings reset to the defaults").first.wait_for(timeout=TIMEOUT)
     expect(page.locator(".cs-slider-cold_departure").first).to_contain_text("3.00", timeout=TIMEOUT)
     expect(page.locator(".cs-count-cloud .cs-value").first).to_have_text(before, timeout=TIMEOUT)
+
+
+# ---------------------------------------------------------------------------------------
+# the workbench: layout at laptop and desktop width, why / margin / truth maps, loading
+# ---------------------------------------------------------------------------------------
+_RECT = "(el) => { const r = el.getBoundingClientRect(); return [r.left, r.top, r.right, r.bottom]; }"
+_FIGURE_RECTS = """(title) => [...Bokeh.index.all_views()].filter(v => v.model.type === 'Figure'
+    && v.model.right.some(r => r.type === 'ColorBar' && r.title === title))
+    .map(v => { const r = v.el.getBoundingClientRect(); return [r.left, r.top, r.width, r.height]; })"""
+
+
+def _rect(page, css):
+    return page.locator(css).first.evaluate(_RECT)
+
+
+@pytest.mark.ui
+def test_at_1366_the_qa_buttons_and_inspector_stay_in_view_after_a_click(served_app, page, artifacts):
+    """A laptop window: the maps take one column as wide as the window allows; after scrolling down to
+    the class map and clicking a pixel, "Mark cloud" and the filled inspector are on screen."""
+    page.set_viewport_size({"width": 1366, "height": 768})
+    page.goto(served_app.url)
+    page.wait_for_function(RENDERED, arg=8, timeout=TIMEOUT, polling=100)
+    page.wait_for_function(f"() => ({_FIGURE_RECTS})('class').some(r => r[2] > 450)", timeout=TIMEOUT,
+                           polling=200)  # one column, each map wider than the old 250 px frame
+    obs, clr = page.evaluate(_FIGURE_RECTS, "observed BT [K]")[0], page.evaluate(_FIGURE_RECTS, "clear-sky BT [K]")[0]
+    assert clr[1] > obs[1] + obs[3] - 5  # stacked, not side by side
+    page.locator(".cs-map-class").first.scroll_into_view_if_needed()
+    page.mouse.click(*map_point(page, 150, 120))
+    page.get_by_text("Pixel row 120, column 150").first.wait_for(timeout=TIMEOUT)
+    for css in (".cs-inspector-card", ".cs-qa-card"):
+        left, top, right, bottom = _rect(page, css)
+        assert top < 768 - 150 and bottom > 150 and right <= 1366, (css, top, bottom)
+    button = page.get_by_role("button", name="Mark cloud")
+    left, top, right, bottom = button.evaluate(_RECT)
+    assert 0 <= top and bottom <= 768
+    maps_right = _rect(page, ".cs-map-class")[2]
+    assert _rect(page, ".cs-side")[0] >= maps_right - 5  # beside the maps, not below them
+    screenshot(page, artifacts, "ui_1366_inspector.png")
+
+
+@pytest.mark.ui
+def test_at_1920_maps_sit_two_by_two_beside_the_qa_column(served_app, page, artifacts):
+    page.set_viewport_size({"width": 1920, "height": 1080})
+    page.goto(served_app.url)
+    page.wait_for_function(RENDERED, arg=8, timeout=TIMEOUT, polling=100)
+    page.wait_for_function(f"""() => {{ const a = ({_FIGURE_RECTS})('observed BT [K]')[0],
+        b = ({_FIGURE_RECTS})('clear-sky BT [K]')[0];
+        return a && b && Math.abs(a[1] - b[1]) < 5 && b[0] > a[0] + a[2] - 5 && a[2] > 400; }}""",
+                           timeout=TIMEOUT, polling=200)
+    assert _rect(page, ".cs-side")[0] >= _rect(page, ".cs-map-clear")[2] - 5
+    screenshot(page, artifacts, "ui_1920.png")
+
+
+@pytest.mark.ui
+def test_why_map_has_a_legend_and_one_map_can_be_enlarged(served_app, page, artifacts):
+    open_dashboard(page, served_app.url)
+    legend = page.locator(".cs-legend-why").first
+    for words in ("Cold departure", "analyst edit", "Warm departure (flag only)", "no test fired"):
+        expect(legend).to_contain_text(words, timeout=TIMEOUT)
+    page.locator(".cs-map-why").first.scroll_into_view_if_needed()
+    screenshot(page, artifacts, "ui_why_map.png")
+    small = page.evaluate(_FIGURE_RECTS, "class")[0][2]
+    page.locator(".cs-enlarge select").first.select_option(label="class")
+    page.wait_for_function(f"""() => {{ const r = ({_FIGURE_RECTS})('class');
+        const others = ({_FIGURE_RECTS})('observed BT [K]');
+        return r.length === 1 && r[0][2] > 1.5 * {small} && others.length === 0; }}""", timeout=TIMEOUT,
+                           polling=200)
+    screenshot(page, artifacts, "ui_enlarged.png")
+
+
+@pytest.mark.ui
+def test_margin_and_truth_maps_on_request(serve_app, scene_dir, page, artifacts):
+    shutil.copy(SAMPLES / "night_front_truth.nc", scene_dir / "night_front_truth.nc")
+    served = serve_app(scene_dir)
+    open_dashboard(page, served.url)
+    for label in ("test margin", "vs truth"):
+        page.locator(".cs-maps-shown label", has_text=label).first.click()
+    page.wait_for_function(RENDERED, arg=10, timeout=TIMEOUT, polling=100)
+    expect(page.locator(".cs-legend-truth").first).to_contain_text("truth cloud, missed", timeout=TIMEOUT)
+    page.locator(".cs-margin-test select").first.select_option(label="Split-window excess")
+    expect(page.locator(".cs-map-margin .cs-map-title").first).to_contain_text("Split-window excess",
+                                                                               timeout=TIMEOUT)
+    page.locator(".cs-map-truth").first.scroll_into_view_if_needed()
+    screenshot(page, artifacts, "ui_truth_map.png")
+
+
+@pytest.mark.ui
+def test_a_large_scene_shows_its_name_and_stage_while_it_opens(serve_app, tmp_path, page, artifacts):
+    """The page answers at once: the scene's name, the stage (with the pixel count) and a bar, until
+    the maps are drawn; then the panel goes."""
+    sys.path.insert(0, str(Path(__file__).parent / "benchmarks"))
+    from bench_dashboard import tiled_scene
+
+    folder = tmp_path / "big"
+    folder.mkdir()
+    tiled_scene(900, folder / "tiled_900.nc")
+    served = serve_app(folder)
+    page.set_viewport_size({"width": 1366, "height": 768})
+    page.goto(served.url)
+    text = page.locator(".cs-loading-text").first
+    expect(text).to_contain_text("Opening tiled_900.nc", timeout=TIMEOUT)
+    expect(text).to_contain_text(re.compile(r"(simulating the clear sky of|screening) 810,000 pixels"),
+                                 timeout=TIMEOUT)
+    screenshot(page, artifacts, "ui_loading.png")
+    page.wait_for_function(RENDERED, arg=8, timeout=3 * TIMEOUT, polling=200)
+    expect(page.locator(".cs-loading").first).to_be_hidden(timeout=TIMEOUT)
+
+
+@pytest.mark.ui
+def test_margin_histogram_per_test_in_the_diagnostics(served_app, page, artifacts):
+    open_dashboard(page, served_app.url)
+    page.locator(".bk-tab").filter(has_text="Diagnostics").first.click()
+    page.wait_for_function(RENDERED, arg=3, timeout=TIMEOUT, polling=100)
+    page.locator(".cs-hist-quantity select").first.select_option(label="margin of Night fog contrast")
+    page.wait_for_function("""() => [...Bokeh.index.all_views()].some(v => v.model.type === 'Figure'
+        && v.model.title && (v.model.title.text || '').startsWith('Night fog contrast margins'))""",
+                           timeout=TIMEOUT, polling=200)
+    screenshot(page, artifacts, "ui_margin_histogram.png")

@@ -113,7 +113,7 @@ class DepartureHistogram(_ModelPlot):
         margin = np.asarray(res.margins[test], float)
         ok = on & np.isfinite(margin)
         vals, cls = margin[ok], res.mask[ok]
-        lines = [(0.0, "threshold (each pixel's own)", "dashed")]
+        lines = [(0.0, "threshold", "dashed")]
         if REGISTRY[test].makes_cloud and ok.any():
             band = -m.marginal_fraction * abs(_median_threshold(res.thresholds[test], ok))
             lines.append((band, "marginal from (median)", "dotted"))
@@ -124,8 +124,7 @@ class DepartureHistogram(_ModelPlot):
             pad = 0.05 * (hi - lo)
             lo, hi = lo - pad, hi + pad
         kdim = hv.Dimension("margin", label=f"margin of {test_label(test)} (> 0: fired)", unit="K")
-        title = (f"{test_label(test)} margins by class · {SURFACE_LABELS[surface].lower()}, "
-                 f"{int(ok.sum()):,} pixels where it runs")
+        title = f"{test_label(test)} margins by class · {SURFACE_LABELS[surface].lower()}, {int(ok.sum()):,} px"
         return self._stacked(vals, cls, lines, lo, hi, kdim, title, log)
 
     @staticmethod
@@ -154,7 +153,7 @@ class DepartureHistogram(_ModelPlot):
                                   valign="center").opts(text_color=INK))
         outside = int(((vals < lo) | (vals > hi)).sum())
         return hv.Overlay(layers).opts(
-            title=f"{title} · {outside:,} beyond the range in the end bins",
+            title=f"{title} · {outside:,} in the end bins",
             frame_width=520, frame_height=260, legend_position="right",
             ylim=(floor, ymax * (4.0 if log else 1.15)), xlim=(lo, hi), logy=bool(log),
             yformatter=NumeralTickFormatter(format="0,0"), show_grid=True, toolbar="above", active_tools=["pan"],
