@@ -4,7 +4,7 @@ retune_ms
     Model time from a threshold change to the updated mask and counts, on a 1000 × 1000,
     4-channel scene (the sample scene night_front tiled with mirroring, written as NetCDF in a
     temporary folder; building and simulating it is not timed). Median over several changes
-    of different tests. Target ≤ 300 ms.
+    of different tests. Target ≤ 300 ms. ``retune_max_ms``: the slowest of them.
 first_render_s
     From starting ``cloudsieve serve`` (a child process, over a temporary copy of the sample
     scene) to the first complete render of its page in headless Debian chromium: every map
@@ -79,8 +79,10 @@ def bench_retune(size, repeats, tmp):
         _ = model.result.mask, model.counts  # the updated mask and counts
         times.append(1000 * (time.perf_counter() - t))
         assert model.version == before + 1
-    print(f"retune: {', '.join(f'{t:.0f}' for t in times)} ms (median {statistics.median(times):.0f} ms)")
-    return statistics.median(times)
+    print(f"retune: {', '.join(f'{t:.0f}' for t in times)} ms (median {statistics.median(times):.0f} ms, "
+          f"slowest {max(times):.0f} ms: a change that moves the clear-sky bias fit by more than "
+          f"invert.bias_close re-inverts the cloud layer of every flagged pixel)")
+    return statistics.median(times), max(times)
 
 
 def wait_listening(server, url, t0, limit_s=120.0):
@@ -143,11 +145,11 @@ def main():
     ap.add_argument("--repeats", type=int, default=7)
     args = ap.parse_args()
     with tempfile.TemporaryDirectory(prefix="cloudsieve-bench-") as tmp:
-        retune = bench_retune(args.size, args.repeats, tmp)
+        retune, retune_max = bench_retune(args.size, args.repeats, tmp)
         first = bench_first_render(tmp)
     ok = retune <= 300 and first <= 10
     print(f"targets: retune ≤ 300 ms, first render ≤ 10 s: {'met' if ok else 'NOT met'}")
-    print(json.dumps({"retune_ms": round(retune, 1), "first_render_s": round(first, 2),
+    print(json.dumps({"retune_ms": round(retune, 1), "retune_max_ms": round(retune_max, 1), "first_render_s": round(first, 2),
                       "scene_pixels": args.size * args.size, "repeats": args.repeats}))
 
 
