@@ -89,6 +89,24 @@ class BlockOutcome:
     sums: dict
     encoded: object = None
     clear: np.ndarray = None
+    seconds: dict = None  # stage -> seconds this block spent in it (see STAGES)
+
+
+#: the stages of a block, in order, as timed by :func:`process_block` [s of one thread]
+STAGES = ("simulate", "sigma", "screen", "invert", "encode")
+
+
+class _StageClock:
+    """Seconds per stage: ``lap(stage)`` adds the time since the previous lap to that stage."""
+
+    def __init__(self):
+        self.seconds = dict.fromkeys(STAGES, 0.0)
+        self._t = time.perf_counter()
+
+    def lap(self, stage):
+        t = time.perf_counter()
+        self.seconds[stage] += t - self._t
+        self._t = t
 
 
 _ALLOCATOR_TUNED = False
@@ -142,6 +160,7 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     BlockOutcome
     """
     _tune_allocator()
+    clock = _StageClock()
     fields = {k: np.asarray(v) for k, v in fields.items()}
     cfg, chset = plan.config, plan.chset
     names = chset.names
@@ -154,7 +173,9 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
         use_scene_clear_sky(res, fields, chset, idx)
         clear = np.full((len(names),) + valid.shape, np.nan, np.float32)
         clear.reshape(len(names), -1)[:, idx] = res.brightness_temperature
+    clock.lap("simulate")
     sigma = sigma_grids(cols, fields["surface"].ravel()[idx], chset, cfg, idx, valid.shape)
+    clock.lap("sigma")
     path = slant_path(fields["tcwv"], fields["sat_zenith"])
     obs = {c: fields[f"bt_{c}"] for c in names}
     screen_fields = {"surface": fields["surface"], "valid": valid, "sol_zenith": fields["sol_zenith"],
@@ -165,8 +186,9 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
     mask, bits = scr.mask[core], scr.bits[core]
     departure = {c: d[core] for c, d in scr.departure.items()}
     sums = bias_sums(departure, path[core], mask, bits, valid[core], fields["surface"][core])
+    clock.lap("screen")
     if not final:
-        return BlockOutcome(spec.start, spec.stop, sums, clear=clear[:, core])
+        return BlockOutcome(spec.start, spec.stop, sums, clear=clear[:, core], seconds=clock.seconds)
     cloud = CloudLayer.empty(mask.shape, plan.inv, cfg["cloud"]["top"], layer_beta(plan.inv, cfg))
     core_fields = {k: v[core] for k, v in fields.items()}
     todo = np.flatnonzero((valid[core] & (mask != CLEAR) & (mask != NO_DATA)).ravel())
@@ -177,11 +199,13 @@ def process_block(fields, spec, plan, edits=None, clear=None, final=True):
                       (r.level_pressure, r.level_temperature, r.opaque_radiance), fields["sat_zenith"][core],
                       {c: v[core] for c, v in sigma.items()}, chset, cfg, sol_zenith=fields["sol_zenith"][core],
                       bias=inversion_bias(plan.bias), surface=fields["surface"][core], slant_path=path[core])
+    clock.lap("invert")
     result = export.ResultBlock(spec.start, clear[:, core], departure, {t: m[core] for t, m in scr.margins.items()},
                                 mask, bits, cloud, {c: clear_part(sigma, c)[core] for c in names})
     variables = export.block_variables(result, plan.header)
     encoded = export.encode_block(spec.start, variables, plan.layout, plan.fmt, plan.chunk_rows, extra=sums)
-    return BlockOutcome(spec.start, spec.stop, sums, encoded)
+    clock.lap("encode")
+    return BlockOutcome(spec.start, spec.stop, sums, encoded, seconds=clock.seconds)
 
 
 # ---------------------------------------------------------------------------------------
@@ -263,10 +287,19 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
     grid = edits_grid((ny, nx), edits) if edits else None
     plan = BlockPlan(ChannelSet.for_scene(names, config), config, tests, inv, fmt, rows)
     bias, bias_note, clear = {}, None, None
+    stages = dict.fromkeys(STAGES, 0.0)
+
+    def add_seconds(out):
+        for k, v in (out.seconds or {}).items():
+            stages[k] += v
+        return out
+
+    t_pass = time.perf_counter()
     if config["bias"]["remove"]:  # first pass: the clear sky and the fit's sums, then the fit
         clear = np.full((len(names), ny, nx), np.nan, np.float32)
         sums = {}
         for out in _run_blocks(ds, specs, plan, grid, final=False, threads=threads):
+            add_seconds(out)
             clear[:, out.start:out.stop] = out.clear
             sums[out.start] = out.sums
         bias = _fit(sums, config)
@@ -297,12 +330,29 @@ def screen_scene_file(scene, out_path, config, fmt=None, edits=None, chunk_rows=
             bias_decision(header.bias, config)
         return header
 
-    blocks = (out.encoded for out in _run_blocks(ds, specs, plan, grid, clear, threads=threads))
-    _, counts = export.write_blocks(layout, blocks, out_path, fmt, rows, on_block,
+    waited = [0.0]
+
+    def blocks():  # the time the writer waits for blocks is not writing
+        it = _run_blocks(ds, specs, plan, grid, clear, threads=threads)
+        while True:
+            t = time.perf_counter()
+            out = next(it, None)
+            waited[0] += time.perf_counter() - t
+            if out is None:
+                return
+            yield add_seconds(out).encoded
+
+    t_write = time.perf_counter()
+    _, counts = export.write_blocks(layout, blocks(), out_path, fmt, rows, on_block,
                                     lambda: export.result_attrs(fitted_header()))
+    stages["write"] = time.perf_counter() - t_write - waited[0]
+    stages["blocks_wall"] = time.perf_counter() - t_pass
+    stages["threads"] = threads
     fitted_header()
     fractions = {name: counts[k] / max(counts.sum(), 1) for k, name in enumerate(CLASS_NAMES)}
-    return summary_row(scene.name, ny * nx, fractions, header.bias, header.skipped, header.notes)
+    row = summary_row(scene.name, ny * nx, fractions, header.bias, header.skipped, header.notes)
+    row["stages"] = {k: round(v, 3) for k, v in stages.items()}
+    return row
 
 
 def _fit(sums_by_start, config):
@@ -322,6 +372,7 @@ def screen_file(path, out_path, config, fmt=None, chunk_rows=None, use_edits=Tru
     """
     t0 = time.perf_counter()
     scene = load_scene(path, config=config, chunk_rows=chunk_rows)
+    t_read = time.perf_counter() - t0
     edits, problems = [], []
     jp = journal_path(path)
     if use_edits and jp.exists():
@@ -330,4 +381,5 @@ def screen_file(path, out_path, config, fmt=None, chunk_rows=None, use_edits=Tru
     row = screen_scene_file(scene, out_path, config, fmt, edits, chunk_rows or DEFAULT_CHUNK_ROWS, progress)
     row.update(seconds=round(time.perf_counter() - t0, 2), output=str(Path(out_path)), qa_edits=len(edits),
                notes=row["notes"] + problems)
+    row["stages"] = dict(read_check=round(t_read, 3), **row.get("stages", {}))
     return row

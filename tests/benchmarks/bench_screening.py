@@ -4,8 +4,11 @@ Builds the scene by tiling the invented sample scene ``night_front`` (mirrored s
 join smoothly), writes it as Parquet in a temporary folder (not timed), then runs
 ``cloudsieve screen scene.parquet --out mask.nc`` in a child process and measures its wall
 time and peak resident memory. Targets (2-core machine): wall_s ≤ 15, peak_rss_mb ≤ 3072.
+The command's ``--timings`` line gives the stages: start-up, imports, reading and checking,
+each block stage in seconds summed over the threads (simulate, σ, screen, invert, encode),
+writing, and the exit (wall time after the command's own last figure).
 
-    python tests/benchmarks/bench_screening.py [--size 1000]
+    python tests/benchmarks/bench_screening.py [--size 1000] [--no-timings]
 
 The last line printed is one JSON object.
 """
@@ -49,8 +52,12 @@ def tiled_scene(size):
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--size", type=int, default=1000)
+    ap.add_argument("--no-timings", action="store_true",
+                    help="do not ask for the stage breakdown (code from before the --timings option)")
     args = ap.parse_args()
-    exe = Path(sys.executable).with_name("cloudsieve")
+    # the command as `python -m cloudsieve.cli` of this interpreter: the same entry for any
+    # checkout on PYTHONPATH (a before/after comparison runs both through it)
+    cmd = [sys.executable, "-m", "cloudsieve.cli"]
     with tempfile.TemporaryDirectory() as tmp:
         scene = Path(tmp) / "bench_scene.parquet"
         df = tiled_scene(args.size)
@@ -60,8 +67,8 @@ def main():
         print(f"scene: {args.size} × {args.size} = {n} pixels, 4 channels, {scene.stat().st_size / 1e6:.1f} MB Parquet")
         out = Path(tmp) / "mask.nc"
         t0 = time.perf_counter()
-        proc = subprocess.run([str(exe), "screen", str(scene), "--out", str(out), "--quiet"],
-                              capture_output=True, text=True)
+        proc = subprocess.run(cmd + ["screen", str(scene), "--out", str(out), "--quiet"]
+                              + ([] if args.no_timings else ["--timings"]), capture_output=True, text=True)
         wall = time.perf_counter() - t0
         if proc.returncode != 0:
             print(proc.stderr)
@@ -70,10 +77,20 @@ def main():
         size_mb = out.stat().st_size / 1e6
         ds = xr.open_dataset(out)
         frac = {k: float(np.mean(ds["mask"].values == i)) for i, k in enumerate(("clear", "marginal", "cloud", "no_data"))}
+    stages = next((json.loads(line.split("timings: ", 1)[1]) for line in proc.stderr.splitlines()
+                   if line.startswith("timings: ")), {})
     print(f"wall time {wall:.2f} s (target ≤ 15), peak RSS {peak:.0f} MB (target ≤ 3072), "
           f"{n / wall:,.0f} pixels/s, output {size_mb:.1f} MB, classes {frac}")
+    if stages:
+        threads = stages.get("threads", 1)
+        print(f"stages: start-up {stages['startup']:.2f} s, imports {stages['imports']:.2f} s, read+check "
+              f"{stages['read_check']:.2f} s; blocks {stages['blocks_wall']:.2f} s wall on {threads} thread(s), of "
+              f"which (seconds summed over threads) simulate {stages['simulate']:.2f}, σ {stages['sigma']:.2f}, "
+              f"screen {stages['screen']:.2f}, invert {stages['invert']:.2f}, encode {stages['encode']:.2f}; "
+              f"write {stages['write']:.2f} s; exit {wall - stages['process_age']:.2f} s"
+              if stages.get("process_age") is not None else f"stages: {stages}")
     print(json.dumps({"pixels": n, "pixels_per_s": round(n / wall), "peak_rss_mb": round(peak), "wall_s": round(wall, 2),
-                      "cpu_count": os.cpu_count()}))
+                      "cpu_count": os.cpu_count(), "stages": stages}))
 
 
 if __name__ == "__main__":
