@@ -351,6 +351,7 @@ class Session:
         ``load(progress)`` gives (scene, simulation or None); the loading panel shows each stage."""
         self.loading.start(label)
         self.notices.clear()
+        self.tabs.loading = self.counts.loading = self.model is not None  # the old scene, greyed out meanwhile
         log.info("opening scene %s", label)
         doc = pn.state.curdoc
         served = doc is not None and doc.session_context is not None
@@ -385,6 +386,7 @@ class Session:
             return False
         finally:
             self.loading.done()
+            self.tabs.loading = self.counts.loading = False
 
     def _on_tab(self, *_):
         if self.tabs.active != DIAGNOSTICS_TAB or len(self.diagnostics) or self.model is None:
@@ -441,7 +443,7 @@ class Session:
             width=SIDE_WIDTH - 10, margin=(0, 0, 0, 10), css_classes=["cs-side"],
             # beside the maps it stays in view while the page scrolls (its own scroll bar if taller)
             styles={"flex": f"0 0 {SIDE_WIDTH - 10}px", "position": "sticky", "top": "0px",
-                    "max-height": "100vh", "overflow-y": "auto"})
+                    "max-height": "calc(100vh - 72px)", "overflow-y": "auto"})  # below the 64 px header
         self.counts[:] = [ClassCounts(model)]
         # a flex box: the maps fill the width left beside the QA and inspector column (sized from the
         # window the browser reports); in a very narrow window the column wraps below the maps
@@ -475,8 +477,11 @@ of physically based tests give each pixel a class:
 
 {legend_html()}
 
-- **Maps & QA** — eight linked maps (pan or zoom one, all follow): observed, clear sky and their departure,
-  the class, cloud optical depth and top, the clear-sky σ of each pixel and the departure in units of it. Click a pixel to inspect it. With the
+- **Maps & QA** — linked maps (pan or zoom one, all follow), chosen with the "Maps" boxes: observed, clear
+  sky and their departure, the class, why each pixel was flagged (the deciding test, an analyst edit, or a
+  flag such as the warm departure alone), a chosen test's margin, cloud optical depth and top, the clear-sky
+  σ of each pixel, the departure in units of it and, where a truth file lies beside the scene, the mask
+  against it; eight are shown at first and one can be enlarged. Click a pixel to inspect it. With the
   box or lasso tool from the toolbar, select pixels and mark them clear or cloud; edits are saved at once
   beside the scene (`<scene>.qa.jsonl`), shown outlined in magenta on the class map, and used by the
   downloads and by `cloudsieve screen`.

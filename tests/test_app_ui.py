@@ -548,4 +548,9 @@ def test_margin_histogram_per_test_in_the_diagnostics(served_app, page, artifact
     page.wait_for_function("""() => [...Bokeh.index.all_views()].some(v => v.model.type === 'Figure'
         && v.model.title && (v.model.title.text || '').startsWith('Night fog contrast margins'))""",
                            timeout=TIMEOUT, polling=200)
+    # the log switch and the new quantity redraw the axes (a fresh plot, not the first one's ranges)
+    page.locator(".cs-hist-log input").first.check()
+    page.wait_for_function("""() => [...Bokeh.index.all_views()].some(v => v.model.type === 'Figure'
+        && (v.model.title.text || '').startsWith('Night fog contrast margins') && v.model.y_scale.type === 'LogScale')""",
+                           timeout=TIMEOUT, polling=200)
     screenshot(page, artifacts, "ui_margin_histogram.png")

@@ -66,9 +66,10 @@ class DepartureHistogram(_ModelPlot):
         quantities.update({f"margin of {test_label(t)}": t for t in REGISTRY if t in model.result.margins})
         self.quantity = pn.widgets.Select(options=quantities, value="departure", width=260,
                                           css_classes=["cs-hist-quantity"], margin=(4, 10))
-        self._pane = pn.pane.HoloViews(hv.DynamicMap(pn.bind(self.plot, version=model.param.version,
-                                                             surface=self.surface, log=self.log,
-                                                             quantity=self.quantity)))
+        # a new plot for every change (not a DynamicMap): its axis ranges and log scale follow the
+        # quantity, the surface and the log switch
+        self._pane = pn.pane.HoloViews(pn.bind(self.plot, version=model.param.version, surface=self.surface,
+                                               log=self.log, quantity=self.quantity))
 
     def __panel__(self):
         return pn.Column(pn.Row(self.quantity, self.surface, self.log), self._pane)
@@ -290,7 +291,7 @@ class SceneSummary(Viewer):
         lines.append("")
         lines.append("**Validation report**")
         lines.append('<pre style="white-space:pre-wrap;background:#f4f6f8;color:#1f2933;padding:8px;'
-                     'border-radius:4px;font-size:12px">' + html.escape(m.scene.report.text()) + "</pre>")
+                     'border-radius:4px;font-size:12px">' + html.escape(plain_words(m.scene.report.text())) + "</pre>")
         return "\n".join(lines)
 
 

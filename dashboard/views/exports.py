@@ -109,6 +109,7 @@ class ExportPanel(Viewer):
 
         try:
             self._apply(self.defaults if self.defaults is not None else load_config(), "Settings reset to the defaults")
+            self.load.clear()  # the file box no longer names a file whose settings are gone
         except Exception as exc:  # noqa: BLE001 — reported in the page
             self.notices.report(exc, "resetting the settings")
 

@@ -22,6 +22,10 @@ def _f(v, fmt):
     return format(v, fmt)
 
 
+#: the curve's cloud, by the phase whose absorption ratios it uses (grey where none was retrieved)
+_CURVE_PHASE = {"ice": "Ice", "water": "Water", "grey": "Grey", "none": "Grey"}
+
+
 class PixelInspector(Viewer):
     """Inputs, per-channel temperatures, test margins, inversion and BT-vs-τ curve of a pixel."""
 
@@ -30,7 +34,10 @@ class PixelInspector(Viewer):
         self.model, self.focus, self.notices = model, focus, notices
         self._info = None
         self._md = pn.pane.Markdown(pn.bind(self.text, focus.param.pixel, model.param.version),
-                                    sizing_mode="stretch_width", css_classes=["cs-inspector"], margin=(0, 10))
+                                    sizing_mode="stretch_width", css_classes=["cs-inspector"], margin=(0, 10),
+                                    # compact tables: the channel table fits the 380 px column
+                                    stylesheets=["table { font-size: 12px; } th, td { padding: 2px 4px !important; }"
+                                                 " .markdown { overflow-x: auto; }"])
         # the curve plot is built on the first click (a page without it opens faster)
         self._plot = pn.Column(margin=0)
         focus.param.watch(self._first_pixel, "pixel")
@@ -197,6 +204,7 @@ class PixelInspector(Viewer):
             if obs is not None:
                 layers.append(hv.HLine(obs).opts(color=col, line_dash="dashed", line_width=1.2))
         return hv.Overlay(layers).opts(
-            title=f"Grey cloud at {curve['top_pressure']:.0f} hPa: BT vs optical depth",
+            title=f"{_CURVE_PHASE.get(curve.get('phase'), 'Grey')} cloud at {curve['top_pressure']:.0f} hPa: "
+                  "BT vs optical depth",
             frame_width=280, frame_height=220, logx=True, legend_position="bottom", legend_cols=2, show_grid=True,
             fontscale=0.85, toolbar=None, legend_opts={"background_fill_alpha": 0.7, "label_text_font_size": "10px"})

@@ -54,6 +54,8 @@ _OUTLINE_OPTS = dict(cmap=["#00000000", EDIT_OUTLINE], clim=(0, 1), colorbar=Fal
 _READOUT_HINT = ("<span class='cs-muted'>Large scene: the maps are rasterized; move the pointer over a map to "
                  "read the values of the pixel under it here.</span>")
 _CLASS_JS = "return %s[Math.round(value)] || '';" % list(pl.CLASS_NAMES)
+#: hover text of a test margin [K]: signed, or "not run" where the test did not apply (NaN)
+_MARGIN_JS = "return Number.isFinite(value) ? (value >= 0 ? '+' : '') + value.toFixed(2) + ' K' : 'not run';"
 #: hover text of a cloud code (status × 4 + phase), in words
 #: hover words of each inversion status (short; the legends and the inspector say more)
 _HOVER_STATUS = {"inverted": "retrieved", "opaque": "opaque (τ ≥ the value shown)",
@@ -174,8 +176,8 @@ class MapGrid(Viewer):
             label="maps shown", options=options, value=[k for k in DEFAULT_MAPS if k in options.values()],
             inline=True, css_classes=["cs-maps-shown"], margin=(0, 10), sizing_mode="stretch_width",
             stylesheets=[".bk-input-group { flex-wrap: wrap; row-gap: 2px; }"])
-        self.enlarge = pn.widgets.Select(label="enlarge one map", options={"— (none)": "", **options}, value="",
-                                         width=170, css_classes=["cs-enlarge"], margin=(0, 10))
+        self.enlarge = pn.widgets.Select(label="enlarge one map (fold the left bar ☰ for more room)", options={"— (none)": "", **options}, value="",
+                                         width=300, css_classes=["cs-enlarge"], margin=(0, 10))
         self._readout = pn.pane.HTML(_READOUT_HINT, css_classes=["cs-readout"], margin=(0, 10), height=20,
                                      visible=self.rasterized, sizing_mode="stretch_width")
         self._grid = pn.Column(margin=0, css_classes=["cs-map-area"])
@@ -468,7 +470,9 @@ class MapGrid(Viewer):
         opts = self._opts(vdim_label, fmt, clabel, **extra)
         if not self.rasterized:
             opts["hover_tooltips"] = opts["hover_tooltips"] + [("decided by", "@decided{custom}")] + [
-                (f"{REGISTRY[t].label} margin", f"@margin_{t}{{+0.00}} K") for t in self._why_tests]
+                (f"{REGISTRY[t].label} margin", f"@margin_{t}{{custom}}") for t in self._why_tests]
+            opts["hover_formatters"] = dict(opts.get("hover_formatters", {}), **{
+                f"@{{margin_{t}}}": CustomJSHover(code=_MARGIN_JS) for t in self._why_tests})
         return opts
 
     def _cloud_opts(self, vdim_label, fmt, clabel, **extra):
@@ -539,7 +543,7 @@ class MapGrid(Viewer):
         """key -> (element function, title function, references, plot options, extras) of every map."""
         m = self.model
         ch, ver = m.param.channel, m.param.version
-        class_ticks = {k: name.replace("_", " ") for k, name in enumerate(pl.CLASS_NAMES)}
+        class_ticks = dict(enumerate(pl.CLASS_NAMES))
         symmetric = {"dynamic": {"clim": pn.bind(lambda v: (-abs(v or DEPARTURE_RANGE), abs(v or DEPARTURE_RANGE)),
                                                  self.departure_range)}}
         why_js = "const k = Math.round(value); return k < 0 ? 'no test fired' : (%s[k] || '');" % self._why_names

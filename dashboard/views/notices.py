@@ -33,9 +33,16 @@ class Notices(Viewer):
     def __panel__(self):
         return pn.Row(self._alert, self._close, sizing_mode="stretch_width")
 
+    #: seconds a confirmation ("success") stays before it goes by itself (warnings stay until dismissed)
+    FADE_S = 10
+
     def show(self, text, kind="info"):
         self._alert.param.update(object=text, alert_type=kind, visible=bool(text))
         self._close.visible = bool(text)
+        if text and kind == "success" and pn.state.curdoc is not None and pn.state.curdoc.session_context:
+            # a confirmation says what just happened; later it would be stale
+            pn.state.add_periodic_callback(lambda: self.text == text and self.clear(), period=self.FADE_S * 1000,
+                                           count=1)
 
     def clear(self):
         self.show("")
