@@ -200,3 +200,45 @@ def test_a_scene_no_cloud_test_can_screen_says_so(tmp_path):
     pd.read_csv(SMALL).drop(columns=["bt_8p6um", "bt_11um", "bt_12um"]).to_csv(scene, index=False)
     out = run("screen", scene, "--out", tmp_path / "m.nc")
     assert out.returncode == 0 and "NO CLOUD TEST COULD RUN" in out.stdout
+
+
+def test_timings_line_accounts_for_the_run(tmp_path):
+    """--timings prints one JSON line on stderr whose stages are non-negative and fit inside the
+    run: the block stages summed over threads within blocks_wall × threads, and the process age at
+    the end within the wall time measured here (common practice: a profile must add up)."""
+    import json
+    import time
+
+    t0 = time.perf_counter()
+    out = run("screen", SMALL, "--out", tmp_path / "m.nc", "--timings", "--quiet")
+    wall = time.perf_counter() - t0
+    assert out.returncode == 0, out.stderr
+    lines = [ln for ln in out.stderr.splitlines() if ln.startswith("timings: ")]
+    assert len(lines) == 1
+    t = json.loads(lines[0].split("timings: ", 1)[1])
+    stages = ("simulate", "sigma", "screen", "invert", "encode")
+    assert all(t[k] >= 0 for k in stages + ("read_check", "write", "imports", "blocks_wall"))
+    assert t["invert"] > 0 and t["simulate"] > 0
+    assert sum(t[k] for k in stages) <= t["blocks_wall"] * t["threads"] * 1.05 + 0.05
+    if t["process_age"] is not None:  # Linux /proc
+        assert t["imports"] + t["read_check"] + t["blocks_wall"] <= t["process_age"] + 0.05
+        assert t["process_age"] <= wall + 0.05
+    assert xr.open_dataset(tmp_path / "m.nc")["mask"].size > 0
+
+
+def test_the_command_leaves_at_once_with_its_exit_code_and_all_output(tmp_path):
+    """The console script ends through os._exit after main(): the exit code, stdout and stderr
+    still arrive whole (a bad scene: exit 2 and its report; a good one: exit 0 and the summary)."""
+    import os
+
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}  # pipes buffered, as for most users
+
+    def buffered(*args):
+        return subprocess.run([str(EXE), *map(str, args)], capture_output=True, text=True, timeout=300, env=env)
+
+    bad = tmp_path / "bad.csv"
+    pd.read_csv(SMALL).drop(columns=["t_skin"]).to_csv(bad, index=False)
+    out = buffered("screen", bad, "--out", tmp_path / "m.nc")
+    assert out.returncode == 2 and "t_skin" in out.stderr
+    out = buffered("screen", SMALL, "--out", tmp_path / "m.nc")
+    assert out.returncode == 0 and "night_front_small" in out.stdout and out.stdout.endswith("\n")
