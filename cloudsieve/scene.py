@@ -451,18 +451,24 @@ def _surface_codes(values):
     example : str or None
         The first unknown value (lower case, stripped).
     """
-    raw = pd.Series(np.asarray(values, dtype=object).ravel())
+    # a table's column comes as it is (Arrow strings, numbers, categories): hashed in C without a
+    # Python string per pixel; the few distinct values are then read one by one
+    raw = values if isinstance(values, pd.Series) else pd.Series(np.asarray(values, dtype=object).ravel())
     lut = dict(SURFACE_CODES, **{"0": 0, "1": 1, "2": 2, "0.0": 0, "1.0": 1, "2.0": 2})
-    inverse, uniq = pd.factorize(raw.astype(str), use_na_sentinel=False)  # hashing; few distinct values
-    uniq = np.asarray(uniq, dtype=object)
-    norm = np.array([str(u).strip().lower() for u in uniq], dtype=object)
-    text = pd.Series(norm[inverse.ravel()])
-    codes = pd.Series(np.array([lut.get(u, -1) for u in norm], dtype=np.int64)[inverse.ravel()])
-    missing = text.isin(["", "nan", "none", "null"])
-    bad = (codes < 0) & ~missing
-    example = text[bad].iloc[0] if bad.any() else None
-    out = np.where(missing | bad, SURFACE_CODES["sea"], codes).astype(np.int8)
-    return out, int(bad.sum()), example
+    inverse, uniq = pd.factorize(raw, use_na_sentinel=False)
+    inverse = np.asarray(inverse).ravel()
+    norm = ["" if u is None or (isinstance(u, float) and np.isnan(u)) else str(u).strip().lower()
+            for u in np.asarray(uniq, dtype=object)]
+    code_u = np.array([lut.get(u, -1) for u in norm], dtype=np.int64)
+    missing_u = np.array([u in ("", "nan", "none", "null", "<na>") for u in norm], dtype=bool)
+    bad_u = (code_u < 0) & ~missing_u
+    out = np.where(bad_u | missing_u, SURFACE_CODES["sea"], code_u).astype(np.int8)[inverse]
+    n_bad, example = 0, None
+    if bad_u.any():
+        bad = bad_u[inverse]
+        n_bad = int(bad.sum())
+        example = norm[int(inverse[int(np.argmax(bad))])]
+    return out, n_bad, example
 
 
 def _report_surface(n_bad, example, report):

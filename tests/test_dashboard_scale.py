@@ -167,6 +167,7 @@ def test_large_scene_path_in_the_browser(serve_app, scene_dir, page, artifacts, 
     page.get_by_text("Large scene: the maps are rasterized").first.wait_for(timeout=TIMEOUT)
     before = page.evaluate(_CLASS_MAP)
     assert before["idw"] == pytest.approx(300, abs=1)  # the whole scene
+    page.locator(".cs-map-class").first.scroll_into_view_if_needed()  # the wheel must land on the map
     page.mouse.move(*map_point(page, 150, 150))
     page.mouse.wheel(0, -240)
     page.wait_for_function("(w) => { const f = [...Bokeh.index.all_views()].find(v => v.model.type === 'Figure');"
