@@ -1,0 +1,69 @@
+"""Solar and geostationary viewing geometry (physics/geometry.py) against outside references:
+the Sun's position from astropy (its ephemeris and sidereal time, a different computation), and
+the geostationary zenith against a vector computation in Earth-centred coordinates and the
+horizon's textbook angle."""
+import warnings
+
+import numpy as np
+import pytest
+
+from physics.geometry import (EARTH_RADIUS_KM, GEOSTATIONARY_RADIUS_KM, geostationary_zenith, julian_date,
+                              solar_zenith)
+
+
+def test_julian_date_of_known_epochs():
+    # J2000.0 and the Unix epoch (Astronomical Almanac: JD 2451545.0 and 2440587.5)
+    assert julian_date(np.datetime64("2000-01-01T12:00:00")) == pytest.approx(2451545.0, abs=1e-9)
+    assert julian_date(np.datetime64("1970-01-01T00:00:00")) == pytest.approx(2440587.5, abs=1e-9)
+
+
+def test_solar_zenith_against_astropy():
+    """A year of times and places (both hemispheres, both sides of the date line, day and night)
+    within 0.02° of astropy's AltAz of get_sun (astropy uses its own ephemeris and Earth
+    rotation; refraction off). The Almanac formulas claim ~0.01°."""
+    from astropy import units as u
+    from astropy.coordinates import AltAz, EarthLocation, get_sun
+    from astropy.time import Time
+    from astropy.utils import iers
+
+    iers.conf.auto_download = False  # offline: the bundled Earth-orientation table
+    iers.conf.iers_degraded_accuracy = "warn"
+    rng = np.random.default_rng(7)
+    n = 60
+    secs = rng.uniform(0, 365 * 86400, n)
+    times = np.datetime64("2026-01-01T00:00:00", "ns") + (secs * 1e9).astype("timedelta64[ns]")
+    lat = rng.uniform(-75, 75, n)
+    lon = rng.uniform(-180, 180, n)
+    ours = solar_zenith(times, lat, lon)
+    t = Time(times.astype("datetime64[ms]").astype(str).tolist(), scale="utc")
+    with warnings.catch_warnings():  # the bundled table's "degraded accuracy" for future dates
+        warnings.simplefilter("ignore")
+        frame = AltAz(obstime=t, location=EarthLocation(lat=lat * u.deg, lon=lon * u.deg, height=0 * u.m),
+                      pressure=0 * u.hPa)
+        ref = 90.0 - get_sun(t).transform_to(frame).alt.deg
+    np.testing.assert_allclose(ours, ref, atol=0.02)  # max seen 0.0104°
+    assert (ours > 90).any() and (ours < 90).any()
+
+
+def test_geostationary_zenith_against_a_vector_computation():
+    """The angle between the local vertical and the line of sight to the satellite, from
+    Earth-centred vectors (spherical Earth), and the horizon at γ = arccos(R/r) ≈ 81.3°."""
+    rng = np.random.default_rng(3)
+    lat, lon, sub = rng.uniform(-70, 70, 200), rng.uniform(-60, 60, 200), 10.0
+
+    def ecef(la, lo, r):
+        la, lo = np.deg2rad(la), np.deg2rad(lo)
+        return r * np.stack([np.cos(la) * np.cos(lo), np.cos(la) * np.sin(lo), np.sin(la)], axis=-1)
+
+    p = ecef(lat, lon, EARTH_RADIUS_KM)
+    s = ecef(0.0, sub, GEOSTATIONARY_RADIUS_KM)
+    los = s - p
+    cos_t = np.sum(los * p, axis=-1) / (np.linalg.norm(los, axis=-1) * np.linalg.norm(p, axis=-1))
+    want = np.where(cos_t > 0, np.rad2deg(np.arccos(cos_t)), np.nan)
+    got = geostationary_zenith(lat, lon, sub)
+    np.testing.assert_allclose(got, want, atol=1e-9, equal_nan=True)
+    assert geostationary_zenith(0.0, sub, sub) == pytest.approx(0.0, abs=1e-9)
+    horizon = np.rad2deg(np.arccos(EARTH_RADIUS_KM / GEOSTATIONARY_RADIUS_KM))
+    assert horizon == pytest.approx(81.3, abs=0.1)  # textbook value (from memory)
+    assert geostationary_zenith(0.0, sub + horizon - 0.01, sub) == pytest.approx(90.0, abs=0.1)
+    assert np.isnan(geostationary_zenith(0.0, sub + horizon + 1.0, sub))
