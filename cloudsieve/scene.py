@@ -55,7 +55,7 @@ COLUMNS = {
     "t_air": ("K", "yes", "background near-surface (2 m) air temperature", (180.0, 340.0)),
     "tcwv": ("kg m-2", "yes", "background total column water vapour (= precipitable water in mm)", (0.0, 90.0)),
     "sat_zenith": ("degree", "yes", "satellite (viewing) zenith angle at the pixel", (0.0, 80.0)),
-    "sol_zenith": ("degree", "no", "solar zenith angle; > 90 is night (3.9 µm usable). Missing: taken as day", (0.0, 180.0)),
+    "sol_zenith": ("degree", "no", "solar zenith angle; > 90 is night (3.9 µm usable). Missing: computed from a NetCDF scene's time and lat/lon, else taken as day", (0.0, 180.0)),
     "p_surf": ("hPa", "no", "surface pressure; missing: 1013.25", (300.0, 1100.0)),
     "surface": ("text", "no", "sea, land or ice (NetCDF: 0, 1, 2); missing: sea", None),
     "emis_<ch>": ("1", "no", "surface emissivity of channel <ch>; overrides the surface-type default", (0.5, 1.0)),
@@ -622,10 +622,11 @@ def _grid_from_netcdf(path, report, chunk_rows):
 
     Returns
     -------
-    (fields, profiles, rows, cols)
+    (fields, profiles, rows, cols, time)
         ``fields``: {name: (ny, nx) array}: float64, except a text ``surface`` (int8 codes) —
         a numeric ``surface`` stays float64 and is checked and coded by :func:`_assemble`.
-        ``profiles``: {name: (ny, nx, level) float64 array}.
+        ``profiles``: {name: (ny, nx, level) float64 array}. ``time``: the scene's UTC time
+        (:func:`_scene_time`) or None.
     """
     try:
         ds = _open_netcdf(path)
@@ -691,6 +692,8 @@ def _netcdf_fields(ds, path, report, chunk_rows):
             continue
         if name in ("row", "col"):
             continue
+        if name == "time" and var.ndim == 0:  # the scene's time (_scene_time), not a pixel variable
+            continue
         if var.dims != ("y", "x"):
             report.error(f"variable '{name}' has dimensions {var.dims}, not (y, x)",
                          "write every scene variable as a 2-D array on (y, x)")
@@ -708,9 +711,43 @@ def _netcdf_fields(ds, path, report, chunk_rows):
     for name in ("lat", "lon"):
         if name in ds.coords and name not in fields and ds[name].dims == ("y", "x"):
             fields[name] = data(ds[name]).astype(np.float64)
+    time = _scene_time(ds, report)
     if chunk_rows is None:
         ds.close()
-    return fields, profiles, rows, cols
+    return fields, profiles, rows, cols, time
+
+
+def _scene_time(ds, report):
+    """The scene's UTC time as datetime64, from a scalar CF ``time`` variable (decoded by xarray)
+    or else the ACDD global attribute ``time_coverage_start`` (ISO 8601); None when it has neither
+    (a time that cannot be read is reported and not used)."""
+    if "time" in ds.variables and ds["time"].size == 1 and ds["time"].dtype.kind == "M":
+        return np.datetime64(ds["time"].values.reshape(-1)[0], "ns")
+    text = ds.attrs.get("time_coverage_start")
+    if text is None:
+        return None
+    try:
+        return np.datetime64(str(text).strip().rstrip("Z").replace("z", ""), "ns")
+    except ValueError:
+        report.warn(f"global attribute time_coverage_start = {text!r} is not an ISO 8601 time",
+                    "write it as 2026-03-14T02:30:00Z; without it sol_zenith cannot be computed")
+        return None
+
+
+def _computed_sol_zenith(ds, time, report):
+    """``sol_zenith`` from the scene time and the pixels' lat/lon where the scene gives none
+    (physics.geometry.solar_zenith, lazily on dask arrays); the report says so."""
+    from physics.geometry import solar_zenith
+
+    if "lat" not in ds.coords or "lon" not in ds.coords:
+        report.warn("the scene has a time but no lat/lon, so sol_zenith cannot be computed",
+                    "add 2-D lat and lon (or sol_zenith); the night tests are skipped meanwhile")
+        return ds
+    ds["sol_zenith"] = (("y", "x"), solar_zenith(time, ds["lat"].data, ds["lon"].data))
+    report.warn(f"sol_zenith computed from the scene time {np.datetime_as_string(time, unit='s')} UTC and the "
+                "pixels' lat/lon (Astronomical Almanac low-precision formulas, about 0.01°)",
+                "give a sol_zenith variable to use your own")
+    return ds
 
 
 # ---------------------------------------------------------------------------------------
@@ -1066,8 +1103,9 @@ def check_scene(path, channels=None, config=None, chunk_rows=None):
         raise SceneError(f"'{path.name}' is empty (0 bytes). Export the scene again.")
     profiles = {}
     present = None
+    time = None
     if fmt == "netcdf":
-        fields, profiles, rows, cols = _grid_from_netcdf(path, report, chunk_rows)
+        fields, profiles, rows, cols, time = _grid_from_netcdf(path, report, chunk_rows)
     else:
         if fmt == "csv":
             table = _CsvTable(_read_csv(path, report))
@@ -1092,6 +1130,8 @@ def check_scene(path, channels=None, config=None, chunk_rows=None):
             f"for skill tests; it is not a scene to screen"
             + (f" — screen '{stem}{path.suffix}' instead" if stem else "") + ".")
     ds, stats, present = _assemble(fields, profiles, present, rows, cols, chunk_rows)
+    if "sol_zenith" not in fields and time is not None:
+        ds = _computed_sol_zenith(ds, time, report)
     unreadable = (lambda exc: _unreadable_netcdf(path, exc)) if fmt == "netcdf" else \
         (lambda exc: SceneError(f"'{path.name}' could not be read ({exc})."))
     chans, valid = _validate(ds, list(fields), present, known, report, stats, unreadable)

@@ -48,8 +48,8 @@ def solar_zenith(time, lat, lon):
     jd0 = np.floor(jd - 0.5) + 0.5  # the preceding midnight
     ut_hours = (jd - jd0) * 24.0
     gmst = np.mod(6.697375 + 0.0657098242 * (jd0 - J2000) + 1.0027379 * ut_hours, 24.0)
-    hour_angle = np.deg2rad(np.asarray(gmst) * 15.0 + np.asarray(lon, float)) - ra
-    phi = np.deg2rad(np.asarray(lat, float))
+    hour_angle = np.deg2rad(gmst * 15.0 + lon) - ra  # lat/lon as given: numpy or dask arrays
+    phi = np.deg2rad(lat)
     cos_z = np.sin(phi) * np.sin(dec) + np.cos(phi) * np.cos(dec) * np.cos(hour_angle)
     return np.rad2deg(np.arccos(np.clip(cos_z, -1.0, 1.0)))
 

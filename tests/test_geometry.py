@@ -67,3 +67,54 @@ def test_geostationary_zenith_against_a_vector_computation():
     assert horizon == pytest.approx(81.3, abs=0.1)  # textbook value (from memory)
     assert geostationary_zenith(0.0, sub + horizon - 0.01, sub) == pytest.approx(90.0, abs=0.1)
     assert np.isnan(geostationary_zenith(0.0, sub + horizon + 1.0, sub))
+
+
+# ---------------------------------------------------------------------------------------
+# a scene without sol_zenith but with a time: computed on reading, on both paths
+# ---------------------------------------------------------------------------------------
+SAMPLE = __import__("pathlib").Path(__file__).resolve().parents[1] / "sample_scenes" / "night_front.nc"
+
+
+def _scene_without_sol_zenith(tmp_path, **attrs):
+    import xarray as xr
+
+    ds = xr.open_dataset(SAMPLE).load().drop_vars("sol_zenith")
+    ds.attrs.update(attrs)
+    path = tmp_path / "no_sun.nc"
+    ds.to_netcdf(path)
+    return path
+
+
+def test_sol_zenith_is_computed_from_the_scene_time_on_both_paths(tmp_path):
+    """At 10:00 UTC on 14 March the invented scene (33–39° N, 145–152° W) lies in the night (local
+    time about 00:00): the computed angles are night, equal the physics function at the pixels'
+    lat/lon, the same read whole or lazily, and the report says where they came from."""
+    from cloudsieve.scene import load_scene
+
+    path = _scene_without_sol_zenith(tmp_path, time_coverage_start="2026-03-14T10:00:00Z")
+    whole = load_scene(path)
+    lazy = load_scene(path, chunk_rows=37)
+    sz = whole.data["sol_zenith"].values
+    assert np.all(sz > 120)  # local midnight in March at 33–39° N: the Sun far below the horizon
+    want = solar_zenith(np.datetime64("2026-03-14T10:00:00"), whole.data["lat"].values, whole.data["lon"].values)
+    np.testing.assert_allclose(sz, want, rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(lazy.data["sol_zenith"].values, sz)
+    assert "sol_zenith computed from the scene time 2026-03-14T10:00:00 UTC" in whole.report.text()
+    # a scalar CF time variable works the same
+    import xarray as xr
+
+    ds = xr.open_dataset(path).load()
+    ds.attrs.pop("time_coverage_start")
+    ds["time"] = np.datetime64("2026-03-14T22:00:00", "ns")  # local 12:00: day
+    ds.to_netcdf(tmp_path / "with_time.nc")
+    assert np.all(load_scene(tmp_path / "with_time.nc").data["sol_zenith"].values < 90)
+
+
+def test_a_bad_or_missing_time_leaves_sol_zenith_missing_and_says_why(tmp_path):
+    from cloudsieve.scene import load_scene
+
+    bad = load_scene(_scene_without_sol_zenith(tmp_path, time_coverage_start="the 14th of March"))
+    assert np.isnan(bad.data["sol_zenith"].values).all()
+    assert "is not an ISO 8601 time" in bad.report.text()
+    none = load_scene(_scene_without_sol_zenith(tmp_path))
+    assert np.isnan(none.data["sol_zenith"].values).all() and "computed" not in none.report.text()
