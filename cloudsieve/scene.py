@@ -622,11 +622,11 @@ def _grid_from_netcdf(path, report, chunk_rows):
 
     Returns
     -------
-    (fields, profiles, rows, cols, time)
+    (fields, profiles, rows, cols, facts)
         ``fields``: {name: (ny, nx) array}: float64, except a text ``surface`` (int8 codes) —
         a numeric ``surface`` stays float64 and is checked and coded by :func:`_assemble`.
-        ``profiles``: {name: (ny, nx, level) float64 array}. ``time``: the scene's UTC time
-        (:func:`_scene_time`) or None.
+        ``profiles``: {name: (ny, nx, level) float64 array}. ``facts``: ``time``, the scene's UTC
+        time (:func:`_scene_time`), and ``geostationary`` (:func:`_geostationary`), each or None.
     """
     try:
         ds = _open_netcdf(path)
@@ -692,8 +692,8 @@ def _netcdf_fields(ds, path, report, chunk_rows):
             continue
         if name in ("row", "col"):
             continue
-        if name == "time" and var.ndim == 0:  # the scene's time (_scene_time), not a pixel variable
-            continue
+        if var.ndim == 0 and (name == "time" or "grid_mapping_name" in var.attrs):
+            continue  # the scene's time (_scene_time) or its CF grid mapping (_geostationary): not pixels
         if var.dims != ("y", "x"):
             report.error(f"variable '{name}' has dimensions {var.dims}, not (y, x)",
                          "write every scene variable as a 2-D array on (y, x)")
@@ -711,10 +711,48 @@ def _netcdf_fields(ds, path, report, chunk_rows):
     for name in ("lat", "lon"):
         if name in ds.coords and name not in fields and ds[name].dims == ("y", "x"):
             fields[name] = data(ds[name]).astype(np.float64)
-    time = _scene_time(ds, report)
+    facts = {"time": _scene_time(ds, report), "geostationary": _geostationary(ds)}
     if chunk_rows is None:
         ds.close()
-    return fields, profiles, rows, cols, time
+    return fields, profiles, rows, cols, facts
+
+
+def _geostationary(ds):
+    """(sub-satellite longitude [degree east], orbit radius [km], Earth radius [km]) from a CF
+    grid mapping ``grid_mapping_name = "geostationary"`` (CF conventions, appendix F:
+    ``longitude_of_projection_origin``, ``perspective_point_height`` above the ellipsoid [m],
+    ``semi_major_axis`` [m], WGS 84's when absent), or None."""
+    for var in ds.variables.values():
+        if var.attrs.get("grid_mapping_name") != "geostationary":
+            continue
+        try:
+            lon0 = float(var.attrs["longitude_of_projection_origin"])
+            height = float(var.attrs["perspective_point_height"])
+            a = float(var.attrs.get("semi_major_axis", 6378137.0))
+        except (KeyError, TypeError, ValueError):
+            return None
+        return lon0, (height + a) / 1000.0, a / 1000.0
+    return None
+
+
+def _computed_sat_zenith(fields, geo, report):
+    """``sat_zenith`` from a CF geostationary grid mapping and the pixels' lat/lon where the scene
+    gives none (physics.geometry.geostationary_zenith; numpy or dask). Pixels seen lower than the
+    scene limit (COLUMNS: 80°), or beyond the horizon, get NaN (no_data); the report says so."""
+    from physics.geometry import geostationary_zenith
+
+    if "lat" not in fields or "lon" not in fields:
+        report.warn("the scene has a geostationary grid mapping but no lat/lon, so sat_zenith cannot be computed",
+                    "add 2-D lat and lon, or a sat_zenith variable")
+        return fields
+    lon0, orbit, earth = geo
+    zen = geostationary_zenith(fields["lat"], fields["lon"], lon0, orbit_radius=orbit, earth_radius=earth)
+    limit = _RANGES["sat_zenith"][1]
+    fields = dict(fields, sat_zenith=np.where(zen <= limit, zen, np.nan))
+    report.warn(f"sat_zenith computed from the CF geostationary grid mapping (sub-satellite longitude {lon0:g}° E, "
+                f"orbit radius {orbit:,.0f} km) and the pixels' lat/lon; pixels at a zenith angle above {limit:g}° "
+                "or beyond the horizon are no_data", "give a sat_zenith variable to use your own")
+    return fields
 
 
 def _scene_time(ds, report):
@@ -1103,9 +1141,11 @@ def check_scene(path, channels=None, config=None, chunk_rows=None):
         raise SceneError(f"'{path.name}' is empty (0 bytes). Export the scene again.")
     profiles = {}
     present = None
-    time = None
+    facts = {}
     if fmt == "netcdf":
-        fields, profiles, rows, cols, time = _grid_from_netcdf(path, report, chunk_rows)
+        fields, profiles, rows, cols, facts = _grid_from_netcdf(path, report, chunk_rows)
+        if "sat_zenith" not in fields and facts.get("geostationary") is not None:
+            fields = _computed_sat_zenith(fields, facts["geostationary"], report)
     else:
         if fmt == "csv":
             table = _CsvTable(_read_csv(path, report))
@@ -1130,8 +1170,8 @@ def check_scene(path, channels=None, config=None, chunk_rows=None):
             f"for skill tests; it is not a scene to screen"
             + (f" — screen '{stem}{path.suffix}' instead" if stem else "") + ".")
     ds, stats, present = _assemble(fields, profiles, present, rows, cols, chunk_rows)
-    if "sol_zenith" not in fields and time is not None:
-        ds = _computed_sol_zenith(ds, time, report)
+    if "sol_zenith" not in fields and facts.get("time") is not None:
+        ds = _computed_sol_zenith(ds, facts["time"], report)
     unreadable = (lambda exc: _unreadable_netcdf(path, exc)) if fmt == "netcdf" else \
         (lambda exc: SceneError(f"'{path.name}' could not be read ({exc})."))
     chans, valid = _validate(ds, list(fields), present, known, report, stats, unreadable)

@@ -118,3 +118,30 @@ def test_a_bad_or_missing_time_leaves_sol_zenith_missing_and_says_why(tmp_path):
     assert "is not an ISO 8601 time" in bad.report.text()
     none = load_scene(_scene_without_sol_zenith(tmp_path))
     assert np.isnan(none.data["sol_zenith"].values).all() and "computed" not in none.report.text()
+
+
+def test_sat_zenith_is_computed_from_a_cf_geostationary_grid_mapping(tmp_path):
+    """A scene without sat_zenith but with the CF grid mapping of a geostationary view (CF
+    conventions appendix F attribute names) gets it from its lat/lon, equal to the physics
+    function with the mapping's sub-point and orbit; the scalar mapping variable is not taken for
+    a pixel variable; read whole and lazily alike."""
+    import xarray as xr
+
+    from cloudsieve.scene import load_scene
+
+    ds = xr.open_dataset(SAMPLE).load().drop_vars("sat_zenith")
+    ds["projection"] = xr.DataArray(0, attrs={"grid_mapping_name": "geostationary",
+                                               "longitude_of_projection_origin": -137.0,
+                                               "perspective_point_height": 35786023.0,
+                                               "semi_major_axis": 6378137.0, "sweep_angle_axis": "x"})
+    path = tmp_path / "geo.nc"
+    ds.to_netcdf(path)
+    whole, lazy = load_scene(path), load_scene(path, chunk_rows=64)
+    got = whole.data["sat_zenith"].values
+    want = geostationary_zenith(whole.data["lat"].values, whole.data["lon"].values, -137.0,
+                                orbit_radius=(35786023.0 + 6378137.0) / 1000.0, earth_radius=6378.137)
+    np.testing.assert_allclose(got, want, atol=1e-9)
+    np.testing.assert_array_equal(lazy.data["sat_zenith"].values, got)
+    assert 30 < np.nanmin(got) < np.nanmax(got) < 60  # 33–39° N, 8–15° of longitude from the sub-point
+    assert "sat_zenith computed from the CF geostationary grid mapping" in whole.report.text()
+    assert whole.report.ok
