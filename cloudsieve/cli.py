@@ -63,13 +63,18 @@ def build_parser():
     debug = argparse.ArgumentParser(add_help=False)
     debug.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                        help="show full tracebacks of internal errors")
+    # scene variables under other names (added to [input.names] for this run)
+    rename = argparse.ArgumentParser(add_help=False)
+    rename.add_argument("--rename", action="append", metavar="THEIRS=OURS", default=[],
+                        help="read the scene's variable THEIRS as OURS, e.g. --rename skt=t_skin (repeatable; "
+                             "the same as [input.names] ours = \"theirs\" in --config)")
 
-    c = sub.add_parser("check", parents=[debug], help="validate scene files and print every problem found",
+    c = sub.add_parser("check", parents=[debug, rename], help="validate scene files and print every problem found",
                        description="Read each scene and print one report listing every problem with what to do.")
     c.add_argument("scenes", nargs="+", metavar="SCENE", help="scene file(s): .csv, .parquet or .nc")
     c.add_argument("--config", metavar="FILE", help="TOML configuration (adds channels)")
 
-    s = sub.add_parser("screen", parents=[debug], help="screen scenes: mask, test margins, departures, cloud layer",
+    s = sub.add_parser("screen", parents=[debug, rename], help="screen scenes: mask, test margins, departures, cloud layer",
                        description="Screen scene(s) and write the mask, test bits and margins, departures, "
                                    "clear-sky brightness temperatures and the cloud layer.",
                        formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -94,14 +99,14 @@ def build_parser():
     big.add_argument("--scheduler", metavar="ADDRESS",
                      help="use an existing dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
 
-    m = sub.add_parser("simulate", parents=[debug], help="write clear-sky brightness temperatures and departures only",
+    m = sub.add_parser("simulate", parents=[debug, rename], help="write clear-sky brightness temperatures and departures only",
                        description="Simulate the clear-sky brightness temperature of every pixel and channel.")
     m.add_argument("scene", metavar="SCENE", help="scene file: .csv, .parquet or .nc")
     m.add_argument("--out", required=True, metavar="PATH", help="output file (.nc or .csv)")
     m.add_argument("--config", metavar="FILE", help="TOML configuration overriding the defaults")
     m.add_argument("--format", choices=("csv", "netcdf"), help="output format (default: from the --out extension)")
 
-    v = sub.add_parser("serve", parents=[debug],
+    v = sub.add_parser("serve", parents=[debug, rename],
                        help="serve the dashboard on 127.0.0.1; open the address it prints in a browser",
                        description="Serve the dashboard and print its address (open it in a browser, or pass "
                                    "--show). With no scene it opens the bundled sample scene.")
@@ -183,11 +188,17 @@ def _progress(enabled, total, desc):
                 disable=not sys.stderr.isatty() and not os.environ.get("CLOUDSIEVE_PROGRESS"))
 
 
+def _config_of(args):
+    """The run's configuration: --config over the defaults, plus any --rename pairs."""
+    from .config import add_renames, load_config
+
+    return add_renames(load_config(args.config), getattr(args, "rename", None))
+
+
 def cmd_check(args):
-    from .config import load_config
     from .scene import check_scene
 
-    cfg = load_config(args.config)
+    cfg = _config_of(args)
     worst = EXIT_OK
     for path in args.scenes:
         try:
@@ -237,10 +248,9 @@ def _screen_one(path, out_path, cfg, fmt, args, show_progress):
 def cmd_screen(args):
     t = time.perf_counter()
     from . import batch  # noqa: F401 — the pipeline's imports, timed for --timings
-    from .config import load_config
 
     _IMPORTS_S[0] = time.perf_counter() - t
-    cfg = load_config(args.config)
+    cfg = _config_of(args)
     files = _expand(args.scenes)
     out = Path(args.out)
     pattern = any(ch in a for a in args.scenes for ch in "*?[")  # a pattern means an archive: --out is a folder
@@ -397,12 +407,11 @@ def _print_summary(rows, failed):
 
 
 def cmd_simulate(args):
-    from .config import load_config
     from .export import write_simulation
     from .scene import load_scene
     from .simulate import simulate
 
-    cfg = load_config(args.config)
+    cfg = _config_of(args)
     fmt = _output_format(args.out, args.format)
     _refuse_overwriting_input(args.scene, args.out)
     scene = load_scene(args.scene, config=cfg)

@@ -25,7 +25,7 @@ TOP_PRESSURE_RANGE = (10.0, 1100.0)
 #: Tables whose keys are open (new channel names may be added)
 _OPEN_TABLES = {("channels",), ("surface", "emissivity", "sea"), ("surface", "emissivity", "land"),
                 ("surface", "emissivity", "ice"), ("absorption",), ("instrument", "nedt"), ("background_noise",),
-                ("cloud", "optics", "ice", "beta"), ("cloud", "optics", "water", "beta")}
+                ("cloud", "optics", "ice", "beta"), ("cloud", "optics", "water", "beta"), ("input", "names")}
 
 
 #: Keys of earlier versions and what replaced them (a user's old file gets this instead of "unknown key")
@@ -112,11 +112,43 @@ def _merge(base, override, path, problems):
             problems.append(f"'{dotted}' must be {_type_name(default)}; got {value!r} ({_type_name(value)}).")
 
 
+def _scene_name_known(name):
+    """A variable name of our scene format (scene.COLUMNS, with <ch> any channel name)."""
+    import re
+
+    from .scene import COLUMNS
+
+    fixed = {k for k in COLUMNS if "<" not in k}
+    return name in fixed or re.fullmatch(r"(bt|emis|bt_clear)_\w+|profile_\w+", name) is not None
+
+
+def add_renames(cfg, pairs):
+    """The configuration with ``--rename theirs=ours`` pairs added to ``[input.names]`` (checked)."""
+    extra = {}
+    for pair in pairs or ():
+        theirs, sep, ours = str(pair).partition("=")
+        if not sep or not theirs.strip() or not ours.strip():
+            raise ConfigError(f"--rename {pair!r}: write it as THEIRS=OURS, e.g. --rename skt=t_skin")
+        extra[ours.strip()] = theirs.strip()
+    if not extra:
+        return cfg
+    return merge_config({"input": {"names": extra}}, base=cfg)
+
+
 def _check_values(cfg, problems):
     def need(cond, msg):
         if not cond:
             problems.append(msg)
 
+    names = cfg.get("input", {}).get("names", {})
+    for ours, theirs in names.items():
+        need(isinstance(theirs, str) and theirs.strip() != "",
+             f"'input.names.{ours}' must be the name the scene uses, as text; got {theirs!r}.")
+        need(_scene_name_known(ours), f"'input.names.{ours}': '{ours}' is not a scene variable of cloudsieve "
+                                      "(see the README's scene format: t_skin, bt_11um, sat_zenith, …).")
+    taken = [t for t in names.values() if isinstance(t, str)]
+    for t in sorted({t for t in taken if taken.count(t) > 1}):
+        problems.append(f"'input.names' gives '{t}' for more than one variable; each of theirs maps to one of ours.")
     sim = cfg["simulation"]
     need(3 <= sim["levels"] <= 201, "'simulation.levels' must lie within 3–201.")
     need(0.1 <= sim["top_pressure"] <= 300, "'simulation.top_pressure' must lie within 0.1–300 hPa.")

@@ -477,7 +477,7 @@ def _report_surface(n_bad, example, report):
                      "use sea, land or ice (or leave empty for sea)")
 
 
-def _grid_from_table(table, report, in_memory):
+def _grid_from_table(table, report, in_memory, names=None):
     """Table (one row per pixel) → 2-D numpy grids; the table checks of both paths.
 
     Two passes over the table's batches: the grid positions first (extent, whole numbers),
@@ -500,6 +500,17 @@ def _grid_from_table(table, report, in_memory):
         row at the position. None when the positions are unusable (the report says why).
     """
     labels = [str(c).strip() for c in table.names]
+    if names:  # [input.names]: ours = "theirs"
+        theirs_to_ours = {t: o for o, t in names.items() if o not in labels}
+        missing = [f"{o} = '{t}'" for o, t in names.items() if t not in labels and o not in labels]
+        if missing:
+            report.error(f"[input.names] names column(s) the table does not have: {', '.join(missing)}",
+                         f"check the names; the table's columns: {', '.join(labels[:15])}")
+        used = [f"{theirs_to_ours[c]} ← '{c}'" for c in labels if c in theirs_to_ours]
+        labels = [theirs_to_ours.get(c, c) for c in labels]
+        if used:
+            report.warn("columns read under other names: " + "; ".join(used) + " ([input.names])",
+                        "nothing to do if these are right; otherwise set [input.names]")
     dupe_cols = sorted({c for c in labels if labels.count(c) > 1})
     if dupe_cols:
         report.error(f"column(s) {', '.join(dupe_cols)} appear more than once in the header", "keep one of each")
@@ -617,7 +628,7 @@ def _unreadable_netcdf(path, exc):
                       "Check that it is NetCDF-4 or classic NetCDF and was written completely.")
 
 
-def _grid_from_netcdf(path, report, chunk_rows):
+def _grid_from_netcdf(path, report, chunk_rows, names=None):
     """NetCDF scene → 2-D grids (numpy loaded whole, or dask chunked along y).
 
     Returns
@@ -633,13 +644,66 @@ def _grid_from_netcdf(path, report, chunk_rows):
     except Exception as exc:  # noqa: BLE001 — netCDF4/h5py raise a variety of errors for broken files
         raise _unreadable_netcdf(path, exc) from None
     try:
-        return _netcdf_fields(ds, path, report, chunk_rows)
+        return _netcdf_fields(ds, path, report, chunk_rows, names)
     except BaseException:
         ds.close()
         raise
 
 
-def _netcdf_fields(ds, path, report, chunk_rows):
+#: our scene variables found by CF standard_name in a NetCDF scene that does not use our names
+#: (names from the CF standard name table; first match wins, in this order)
+STANDARD_NAMES = {
+    "lat": ("latitude",), "lon": ("longitude",),
+    "t_skin": ("surface_temperature", "sea_surface_skin_temperature"),
+    "t_air": ("air_temperature",),
+    "tcwv": ("atmosphere_mass_content_of_water_vapor",),
+    "sat_zenith": ("sensor_zenith_angle", "platform_zenith_angle"),
+    "sol_zenith": ("solar_zenith_angle",),
+    "p_surf": ("surface_air_pressure",),
+}
+
+
+def _find_names(ds, names, report):
+    """The Dataset with the scene's variables under our names: first the analyst's table
+    (``[input.names]``, ours → theirs), then, for what is still missing, a CF ``standard_name``
+    (:data:`STANDARD_NAMES`, looked up with cf_xarray) on a variable of the (y, x) grid. A
+    pressure in Pa is converted to hPa. The report lists what was read under which name."""
+    import cf_xarray  # noqa: F401 — registers the .cf accessor
+
+    found, renames = [], {}
+    for ours, theirs in names.items():
+        if theirs in ds.variables and ours not in ds.variables:
+            renames[theirs] = ours
+            found.append(f"{ours} ← '{theirs}' ([input.names])")
+        elif theirs not in ds.variables and ours not in ds.variables:
+            report.error(f"[input.names] says {ours} is '{theirs}', but the file has no variable '{theirs}'",
+                         f"check the name; the file's variables: {', '.join(map(str, list(ds.data_vars)[:15]))}")
+    by_standard = ds.cf.standard_names
+    for ours, standards in STANDARD_NAMES.items():
+        if ours in ds.variables or ours in renames.values():
+            continue
+        for sn in standards:
+            cands = [v for v in by_standard.get(sn, []) if ds[v].dims == ("y", "x") and v not in renames]
+            if len(cands) == 1:
+                renames[cands[0]] = ours
+                found.append(f"{ours} ← '{cands[0]}' (standard_name {sn})")
+                break
+            if len(cands) > 1:
+                report.warn(f"several variables have standard_name {sn} ({', '.join(cands)}); none is taken as {ours}",
+                            f"say which in the configuration: [input.names] {ours} = \"{cands[0]}\"")
+                break
+    if not renames:
+        return ds
+    ds = ds.rename(renames)
+    if "p_surf" in renames.values() and str(ds["p_surf"].attrs.get("units", "")).strip() == "Pa":
+        ds["p_surf"] = (ds["p_surf"] / 100.0).assign_attrs(units="hPa")
+        found.append("p_surf converted from Pa to hPa")
+    report.warn("variables read under other names: " + "; ".join(found),
+                "nothing to do if these are right; otherwise set [input.names]")
+    return ds
+
+
+def _netcdf_fields(ds, path, report, chunk_rows, names=None):
     """The body of :func:`_grid_from_netcdf` on the opened (lazy) Dataset."""
     for name in ("y", "x"):
         if name not in ds.dims:
@@ -656,6 +720,7 @@ def _netcdf_fields(ds, path, report, chunk_rows):
         raise SceneError(f"'{Path(path).name}' has no 2-D variables on dimensions (y, x) "
                          f"(dimensions found: {dict(ds.sizes)}). A NetCDF scene holds the scene columns as 2-D "
                          "variables on (y, x).")
+    ds = _find_names(ds, names or {}, report)
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     try:  # grid indices: small, read now on both paths
         rows = np.asarray(ds["row"].values) if "row" in ds and ds["row"].dims == ("y",) else np.arange(ny)
@@ -1137,13 +1202,14 @@ def check_scene(path, channels=None, config=None, chunk_rows=None):
     if path.is_dir():
         raise SceneError(f"'{path}' is a folder, not a scene file. Give a .csv, .parquet or .nc file.")
     fmt = scene_format(path)
+    names = dict(((config or {}).get("input") or {}).get("names") or {})
     if path.stat().st_size == 0:
         raise SceneError(f"'{path.name}' is empty (0 bytes). Export the scene again.")
     profiles = {}
     present = None
     facts = {}
     if fmt == "netcdf":
-        fields, profiles, rows, cols, facts = _grid_from_netcdf(path, report, chunk_rows)
+        fields, profiles, rows, cols, facts = _grid_from_netcdf(path, report, chunk_rows, names)
         if "sat_zenith" not in fields and facts.get("geostationary") is not None:
             fields = _computed_sat_zenith(fields, facts["geostationary"], report)
     else:
@@ -1155,7 +1221,7 @@ def check_scene(path, channels=None, config=None, chunk_rows=None):
                 table.close()
                 raise SceneError(f"'{path.name}' has columns but no pixel rows. Add one row per pixel.")
         try:
-            built = _grid_from_table(table, report, in_memory=chunk_rows is None)
+            built = _grid_from_table(table, report, in_memory=chunk_rows is None, names=names)
         finally:
             table.close()
         if built is None:

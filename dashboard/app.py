@@ -617,7 +617,10 @@ def serve(args):
     except _OriginError as exc:
         print(str(exc), file=sys.stderr)
         return exc.exit_code
-    config = load_config(args.config)  # a bad file raises ConfigError: the CLI prints it, exit 2
+    from cloudsieve.config import add_renames
+
+    # a bad file or --rename raises ConfigError: the CLI prints it, exit 2
+    config = add_renames(load_config(args.config), getattr(args, "rename", None))
     paths = [Path(p) for p in (args.scenes or [])]
     for p in paths:
         if not p.is_file():
