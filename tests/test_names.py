@@ -1,6 +1,10 @@
 """Scenes under their own variable names: found by CF standard_name (looked up with cf_xarray)
 or named in [input.names] / --rename; the screening of a renamed scene equals that of the same
-scene under our names, and every naming problem is reported with its fix."""
+scene under our names, and every naming problem is reported with its fix.
+
+Source: the standard names used (surface_temperature, sensor_zenith_angle, surface_air_pressure
+in Pa) are those of the CF standard name table; the reference result is the same scene screened
+under our own names."""
 import subprocess
 import sys
 from pathlib import Path

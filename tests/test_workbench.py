@@ -1,6 +1,10 @@
 """The analyst's workbench without a browser: the "why flagged" and margin maps, the truth
 comparison, maps sized to the window, per-test histograms with per-surface lines, and the
-stages the loading panel shows. The same views in a browser: test_app_ui.py."""
+stages the loading panel shows. The same views in a browser: test_app_ui.py.
+
+Source of the expected values: pixels worked out by hand, brute-force recomputation from the
+screening's margins, and the project's skill definitions (tests/skill_figures.py, the
+reference for POD and false alarms) — the views must say what the core computed."""
 import asyncio
 import shutil
 from pathlib import Path
