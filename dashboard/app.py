@@ -197,6 +197,7 @@ class Session:
         if first is not None and _served():
             # the page answers at once, saying which scene it opens and at which stage it is
             self.loading.start(Path(first).name)
+
             async def open_first():
                 await self._open_first(first)
 
@@ -353,8 +354,7 @@ class Session:
         self.notices.clear()
         self.tabs.loading = self.counts.loading = self.model is not None  # the old scene, greyed out meanwhile
         log.info("opening scene %s", label)
-        doc = pn.state.curdoc
-        served = doc is not None and doc.session_context is not None
+        doc, served = pn.state.curdoc, _served()
 
         def progress(stage):  # called from the worker thread: the page is changed on its own loop
             if served:
