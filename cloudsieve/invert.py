@@ -197,13 +197,16 @@ class _Candidate(NamedTuple):
     chi2: np.ndarray  # [1]
 
 
-def _top(phase, obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, corr):
+def _tops(phases, obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, corr):
+    """The cloud top of each phase's optics (physics.cloud.cloud_tops: one call, compiled where
+    the physics kernels run), as :class:`_Candidate` s in the order of ``phases``."""
     cc = config["cloud"]
-    top = pcloud.cloud_top(
-        obs, clr, opq, lp, s_obs, s_clr, beta=phase_beta(phase, inv, config), method=cc["top"], fixed_pressure=fixed,
-        reference=reference_index(inv, config), top_limit=top_limit, assumed_pressure=cc["assumed_top_pressure"],
-        max_sigma_pressure=cc["max_sigma_pressure"], clear_correlation=corr)
-    return _Candidate(top, pcloud.interpolate_levels(lp, lt, top.pressure), top.chi2)
+    tops = pcloud.cloud_tops(
+        obs, clr, opq, lp, lt, s_obs, s_clr, [phase_beta(p, inv, config) for p in phases], method=cc["top"],
+        fixed_pressure=fixed, reference=reference_index(inv, config), top_limit=top_limit,
+        assumed_pressure=cc["assumed_top_pressure"], max_sigma_pressure=cc["max_sigma_pressure"],
+        clear_correlation=corr, compiled=None)
+    return [_Candidate(top, t_top, top.chi2) for top, t_top in tops]
 
 
 def _where(cond, a, b):
@@ -291,7 +294,7 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     s_clr = np.stack([s_in[:, k] * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
     lp = np.asarray(level_pressure, dtype=float)
     lt = np.asarray(level_temperature, dtype=float)
-    opq = np.asarray(opaque, dtype=float)
+    opq = np.asarray(opaque)  # float32 from the simulation: the compiled path reads it so, without a copy
     mu = np.cos(np.deg2rad(sat_zenith))
     # the tropopause (first temperature minimum going up) bounds the cloud top
     k_trop = np.argmin(lt, axis=-1)
@@ -302,7 +305,7 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     if cc["phase"] == "auto":
         # the tops of each phase's optics first (cheap), then the optics at the chosen top once
         # ice of the configured optics, or large crystals (β → 1, geometric-optics limit): the better fit
-        ice, grey = _top("ice", *args), _top("grey", *args)
+        ice, grey = _tops(("ice", "grey"), *args)
         chi_i = np.where(np.isfinite(ice.chi2), ice.chi2, np.inf)
         chi_g = np.where(np.isfinite(grey.chi2), grey.chi2, np.inf)
         large = chi_g < chi_i
@@ -314,7 +317,7 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
         chosen = ice
         if rest.size:
             part = lambda a: a[rest] if isinstance(a, np.ndarray) and a.shape[:1] == (n_blk,) else a  # noqa: E731
-            water = _top("water", *(part(a) for a in args))
+            water, = _tops(("water",), *(part(a) for a in args))
             ice_rest = _take_rows(ice, rest)
             nc = np.full(rest.size, np.nan) if night_contrast is None else np.asarray(night_contrast)[rest]
             take_ice[rest] = choose_phase(ice_rest, water, nc, config)
@@ -328,10 +331,10 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
         top = chosen.top
     else:
         beta = phase_beta(cc["phase"], inv, config)
-        top = _top(cc["phase"], *args).top
+        top = _tops((cc["phase"],), *args)[0].top
         phase = np.full(n_blk, PHASE_NAMES.index(cc["phase"]), np.int8)
     res = pcloud.cloud_at_top(obs, clr, opq, lp, lt, mu, s_obs, s_clr, np.ones(n_blk, bool), top, beta=beta,
-                              reference=reference_index(inv, config), eps_max=cc["eps_max"])
+                              reference=reference_index(inv, config), eps_max=cc["eps_max"], compiled=None)
     phase = np.where(np.isfinite(res.optical_depth) | (res.status == pcloud.STATUS_BEYOND_OPAQUE), phase,
                      PHASE_NONE).astype(np.int8)
     # similarity-relation extinction with the phase's optics (grey: interpolated by top temperature)

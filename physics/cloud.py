@@ -584,8 +584,9 @@ def _as_arrays(observed, clear, opaque_levels, level_pressure, sigma_observed, s
 
 def cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, sigma_clear, beta=None,
               method="consistent", fixed_pressure=None, reference=0, top_limit=None, assumed_pressure=350.0,
-              noise_sigmas=2.0, max_sigma_pressure=100.0, clear_correlation=None):
-    """The cloud-top choice of :func:`invert_cloud` (same parameters), as a :class:`CloudTop`."""
+              noise_sigmas=2.0, max_sigma_pressure=100.0, clear_correlation=None, compiled=None):
+    """The cloud-top choice of :func:`invert_cloud` (same parameters), as a :class:`CloudTop`
+    (``compiled`` goes to :func:`consistent_top`)."""
     obs, clr, lo, lp, s_obs, s_clr, beta = _as_arrays(observed, clear, opaque_levels, level_pressure, sigma_observed,
                                                       sigma_clear, beta)
     shape, n_ch = obs.shape[:-1], obs.shape[-1]
@@ -608,7 +609,8 @@ def cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, si
             d = lo - clr[..., None, :]
             corr = np.eye(n_ch) if clear_correlation is None else np.asarray(clear_correlation, dtype=float)
             cov = corr * s_clr[..., :, None] * s_clr[..., None, :]
-            p_c, s_c, chi2_c, _ = consistent_top(obs - clr, d, lp, s_obs, cov, beta, allowed, ref, noise_sigmas)
+            p_c, s_c, chi2_c, _ = consistent_top(obs - clr, d, lp, s_obs, cov, beta, allowed, ref, noise_sigmas,
+                                                  compiled)
             ok = np.isfinite(p_c) & (s_c <= max_sigma_pressure) & (n_ch > 1)
             lowest = lp[..., -1] if top_limit is None else np.asarray(top_limit, dtype=float)
             guess = np.clip(np.broadcast_to(np.asarray(assumed_pressure, dtype=float), shape),
@@ -623,10 +625,89 @@ def cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, si
     return CloudTop(p_top, sigma_p, chi2, assumed)
 
 
+def cloud_tops(observed, clear, opaque_levels, level_pressure, level_temperature, sigma_observed, sigma_clear, betas,
+               method="consistent", fixed_pressure=None, reference=0, top_limit=None, assumed_pressure=350.0,
+               noise_sigmas=2.0, max_sigma_pressure=100.0, clear_correlation=None, compiled=False):
+    """:func:`cloud_top` for several cloud optics at once, with the air temperature at each top.
+
+    Parameters as :func:`invert_cloud`, except ``betas``: a sequence of absorption-ratio sets
+    (each (n_ch,) or (..., n_ch); one per phase tried) and ``compiled``: True runs
+    physics.cloud_kernel (the opaque top, the degenerate-level rejections and the ln p grid once
+    per pixel, then one χ² search per β; opaque-level radiances read as float32), None where
+    ``physics.fused.enabled()``, False (the default) this numpy reference.
+
+    Returns
+    -------
+    list of (CloudTop, top temperature (...) [K]), one per entry of ``betas``
+    """
+    if compiled is None:
+        from . import fused
+
+        compiled = fused.enabled()
+    if compiled and method in ("fixed", "opaque", "consistent") and not (method == "fixed" and fixed_pressure is None):
+        from . import cloud_kernel, fused
+
+        obs = np.asarray(observed)
+        lead, n_ch = obs.shape[:-1], obs.shape[-1]
+        lp = np.asarray(level_pressure)
+        n_lev = lp.shape[-1]
+        flat = lambda a, tail: np.broadcast_to(a, lead + tail).reshape((-1,) + tail)  # noqa: E731
+        corr = np.eye(n_ch) if clear_correlation is None else clear_correlation
+        limit = lp[..., -1] if top_limit is None else top_limit
+        fixed = np.nan if fixed_pressure is None else fixed_pressure
+        try:
+            p, sp, chi2, assumed, tt = cloud_kernel.cloud_tops(
+                flat(obs, (n_ch,)), flat(clear, (n_ch,)), flat(sigma_observed, (n_ch,)), flat(sigma_clear, (n_ch,)),
+                flat(corr, (n_ch, n_ch)), flat(lp, (n_lev,)), flat(level_temperature, (n_lev,)),
+                flat(opaque_levels, (n_lev, n_ch)), flat(limit, ()), [flat(b, (n_ch,)) for b in betas], method,
+                flat(fixed, ()), flat(assumed_pressure, ()), reference, noise_sigmas, max_sigma_pressure,
+                REFINE_STEPS)
+            shape = lambda a: a.reshape(lead)  # noqa: E731
+            return [(CloudTop(shape(p[j]), shape(sp[j]), shape(chi2[j]), shape(assumed[j])), shape(tt[j]))
+                    for j in range(len(betas))]
+        except fused.Unavailable:
+            pass  # warned once; the numpy reference below
+    out = []
+    for beta in betas:
+        top = cloud_top(observed, clear, opaque_levels, level_pressure, sigma_observed, sigma_clear, beta, method,
+                        fixed_pressure, reference, top_limit, assumed_pressure, noise_sigmas, max_sigma_pressure,
+                        clear_correlation, compiled=False)
+        out.append((top, interpolate_levels(np.asarray(level_pressure, dtype=float),
+                                            np.asarray(level_temperature, dtype=float), top.pressure)))
+    return out
+
+
 def cloud_at_top(observed, clear, opaque_levels, level_pressure, level_temperature, mu, sigma_observed, sigma_clear,
-                 cloudy, top, beta=None, reference=0, eps_max=0.99, noise_sigmas=2.0):
+                 cloudy, top, beta=None, reference=0, eps_max=0.99, noise_sigmas=2.0, compiled=False):
     """Emissivities, optical depth and status at a chosen :class:`CloudTop` (:func:`invert_cloud`'s
-    second half; parameters as there, ``beta`` may differ per pixel)."""
+    second half; parameters as there, ``beta`` may differ per pixel).
+
+    ``compiled``: True runs physics.cloud_kernel (the same rules pixel by pixel; opaque-level
+    radiances read as float32), None where ``physics.fused.enabled()``, False (the default) this
+    numpy reference.
+    """
+    if compiled is None:
+        from . import fused
+
+        compiled = fused.enabled()
+    if compiled:
+        from . import cloud_kernel, fused
+
+        obs = np.asarray(observed)
+        lead, n_ch = obs.shape[:-1], obs.shape[-1]
+        n_lev = np.shape(level_pressure)[-1]
+        flat = lambda a, tail: np.broadcast_to(a, lead + tail).reshape((-1,) + tail)  # noqa: E731
+        b = np.ones(n_ch) if beta is None else beta
+        try:
+            out = cloud_kernel.cloud_at_top(
+                flat(obs, (n_ch,)), flat(clear, (n_ch,)), flat(sigma_observed, (n_ch,)), flat(sigma_clear, (n_ch,)),
+                flat(level_pressure, (n_lev,)), flat(level_temperature, (n_lev,)),
+                flat(opaque_levels, (n_lev, n_ch)), flat(mu, ()), flat(b, (n_ch,)),
+                [flat(np.asarray(f), ()) for f in top], flat(np.asarray(cloudy, bool), ()), reference, eps_max,
+                noise_sigmas)
+            return CloudRetrieval(*(o.reshape(lead + o.shape[1:]) for o in out))
+        except fused.Unavailable:
+            pass  # warned once; the numpy reference below
     obs, clr, lo, lp, s_obs, s_clr, beta = _as_arrays(observed, clear, opaque_levels, level_pressure, sigma_observed,
                                                       sigma_clear, beta)
     lt = np.asarray(level_temperature, dtype=float)
