@@ -292,14 +292,13 @@ def invert_columns(obs_bt, clr_bt, level_pressure, level_temperature, opaque, sa
     s_in = np.asarray(sigma_clear, dtype=float)
     s_in = np.broadcast_to(s_in[:, None] if s_in.ndim == 1 else s_in, clr_bt.shape)
     s_clr = np.stack([s_in[:, k] * ch.radiance_derivative(clr_bt[:, k]) for k, ch in enumerate(chans)], axis=-1)
-    lp = np.asarray(level_pressure, dtype=float)
-    lt = np.asarray(level_temperature, dtype=float)
-    opq = np.asarray(opaque)  # float32 from the simulation: the compiled path reads it so, without a copy
+    # float32 from the simulation: the compiled path reads them so, without float64 copies
+    lp, lt, opq = np.asarray(level_pressure), np.asarray(level_temperature), np.asarray(opaque)
     mu = np.cos(np.deg2rad(sat_zenith))
     # the tropopause (first temperature minimum going up) bounds the cloud top
     k_trop = np.argmin(lt, axis=-1)
     top_limit = np.take_along_axis(lp, k_trop[:, None], axis=-1)[:, 0]
-    fixed = _fixed_top(cc, lp, lt, n_blk) if cc["top"] == "fixed" else None
+    fixed = _fixed_top(cc, lp.astype(float), lt.astype(float), n_blk) if cc["top"] == "fixed" else None
     args = (obs, clr, lp, lt, opq, mu, s_obs, s_clr, top_limit, fixed, inv, config, clear_correlation)
     n_inv = len(inv)
     if cc["phase"] == "auto":

@@ -633,7 +633,7 @@ def cloud_tops(observed, clear, opaque_levels, level_pressure, level_temperature
     Parameters as :func:`invert_cloud`, except ``betas``: a sequence of absorption-ratio sets
     (each (n_ch,) or (..., n_ch); one per phase tried) and ``compiled``: True runs
     physics.cloud_kernel (the opaque top, the degenerate-level rejections and the ln p grid once
-    per pixel, then one χ² search per β; opaque-level radiances read as float32), None where
+    per pixel, then one χ² search per β; per-level inputs read as float32), None where
     ``physics.fused.enabled()``, False (the default) this numpy reference.
 
     Returns
@@ -683,7 +683,8 @@ def cloud_at_top(observed, clear, opaque_levels, level_pressure, level_temperatu
     second half; parameters as there, ``beta`` may differ per pixel).
 
     ``compiled``: True runs physics.cloud_kernel (the same rules pixel by pixel; opaque-level
-    radiances read as float32), None where ``physics.fused.enabled()``, False (the default) this
+    radiances and level pressures and temperatures read as float32), None where
+    ``physics.fused.enabled()``, False (the default) this
     numpy reference.
     """
     if compiled is None:

@@ -12,8 +12,9 @@ over pixels:
 - :func:`cloud_at_top`: :func:`physics.cloud.cloud_at_top` — emissivities, optical depth and its
   uncertainty (including the top's), status.
 
-Storage: the opaque-level radiances, the largest input, are read as float32 (what the scene's
-simulation keeps), everything else as float64; the arithmetic inside a pixel is float64 (the
+Storage: the per-level inputs (pressure, temperature, opaque-level radiances: the largest) are
+read as float32 (what the scene's simulation keeps), the per-pixel ones as float64; the
+arithmetic inside a pixel is float64 (the
 χ² of strongly correlated channels needs it), so the results equal the reference's to rounding.
 ``tests/test_cloud.py`` holds the two paths together on synthetic clouds and on the sample
 scenes. Why it is fast: each pixel's values stay in registers instead of long vector passes
@@ -375,13 +376,16 @@ if fused.numba is not None:
             m = max(others.size, 1)
             w_res, w_tc, w_g, w_h, w_cr = np.empty(m), np.empty(m), np.empty(m), np.empty(m), np.empty((m, m))
             result = np.empty(3)
+            lpr = np.empty(n_lev)
             for i in range(tile * _TILE, min(n, (tile + 1) * _TILE)):
-                bottom, top = lp[i, 0], lp[i, n_lev - 1]
-                p_opq, found = _opaque_top(obs[i, r], opq[i, :, r], lp[i], top_limit[i])
-                sp_opq = _layer_spacing(lp[i], p_opq)
+                for k in range(n_lev):  # the pixel's pressures in float64 (stored as float32)
+                    lpr[k] = lp[i, k]
+                bottom, top = lpr[0], lpr[n_lev - 1]
+                p_opq, found = _opaque_top(obs[i, r], opq[i, :, r], lpr, top_limit[i])
+                sp_opq = _layer_spacing(lpr, p_opq)
                 if method == 2:
                     for k in range(n_lev):
-                        allowed[k] = k > 0 and lp[i, k] >= top_limit[i]
+                        allowed[k] = k > 0 and lpr[k] >= top_limit[i]
                         for c in range(n_ch):
                             d[k, c] = opq[i, k, c] - clr[i, c]
                     for a in range(n_ch):
@@ -391,10 +395,10 @@ if fused.numba is not None:
                     need_logs = False
                     for ph in range(n_phase):
                         need_logs = need_logs or _needs_logs(betas[ph, i], others)
-                    _level_pass(s, d, lp[i], s_obs[i], cov, allowed, r, noise_sigmas, need_logs, usable, x, terms)
+                    _level_pass(s, d, lpr, s_obs[i], cov, allowed, r, noise_sigmas, need_logs, usable, x, terms)
                     guess = _clip(assumed_p[i], top_limit[i], p_opq)
                     for ph in range(n_phase):
-                        _search(s, d, lp[i], x, s_obs[i], cov, betas[ph, i], usable, terms, r, others, steps,
+                        _search(s, d, lpr, x, s_obs[i], cov, betas[ph, i], usable, terms, r, others, steps,
                                 need_logs, chi, dv, t_terms, w_res, w_tc, w_g, w_h, w_cr, result)
                         ok = math.isfinite(result[0]) and result[1] <= max_sigma_p and n_ch > 1
                         assumed = (not ok) and found
@@ -405,25 +409,25 @@ if fused.numba is not None:
                         else:
                             p, sp, c2 = p_opq, sp_opq, math.nan
                         p = _clip(p, top, bottom)
-                        k, w = _level_index(lp[i], p)
+                        k, w = _level_index(lpr, p)
                         p_out[ph, i] = p
                         sp_out[ph, i] = sp
                         chi_out[ph, i] = c2
                         assumed_out[ph, i] = assumed
-                        tt_out[ph, i] = lt[i, k] + (lt[i, k + 1] - lt[i, k]) * w
+                        tt_out[ph, i] = float(lt[i, k]) + (float(lt[i, k + 1]) - float(lt[i, k])) * w
                 else:
                     if method == 1:
                         p, sp = p_opq, sp_opq
                     else:
                         p, sp = fixed[i], 0.0
                     p = _clip(p, top, bottom)
-                    k, w = _level_index(lp[i], p)
+                    k, w = _level_index(lpr, p)
                     for ph in range(n_phase):
                         p_out[ph, i] = p
                         sp_out[ph, i] = sp
                         chi_out[ph, i] = math.nan
                         assumed_out[ph, i] = False
-                        tt_out[ph, i] = lt[i, k] + (lt[i, k + 1] - lt[i, k]) * w
+                        tt_out[ph, i] = float(lt[i, k]) + (float(lt[i, k + 1]) - float(lt[i, k])) * w
 
     @fused._njit(fastmath=False, error_model="numpy", nogil=True)
     def _optics_ref(obs_r, clr_r, lo_r, lp, p, mu, eps_max):
@@ -438,95 +442,98 @@ if fused.numba is not None:
                       eps_max, noise_sigmas, eps_out, s_eps_out, tau_out, s_tau_out, p_out, sp_out, tt_out,
                       status_out, uncertain_out, chi_out):
         n, n_lev, n_ch = opq.shape
-        for i in fused.numba.prange(n):
-            lpi = lp[i]
-            bottom, top = lpi[0], lpi[n_lev - 1]
-            k, w = _level_index(lpi, p_top[i])
-            tt = lt[i, k] + (lt[i, k + 1] - lt[i, k]) * w
-            mu_i = mu[i]
-            n_valid = 0
-            sw = 0.0
-            swt = 0.0
-            any_cond = any_opq = any_beyond = any_warmer = False
-            all_opq_like = True
-            r_cond = r_opq = r_beyond = r_warmer = False
-            for c in range(n_ch):
-                d = opq[i, k, c] + (opq[i, k + 1, c] - opq[i, k, c]) * w - clr[i, c]
-                eps = (obs[i, c] - clr[i, c]) / d
-                e01 = _clip(eps, 0.0, 1.0)
-                s_eps = math.sqrt(s_obs[i, c] ** 2 + (1.0 - e01) ** 2 * s_clr[i, c] ** 2) / abs(d)
-                cond = abs(d) > noise_sigmas * math.hypot(s_obs[i, c], s_clr[i, c])
-                opq_c = eps >= eps_max and eps <= 1.0 + noise_sigmas * s_eps
-                beyond = eps > 1.0 + noise_sigmas * s_eps
-                warmer = eps < -noise_sigmas * s_eps
-                valid = cond and eps < eps_max and not warmer and not beyond
-                if valid:
-                    e_c = _clip(eps, 0.0, eps_max)
-                    tau_ch = -mu_i * math.log1p(-e_c) / beta[i, c]
-                    s_tau_ch = mu_i * s_eps / ((1.0 - e_c) * beta[i, c])
-                    if s_tau_ch < 1e-6:
-                        s_tau_ch = 1e-6
-                    wt = 1.0 / s_tau_ch ** 2
-                    sw += wt
-                    swt += wt * tau_ch
-                    n_valid += 1
-                any_cond = any_cond or cond
-                any_opq = any_opq or opq_c
-                any_beyond = any_beyond or beyond
-                any_warmer = any_warmer or warmer
-                all_opq_like = all_opq_like and (opq_c or beyond or not cond)
-                if c == r:
-                    r_cond, r_opq, r_beyond, r_warmer = cond, opq_c, beyond, warmer
-                show = cloudy[i] and math.isfinite(eps) and cond
-                eps_out[i, c] = eps if show else math.nan
-                s_eps_out[i, c] = s_eps if show else math.nan
-            tau = swt / sw
-            s_tau = 1.0 / math.sqrt(sw)
-            sp = sigma_p[i]
-            if math.isfinite(sp) and sp > 0:
-                t0 = _optics_ref(obs[i, r], clr[i, r], opq[i, :, r], lpi, _clip(p_top[i] - sp, top, bottom), mu_i,
-                                 eps_max)
-                t1 = _optics_ref(obs[i, r], clr[i, r], opq[i, :, r], lpi, _clip(p_top[i] + sp, top, bottom), mu_i,
-                                 eps_max)
-                s_tau = math.hypot(s_tau, 0.5 * abs(t1 - t0))
-            status = 0
-            if r_cond:
-                if r_opq:
-                    status = 1
-                if r_beyond:
-                    status = 2
-                if r_warmer:
-                    status = 3
-            else:
-                if all_opq_like and any_opq:
-                    status = 1
-                if n_valid == 0 and any_beyond and not any_opq:
-                    status = 2
-                if n_valid == 0 and any_warmer and not any_opq and not any_beyond:
-                    status = 3
-            if not any_cond:
-                status = 4
-            if n_valid == 0 and status == 0:
-                status = 4
-            if assumed[i] and status == 0:
-                status = 6
-            if not cloudy[i]:
-                status = 5
-            if status == 1:
-                tau = -mu_i * math.log1p(-eps_max)
-                s_tau = _INF
-            keep = status == 0 or status == 1 or status == 6
-            if not keep:
-                tau = math.nan
-                s_tau = math.nan
-            tau_out[i] = tau
-            s_tau_out[i] = s_tau
-            status_out[i] = status
-            uncertain_out[i] = keep and not (s_tau <= tau)
-            if cloudy[i]:
-                p_out[i], sp_out[i], tt_out[i], chi_out[i] = p_top[i], sp, tt, chi2[i]
-            else:
-                p_out[i] = sp_out[i] = tt_out[i] = chi_out[i] = math.nan
+        for tile in fused.numba.prange((n + _TILE - 1) // _TILE):
+            lpi = np.empty(n_lev)
+            for i in range(tile * _TILE, min(n, (tile + 1) * _TILE)):
+                for k in range(n_lev):  # the pixel's pressures in float64 (stored as float32)
+                    lpi[k] = lp[i, k]
+                bottom, top = lpi[0], lpi[n_lev - 1]
+                k, w = _level_index(lpi, p_top[i])
+                tt = float(lt[i, k]) + (float(lt[i, k + 1]) - float(lt[i, k])) * w
+                mu_i = mu[i]
+                n_valid = 0
+                sw = 0.0
+                swt = 0.0
+                any_cond = any_opq = any_beyond = any_warmer = False
+                all_opq_like = True
+                r_cond = r_opq = r_beyond = r_warmer = False
+                for c in range(n_ch):
+                    d = opq[i, k, c] + (opq[i, k + 1, c] - opq[i, k, c]) * w - clr[i, c]
+                    eps = (obs[i, c] - clr[i, c]) / d
+                    e01 = _clip(eps, 0.0, 1.0)
+                    s_eps = math.sqrt(s_obs[i, c] ** 2 + (1.0 - e01) ** 2 * s_clr[i, c] ** 2) / abs(d)
+                    cond = abs(d) > noise_sigmas * math.hypot(s_obs[i, c], s_clr[i, c])
+                    opq_c = eps >= eps_max and eps <= 1.0 + noise_sigmas * s_eps
+                    beyond = eps > 1.0 + noise_sigmas * s_eps
+                    warmer = eps < -noise_sigmas * s_eps
+                    valid = cond and eps < eps_max and not warmer and not beyond
+                    if valid:
+                        e_c = _clip(eps, 0.0, eps_max)
+                        tau_ch = -mu_i * math.log1p(-e_c) / beta[i, c]
+                        s_tau_ch = mu_i * s_eps / ((1.0 - e_c) * beta[i, c])
+                        if s_tau_ch < 1e-6:
+                            s_tau_ch = 1e-6
+                        wt = 1.0 / s_tau_ch ** 2
+                        sw += wt
+                        swt += wt * tau_ch
+                        n_valid += 1
+                    any_cond = any_cond or cond
+                    any_opq = any_opq or opq_c
+                    any_beyond = any_beyond or beyond
+                    any_warmer = any_warmer or warmer
+                    all_opq_like = all_opq_like and (opq_c or beyond or not cond)
+                    if c == r:
+                        r_cond, r_opq, r_beyond, r_warmer = cond, opq_c, beyond, warmer
+                    show = cloudy[i] and math.isfinite(eps) and cond
+                    eps_out[i, c] = eps if show else math.nan
+                    s_eps_out[i, c] = s_eps if show else math.nan
+                tau = swt / sw
+                s_tau = 1.0 / math.sqrt(sw)
+                sp = sigma_p[i]
+                if math.isfinite(sp) and sp > 0:
+                    t0 = _optics_ref(obs[i, r], clr[i, r], opq[i, :, r], lpi, _clip(p_top[i] - sp, top, bottom), mu_i,
+                                     eps_max)
+                    t1 = _optics_ref(obs[i, r], clr[i, r], opq[i, :, r], lpi, _clip(p_top[i] + sp, top, bottom), mu_i,
+                                     eps_max)
+                    s_tau = math.hypot(s_tau, 0.5 * abs(t1 - t0))
+                status = 0
+                if r_cond:
+                    if r_opq:
+                        status = 1
+                    if r_beyond:
+                        status = 2
+                    if r_warmer:
+                        status = 3
+                else:
+                    if all_opq_like and any_opq:
+                        status = 1
+                    if n_valid == 0 and any_beyond and not any_opq:
+                        status = 2
+                    if n_valid == 0 and any_warmer and not any_opq and not any_beyond:
+                        status = 3
+                if not any_cond:
+                    status = 4
+                if n_valid == 0 and status == 0:
+                    status = 4
+                if assumed[i] and status == 0:
+                    status = 6
+                if not cloudy[i]:
+                    status = 5
+                if status == 1:
+                    tau = -mu_i * math.log1p(-eps_max)
+                    s_tau = _INF
+                keep = status == 0 or status == 1 or status == 6
+                if not keep:
+                    tau = math.nan
+                    s_tau = math.nan
+                tau_out[i] = tau
+                s_tau_out[i] = s_tau
+                status_out[i] = status
+                uncertain_out[i] = keep and not (s_tau <= tau)
+                if cloudy[i]:
+                    p_out[i], sp_out[i], tt_out[i], chi_out[i] = p_top[i], sp, tt, chi2[i]
+                else:
+                    p_out[i] = sp_out[i] = tt_out[i] = chi_out[i] = math.nan
 
 
 def consistent_top(s, d, lp, s_obs, cov, beta, allowed, reference, noise_sigmas, steps):
@@ -551,18 +558,23 @@ def _f64(a, shape):
     return np.ascontiguousarray(np.broadcast_to(np.asarray(a, dtype=float), shape))
 
 
+def _f32(a, shape):
+    return np.ascontiguousarray(np.broadcast_to(np.asarray(a, dtype=np.float32), shape))
+
+
 def cloud_tops(obs, clr, s_obs, s_clr, corr, lp, lt, opq, top_limit, betas, method, fixed, assumed_pressure,
                reference, noise_sigmas, max_sigma_pressure, steps):
     """The compiled :func:`physics.cloud.cloud_tops` on (n, ...) arrays: (pressure, σ, χ², assumed,
-    top temperature), each (n_phase, n). ``opq`` (n, n_levels, n_ch) is read as float32 (what the
-    scene's simulation stores; no float64 copy of the largest array), everything else as float64."""
+    top temperature), each (n_phase, n). ``lp``, ``lt`` (n, n_levels) and ``opq`` (n, n_levels, n_ch)
+    are read as float32 (what the scene's simulation stores; no float64 copies of the largest
+    arrays), everything else as float64."""
     n, n_lev, n_ch = opq.shape
     n_phase = len(betas)
     out = [np.empty((n_phase, n)) for _ in range(3)] + [np.empty((n_phase, n), np.bool_), np.empty((n_phase, n))]
     others = np.array([k for k in range(n_ch) if k != reference], np.int64)
     fused._run_kernel(
         _cloud_tops, _f64(obs, (n, n_ch)), _f64(clr, (n, n_ch)), _f64(s_obs, (n, n_ch)), _f64(s_clr, (n, n_ch)),
-        _f64(corr, (n, n_ch, n_ch)), _f64(lp, (n, n_lev)), _f64(lt, (n, n_lev)),
+        _f64(corr, (n, n_ch, n_ch)), _f32(lp, (n, n_lev)), _f32(lt, (n, n_lev)),
         np.ascontiguousarray(opq, dtype=np.float32), _f64(top_limit, (n,)),
         np.ascontiguousarray(np.stack([np.broadcast_to(np.asarray(b, dtype=float), (n, n_ch)) for b in betas])),
         METHODS[method], _f64(fixed, (n,)), _f64(assumed_pressure, (n,)), int(reference), others,
@@ -572,7 +584,7 @@ def cloud_tops(obs, clr, s_obs, s_clr, corr, lp, lt, opq, top_limit, betas, meth
 
 def cloud_at_top(obs, clr, s_obs, s_clr, lp, lt, opq, mu, beta, top, cloudy, reference, eps_max, noise_sigmas):
     """The compiled :func:`physics.cloud.cloud_at_top` on (n, ...) arrays: the fields of a
-    ``CloudRetrieval`` in its order (``opq`` read as float32, as in :func:`cloud_tops`)."""
+    ``CloudRetrieval`` in its order (level inputs read as float32, as in :func:`cloud_tops`)."""
     n, n_lev, n_ch = opq.shape
     p_top, sigma_p, chi2, assumed = top
     eps, s_eps = np.empty((n, n_ch)), np.empty((n, n_ch))
@@ -580,7 +592,7 @@ def cloud_at_top(obs, clr, s_obs, s_clr, lp, lt, opq, mu, beta, top, cloudy, ref
     status, uncertain = np.empty(n, np.int8), np.empty(n, np.bool_)
     fused._run_kernel(
         _cloud_at_top, _f64(obs, (n, n_ch)), _f64(clr, (n, n_ch)), _f64(s_obs, (n, n_ch)), _f64(s_clr, (n, n_ch)),
-        _f64(lp, (n, n_lev)), _f64(lt, (n, n_lev)), np.ascontiguousarray(opq, dtype=np.float32), _f64(mu, (n,)),
+        _f32(lp, (n, n_lev)), _f32(lt, (n, n_lev)), np.ascontiguousarray(opq, dtype=np.float32), _f64(mu, (n,)),
         _f64(beta, (n, n_ch)), _f64(p_top, (n,)), _f64(sigma_p, (n,)), _f64(chi2, (n,)),
         np.ascontiguousarray(np.broadcast_to(assumed, (n,)), np.bool_),
         np.ascontiguousarray(np.broadcast_to(cloudy, (n,)), np.bool_), int(reference), float(eps_max),

@@ -356,7 +356,8 @@ def test_compiled_tops_and_inversion_match_the_numpy_reference(columns):
     """physics.cloud_kernel's cloud_tops and cloud_at_top against the numpy reference
     (physics.cloud, float64): every top choice, grey and non-grey optics tried together, thin to
     thick clouds at three heights, two noise levels with independent and correlated clear-sky
-    errors, opaque-level radiances stored as float32 as in a scene. Tops within 0.5 hPa, σ within
+    errors, the per-level inputs (pressure, temperature, opaque-level radiance) stored as float32
+    as in a scene (both paths read the same values). Tops within 0.5 hPa, σ within
     1 %, χ² within 1e-6 relative, top temperatures within 0.01 K, the same fallbacks; ε and τ
     within 1e-6 and statuses identical (a difference would be counted and reported here; tests
     the kernel's status rules line by line)."""
@@ -364,6 +365,7 @@ def test_compiled_tops_and_inversion_match_the_numpy_reference(columns):
     chans, prof, sky, mu = columns
     rng = np.random.default_rng(11)
     opq32 = sky.opaque_radiance.astype(np.float32)
+    lp32, lt32 = prof.pressure.astype(np.float32), prof.temperature.astype(np.float32)
     betas = [np.ones(3), np.array([0.9, 1.0, 1.15]), np.array([0.79, 1.0, 1.2])]
     limit = np.full(TAUS.size, 150.0)
     n_cases = 0
@@ -378,7 +380,7 @@ def test_compiled_tops_and_inversion_match_the_numpy_reference(columns):
                 for method in ("consistent", "opaque", "fixed"):
                     kw = dict(method=method, fixed_pressure=np.full(TAUS.size, 500.0), reference=1, top_limit=limit,
                               clear_correlation=corr)
-                    args = (obs, sky.radiance, opq32, prof.pressure, prof.temperature, s, s, betas)
+                    args = (obs, sky.radiance, opq32, lp32, lt32, s, s, betas)
                     ref = pc.cloud_tops(*args, compiled=False, **kw)
                     com = pc.cloud_tops(*args, compiled=True, **kw)
                     for (t0, tt0), (t1, tt1) in zip(ref, com):
@@ -389,7 +391,7 @@ def test_compiled_tops_and_inversion_match_the_numpy_reference(columns):
                         np.testing.assert_allclose(tt1, tt0, atol=0.01)
                     top = ref[1][0]
                     cloudy = np.arange(TAUS.size) != 3  # one pixel not inverted
-                    at = (obs, sky.radiance, opq32, prof.pressure, prof.temperature, mu, s, s, cloudy, top)
+                    at = (obs, sky.radiance, opq32, lp32, lt32, mu, s, s, cloudy, top)
                     r0 = pc.cloud_at_top(*at, beta=beta_true, reference=1, compiled=False)
                     r1 = pc.cloud_at_top(*at, beta=beta_true, reference=1, compiled=True)
                     assert _statuses_apart(r0, r1) == 0
