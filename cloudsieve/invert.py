@@ -448,7 +448,7 @@ def invert_pixels(layer, flat_index, obs, clear, levels, sat_zenith, sigma_clear
     layer.put(flat_index, res)
 
 
-def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None, bias=None):
+def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None, bias=None, into=None):
     """The single-layer cloud inversion of every valid pixel of an in-memory scene (the dashboard's stage 2).
 
     Parameters
@@ -463,6 +463,9 @@ def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None
     column_simulator : simulate.ColumnSimulator, optional
     bias : {channel: fit}, optional
         The removed clear-sky bias (:func:`inversion_bias`), added back to the clear sky.
+    into : CloudLayer, optional
+        A layer of this scene and these settings to write the pixels into (its other pixels
+        are kept; a pixel's inversion does not depend on any other pixel); a new one when omitted.
 
     Returns
     -------
@@ -471,8 +474,11 @@ def invert_all(scene, sim, config, sigma_clear, only=None, column_simulator=None
     ds = scene.data
     shape = (ds.sizes["y"], ds.sizes["x"])
     inv = inversion_channels(sim.channels, config)
-    layer = CloudLayer.empty(shape, inv, config["cloud"]["top"], layer_beta(inv, config))
-    layer.notes = inversion_notes(layer.channels, config)
+    if into is not None:
+        layer = into
+    else:
+        layer = CloudLayer.empty(shape, inv, config["cloud"]["top"], layer_beta(inv, config))
+        layer.notes = inversion_notes(layer.channels, config)
     idx = sim.valid_index
     chosen = None if only is None else np.flatnonzero(np.asarray(only, bool).ravel()[idx])
     n_todo = idx.size if chosen is None else chosen.size

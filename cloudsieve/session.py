@@ -57,6 +57,10 @@ class Session:
         A simulation of this scene under this configuration to reuse (the dashboard shares
         one per file between browser sessions); computed when omitted.
     invert_scope : {"all", "flagged"}
+        Which pixels the cloud layer is inverted for. "all" (default): every pixel once per
+        cloud settings and clear-sky bias, when it is first flagged (marginal or cloud) — a
+        retune that flags a few more pixels inverts just those, and one that unflags pixels
+        keeps theirs for later. "flagged": the flagged set again whenever it changes.
     """
 
     def __init__(self, scene, config=None, journal=True, sim=None, invert_scope="all"):
@@ -78,6 +82,7 @@ class Session:
         self.lean = self.sim.level_pressure is None
         self._cloud = None
         self._cloud_key = None
+        self._inverted = None  # (y, x) bool: pixels the cloud layer holds under _cloud_key
         self._inv_bias = None
         self._screen_cache = {}  # threshold-independent screening arrays of this scene (screen.screen_scene)
         self._shown_latest_edit = None
@@ -180,9 +185,7 @@ class Session:
 
     # ------------------------------------------------------------------ computing
     def _cloud_layer(self, cfg, mask, bias=None, exact=False):
-        only = None
-        if self.invert_scope == "flagged":
-            only = (mask == CLOUD) | (mask == MARGINAL)
+        flagged = (mask == CLOUD) | (mask == MARGINAL)
         cc = cfg["cloud"]
         # the bias the inversion adds back: kept while the fit moves by less than 0.1 K (a retune
         # moves it a little; re-running the inversion for that would cost seconds for nothing)
@@ -190,16 +193,28 @@ class Session:
         if not exact and bias_close(self._inv_bias, inv_bias):
             inv_bias = self._inv_bias
         self._inv_bias = inv_bias
-        key = (json.dumps(cc, sort_keys=True, default=str), json.dumps(inv_bias, sort_keys=True),
-               None if only is None else hash(np.packbits(only).tobytes()))
-        if key != self._cloud_key:
+        key = (json.dumps(cc, sort_keys=True, default=str), json.dumps(inv_bias, sort_keys=True))
+        if self.invert_scope == "flagged":
+            key += (hash(np.packbits(flagged).tobytes()),)
+        if key != self._cloud_key:  # new cloud settings or bias: nothing inverted is valid any more
+            self._cloud, self._inverted = None, np.zeros(mask.shape, bool)
+        # "all": each pixel is inverted once per cloud settings and bias, when it is first flagged
+        # (retunes that flag a few more pixels invert just those); "flagged": the flagged set anew
+        todo = flagged & ~self._inverted
+        if self._cloud is None or todo.any():
             t0 = time.perf_counter()
-            self._cloud = invert_all(self.scene, self.sim, cfg, self.sim.sigma, only=only, column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None,
-                                     bias=inv_bias)
-            if self.lean:
-                self._cloud = self._cloud.as_float32()
+            into = None if self._cloud is None or self.lean else self._cloud
+            layer = invert_all(self.scene, self.sim, cfg, self.sim.sigma, only=todo, into=into, bias=inv_bias,
+                               column_simulator=simulation.ColumnSimulator(self.scene, cfg) if self.lean else None)
+            if self.lean:  # float32 layer: the new pixels written into the kept one
+                layer = layer.as_float32()
+                if self._cloud is not None:
+                    layer = _merged(self._cloud, layer, todo)
+            self._cloud = layer
+            self._inverted |= todo
             self._cloud_key = key
             self.timings["invert_s"] = time.perf_counter() - t0
+            self.timings["invert_pixels"] = int(todo.sum())
         return self._cloud
 
     def edits(self):
@@ -473,6 +488,15 @@ class Session:
             out["observed"][ch] = _num(self.scene.data[f"bt_{ch}"].values[row, col])
         return out
 
+
+
+def _merged(kept, new, where):
+    """Cloud layer ``kept`` with the pixels ``where`` (y, x) taken from ``new`` (same shape and settings)."""
+    for name in ("optical_depth", "optical_depth_sigma", "extinction_optical_depth", "top_pressure",
+                 "top_pressure_sigma", "top_temperature", "status", "phase", "uncertain"):
+        getattr(kept, name)[where] = getattr(new, name)[where]
+    kept.emissivity[:, where] = new.emissivity[:, where]
+    return kept
 
 
 def compact_scene(scene):

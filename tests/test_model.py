@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 
 from cloudsieve import cli, session as session_module, simulate as simulation_module
-from cloudsieve.codes import CLASS_NAMES, CLEAR, CLOUD
+from cloudsieve.codes import CLASS_NAMES, CLEAR, CLOUD, MARGINAL
 from cloudsieve.config import to_toml
 from cloudsieve.journal import journal_path
 from cloudsieve.registry import REGISTRY, bit_table, registered
@@ -110,21 +110,35 @@ def test_cached_retuning_gives_the_same_screening_as_a_fresh_one(model):
 
 
 def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_it(model, monkeypatch):
-    calls = []
+    calls, inverted = [], []
     real = session_module.invert_all
 
     def counting(*args, **kwargs):
         calls.append(args[2]["cloud"]["top"])
+        inverted.append(np.asarray(kwargs["only"]).copy())
         return real(*args, **kwargs)
 
     monkeypatch.setattr(session_module, "invert_all", counting)
     # with the bias removal on, the inversion adds the bias fit back to the clear sky and re-runs
-    # when a retune moves the fit by more than 0.1 K (invert.bias_close); without it, never
+    # when a retune moves the fit by more than 0.1 K (invert.bias_close); without it, only for
+    # pixels flagged for the first time under these cloud settings
     model.remove_bias = False
     calls.clear()
+    inverted.clear()
+    flagged = lambda: (model.result.mask == CLOUD) | (model.result.mask == MARGINAL)  # noqa: E731
+    seen = flagged()
     model.set_threshold("split_window_excess", 1.0)
+    seen_after_one = seen | flagged()
     model.set_threshold("texture", 0.8)
-    assert calls == []  # same cloud settings: the cached retrieval is masked to the new classes
+    # same cloud settings: the cached retrieval is masked to the new classes, and just the newly
+    # flagged pixels are inverted (never one twice)
+    assert set(calls) <= {"consistent"}
+    done = np.zeros_like(seen)
+    for only in inverted:
+        assert not (only & (done | seen)).any()
+        done |= only
+    assert (done == (seen_after_one | flagged()) & ~seen).all()
+    calls.clear()
     model.cloud_top = "fixed"
     assert calls == ["fixed"]
     cl = model.result.cloud
@@ -140,6 +154,33 @@ def test_threshold_changes_reuse_the_cloud_inversion_and_cloud_top_changes_redo_
     # the cloud layer only covers pixels that are not clear
     clear = model.result.mask == CLEAR
     assert np.all(np.isnan(model.result.cloud.optical_depth[clear]))
+
+
+@pytest.mark.parametrize("lean", [False, True])
+def test_a_cloud_layer_built_up_over_retunes_equals_one_inverted_at_once(scene_path, lean):
+    """The session inverts each pixel once per cloud settings, when it is first flagged: after
+    retunes that flag more and fewer pixels, its layer must equal that of a new session opened
+    on the final settings (every flagged pixel inverted in one call), in memory and in the lean
+    mode of large scenes (float32 layer, levels simulated again per block)."""
+    from cloudsieve.config import load_config
+    from cloudsieve.scene import load_scene
+    from cloudsieve.session import Session
+
+    scene = load_scene(scene_path)
+    cfg = load_config()
+    cfg["bias"]["remove"] = False  # the bias fit would move with the thresholds (tested apart)
+    sim = simulation_module.simulate(scene, cfg, levels=not lean)
+    grown = Session(scene, cfg, journal=False, sim=sim)
+    assert grown.lean is lean
+    for test, value in (("cold_departure", 4.0), ("cold_departure", 1.5), ("texture", 0.4), ("cold_departure", 3.0)):
+        grown.set_threshold(test, value)
+    once = Session(scene, grown.config, journal=False, sim=sim)
+    np.testing.assert_array_equal(grown.result.mask, once.result.mask)
+    a, b = grown.result.cloud, once.result.cloud
+    for name in ("status", "phase", "optical_depth", "optical_depth_sigma", "top_pressure", "top_temperature",
+                 "emissivity", "uncertain"):
+        np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+    assert np.isfinite(a.optical_depth).sum() > 1000
 
 
 # ---------------------------------------------------------------------------------------
