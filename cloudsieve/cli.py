@@ -124,6 +124,8 @@ def build_parser():
     v.add_argument("--basic-auth", metavar="PASSWORD_OR_FILE",
                    help="require a login (Panel's basic authentication): one password, or a JSON file of "
                         "{user: password}; also read from CLOUDSIEVE_BASIC_AUTH")
+    v.add_argument("--no-login", action="store_true",
+                   help="serve a non-loopback --address without a login (not advised; warns at every start)")
     v.add_argument("--cookie-secret", metavar="SECRET",
                    help="secret that signs the login cookie (default: a random one per server start; "
                         "also read from CLOUDSIEVE_COOKIE_SECRET)")

@@ -571,6 +571,28 @@ def server_options(address, port, allow_websocket_origin, max_upload_mb):
                 http_server_kwargs={"max_buffer_size": limit}, title="cloudsieve")
 
 
+def login_check(address, basic_auth=None, no_login=False):
+    """The login rule of ``serve``: an address other than this machine's needs a login
+    (``--basic-auth`` or CLOUDSIEVE_BASIC_AUTH), or an explicit ``--no-login``. Returns the
+    warning to print at start (None when there is nothing to warn of); raises _OriginError."""
+    import os
+
+    basic_auth = basic_auth or os.environ.get("CLOUDSIEVE_BASIC_AUTH")
+    if basic_auth and no_login:
+        raise _OriginError("cloudsieve: --no-login and --basic-auth contradict each other; give one of them")
+    if address in LOCAL_ADDRESSES or basic_auth:
+        return None
+    if not no_login:
+        raise _OriginError(
+            f"cloudsieve: --address {address} serves the data folder's scenes to the network, and anyone who "
+            "reaches the port could read them and upload files. Require a login with --basic-auth PASSWORD "
+            "(or a JSON file of {user: password}; also CLOUDSIEVE_BASIC_AUTH), or say --no-login to serve it "
+            "open on a network you trust.")
+    return (f"cloudsieve: WARNING: serving on {address} without a login (--no-login): anyone who reaches this "
+            "port can read the scenes of the data folder and upload files. Use --basic-auth, and TLS through a "
+            "reverse proxy, beyond a trusted network.")
+
+
 def auth_options(basic_auth=None, cookie_secret=None):
     """pn.serve keyword arguments for an optional login (Panel's basic authentication).
 
@@ -614,9 +636,12 @@ def serve(args):
         return 2
     try:
         server_options(address, args.port or 5006, args.allow_websocket_origin, max_mb)
+        open_warning = login_check(address, getattr(args, "basic_auth", None), getattr(args, "no_login", False))
     except _OriginError as exc:
         print(str(exc), file=sys.stderr)
         return exc.exit_code
+    if open_warning:
+        print(open_warning, file=sys.stderr, flush=True)
     from cloudsieve.config import add_renames
 
     # a bad file or --rename raises ConfigError: the CLI prints it, exit 2

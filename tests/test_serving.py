@@ -1,5 +1,5 @@
-"""Safe serving: local by default, origins required to expose it, optional login, files only
-from inside the data folder, no pickle or eval of user data."""
+"""Safe serving: local by default, origins and a login (or an explicit, warned --no-login) required
+to expose it, files only from inside the data folder, no pickle or eval of user data."""
 import ast
 import re
 import subprocess
@@ -62,6 +62,44 @@ def test_exposing_needs_named_origins(tmp_path):
                          timeout=120)
     assert out.returncode == 2
     assert "--allow-websocket-origin" in out.stderr and "Traceback" not in out.stderr
+
+
+def test_exposing_needs_a_login_or_an_explicit_no_login(tmp_path):
+    """Issue 18: a non-loopback address with its origins named but no login is refused (exit 2,
+    the two ways out named, no traceback); --no-login and --basic-auth together contradict."""
+    base = [str(EXE), "serve", "--address", "0.0.0.0", "--port", "0", "--allow-websocket-origin", "example.org:5006"]
+    env = {k: v for k, v in __import__("os").environ.items() if k != "CLOUDSIEVE_BASIC_AUTH"}
+    out = subprocess.run(base, capture_output=True, text=True, timeout=120, env=env)
+    assert out.returncode == 2, out.stderr
+    assert "--basic-auth" in out.stderr and "--no-login" in out.stderr and "Traceback" not in out.stderr
+    both = subprocess.run([*base, "--no-login", "--basic-auth", "cloud-sieve-pass"], capture_output=True, text=True,
+                          timeout=120, env=env)
+    assert both.returncode == 2 and "contradict" in both.stderr
+
+
+def test_no_login_serves_open_with_a_warning_and_basic_auth_guards_the_network_address(tmp_path):
+    """--no-login on 0.0.0.0: the page is served without a login, and a warning is printed at
+    start; --basic-auth on 0.0.0.0: no warning, and the page asks for the login."""
+    args = ["--address", "0.0.0.0", "--allow-websocket-origin", "example.org:5006"]
+    proc, hostport, log = _start([*args, "--no-login"], tmp_path)
+    try:
+        port = int(hostport.rsplit(":", 1)[1])
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/", timeout=120) as r:
+            assert r.status == 200 and "login" not in r.url
+        log.seek(0)
+        assert "WARNING: serving on 0.0.0.0 without a login" in log.read()
+    finally:
+        _stop(proc)
+    (tmp_path / "second").mkdir()
+    proc, hostport, log = _start([*args, "--basic-auth", "cloud-sieve-pass"], tmp_path / "second")
+    try:
+        port = int(hostport.rsplit(":", 1)[1])
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/", timeout=120) as r:
+            assert "login" in r.url
+        log.seek(0)
+        assert "WARNING" not in log.read()
+    finally:
+        _stop(proc)
 
 
 def test_login_with_basic_auth(tmp_path):
