@@ -161,6 +161,20 @@ _TABLE_EXT = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parqu
 _NC_EXT = {".nc": "netcdf", ".nc4": "netcdf", ".netcdf": "netcdf", ".cdf": "netcdf"}
 
 
+def human_count(n):
+    """A pixel count in words: 1.6 billion, 25 million, 900 thousand, 512."""
+    for size, word in ((1e9, "billion"), (1e6, "million"), (1e3, "thousand")):
+        if n >= size:
+            return f"{n / size:.3g} {word}"
+    return f"{int(n)}"
+
+
+def _too_many(ny, nx):
+    """Words for a grid above the in-memory limit (checked before any value is read)."""
+    return (f"{ny} × {nx} = {human_count(ny * nx)} pixels, more than the in-memory limit of "
+            f"{human_count(MAX_PIXELS)}")
+
+
 def scene_format(path):
     """'csv', 'parquet' or 'netcdf' from the file extension; SceneError otherwise."""
     ext = Path(path).suffix.lower()
@@ -552,7 +566,7 @@ def _grid_from_table(table, report, in_memory, names=None):
         r0, c0 = int(rmin), int(cmin)
         ny, nx = int(rmax) - r0 + 1, int(cmax) - c0 + 1
         if in_memory and ny * nx > MAX_PIXELS:
-            problem = (f"grid of {ny} × {nx} positions is larger than the in-memory limit of {MAX_PIXELS} pixels",
+            problem = (f"the grid declares {_too_many(ny, nx)}",
                        "screen it with the chunked path (cloudsieve screen --chunks ROWS), or split it")
         else:
             shape = (ny, nx)
@@ -729,8 +743,8 @@ def _netcdf_fields(ds, path, report, chunk_rows, names=None):
         raise _unreadable_netcdf(path, exc) from None
     if chunk_rows is None:
         if ny * nx > MAX_PIXELS:
-            raise SceneError(f"grid of {ny} × {nx} is larger than the in-memory limit of {MAX_PIXELS} pixels; "
-                             "use the chunked path (cloudsieve screen --chunks)")
+            raise SceneError(f"the grid declares {_too_many(ny, nx)}; nothing was read. Screen it with the chunked "
+                             "path (cloudsieve screen --chunks ROWS), or split it")
         try:
             ds = ds.load()
         except Exception as exc:  # noqa: BLE001 — data that cannot be read back: a broken file

@@ -146,3 +146,78 @@ def test_bad_upload_gets_the_same_message_in_the_app(tmp_path, case):
                 assert w in text, (w, text)
     finally:
         box.cleanup()
+
+
+def _bomb_netcdf(path, n=40_000):
+    """A 9 KB NetCDF file declaring n × n pixels (deflated chunks never written: fill values)."""
+    import netCDF4
+
+    with netCDF4.Dataset(path, "w") as ds:
+        ds.createDimension("y", n)
+        ds.createDimension("x", n)
+        for name in ("bt_11um", "bt_12um", "t_skin", "t_air", "tcwv", "sat_zenith"):
+            ds.createVariable(name, "f4", ("y", "x"), zlib=True, chunksizes=(1000, 1000), fill_value=280.0)
+
+
+def _bomb_parquet(path, n=40_000):
+    """Two table rows whose grid positions span n × n pixels."""
+    df = table().iloc[:2].copy()
+    df["row"] = [0, n - 1]
+    df["col"] = [0, n - 1]
+    df.to_parquet(path, index=False)
+
+
+@pytest.mark.parametrize("make,name", [(_bomb_netcdf, "bomb.nc"), (_bomb_parquet, "bomb.parquet")])
+def test_size_bombs_are_refused_before_any_value_is_read(tmp_path, make, name):
+    """Issue 18: a small file declaring 40000 × 40000 pixels is refused by `check` with the size
+    in words and the chunked alternative — not called unreadable — under a 2 GB address-space
+    limit (1.6 billion float32 pixels would need 6 GB per variable), with no traceback."""
+    import resource
+
+    scene = tmp_path / name
+    make(scene)
+    assert scene.stat().st_size < 50_000
+
+    def limit():
+        resource.setrlimit(resource.RLIMIT_AS, (2 * 1024**3, 2 * 1024**3))
+
+    proc = subprocess.run([str(EXE), "check", str(scene)], capture_output=True, text=True, timeout=300,
+                          preexec_fn=limit)
+    text = proc.stdout + proc.stderr
+    assert proc.returncode == 2, text
+    assert "40000 × 40000 = 1.6 billion pixels" in text and "--chunks" in text
+    assert "not a readable" not in text and "Traceback" not in text and "allocate" not in text
+
+
+def test_size_bomb_upload_is_refused_and_the_app_goes_on(tmp_path):
+    """The same NetCDF bomb uploaded to the dashboard: the page reports the size and opens
+    nothing; the server process (this one) is still there to handle the next upload."""
+    import asyncio
+
+    from dashboard.views.notices import Notices
+    from dashboard.views.scenes import UploadBox
+
+    bomb = tmp_path / "bomb.nc"
+    _bomb_netcdf(bomb)
+    opened = []
+
+    async def on_scene(scene):
+        opened.append(scene)
+
+    box = UploadBox(on_scene, Notices(), max_upload_mb=50)
+    try:
+        import threading
+
+        # threads of their own: browser tests may leave an event loop running in this one
+        worker = threading.Thread(target=lambda: asyncio.run(box._handle("bomb.nc", bomb.read_bytes())))
+        worker.start()
+        worker.join(timeout=300)
+        text = box.report.object
+        assert not opened and "1.6 billion pixels" in text and "Traceback" not in text
+        # the next upload, a good scene, opens
+        worker = threading.Thread(target=lambda: asyncio.run(box._handle(SMALL.name, SMALL.read_bytes())))
+        worker.start()
+        worker.join(timeout=300)
+        assert opened
+    finally:
+        box.cleanup()
